@@ -1,0 +1,66 @@
+"""Errors the user can act on. The CLI prints them and exits with status 1.
+
+Every input problem is collected before stopping: a `WavebookError` carries the whole list,
+so the user fixes everything in one round.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One problem found in an input: what rule failed, where, how often, and examples."""
+
+    rule: str
+    message: str
+    severity: str = "error"  # "error" stops the run; "warning" is printed and recorded
+    file: str | None = None
+    column: str | None = None
+    value: str | None = None
+    count: int | None = None
+    examples: tuple[str, ...] = field(default_factory=tuple)
+
+    def render(self) -> str:
+        """One readable line: severity, where, the message, the count and up to five example ids."""
+        where = ", ".join(
+            part
+            for part in (
+                f"file {self.file}" if self.file else "",
+                f"column '{self.column}'" if self.column else "",
+                f"value '{self.value}'" if self.value is not None else "",
+            )
+            if part
+        )
+        text = f"{self.severity}: [{self.rule}] {self.message}"
+        if where:
+            text += f" ({where})"
+        if self.count is not None:
+            text += f"; {self.count} row{'s' if self.count != 1 else ''}"
+        if self.examples:
+            text += "; e.g. ids " + ", ".join(self.examples[:5])
+        return text
+
+
+class WavebookError(Exception):
+    """A problem with the user's spec or data. `problems` holds every problem found."""
+
+    def __init__(self, summary: str, problems: list[Problem] | None = None) -> None:
+        self.summary = summary
+        self.problems = list(problems or [])
+        super().__init__(self.render())
+
+    def render(self) -> str:
+        """The summary followed by one line per problem."""
+        lines = [self.summary]
+        lines += ["  " + p.render() for p in self.problems]
+        return "\n".join(lines)
+
+
+class SpecError(WavebookError):
+    """The study spec is invalid (unknown keys, wrong types, undeclared references...)."""
+
+
+class DataError(WavebookError):
+    """A data file breaks a rule (duplicate ids, codes outside the codebook, bad design values...)."""
