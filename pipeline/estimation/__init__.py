@@ -1,0 +1,1 @@
+"""Design-based estimation: design, group totals, estimators, Taylor and replicate variance, intervals."""
