@@ -12,9 +12,13 @@ tables until they are (see DEVELOPERS.md).
 from __future__ import annotations
 
 import datetime as dt
+import re
+import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
+
+from pipeline.errors import Problem, SpecError
 
 Code = int | str
 VariableType = Literal["single", "multi", "numeric", "scale"]
@@ -94,6 +98,27 @@ class Variable:
         """The data columns this variable reads (the items of a multi set, else its own name)."""
         return tuple(self.items) if self.type == "multi" else (self.name,)
 
+    @property
+    def int_coded(self) -> bool:
+        """Whether the codes are integers (every key of `values` an integer literal; always for a scale)."""
+        return self.type in ("single", "scale") and all(isinstance(c, int) for c in self.values)
+
+    @property
+    def valid_codes(self) -> tuple[Code, ...]:
+        """The codes a response may hold, in order.
+
+        single: the labelled codes. scale: the labelled codes plus every integer between the
+        lowest and the highest labelled code that is not excluded from the mean (so 1..9 need
+        no label on a 0-10 scale). Other types have no codes.
+        """
+        if self.type == "single":
+            return tuple(self.values)
+        if self.type != "scale" or not self.values:
+            return ()
+        on_scale = [c for c in self.values if c not in self.exclude_from_mean]
+        filled = set(range(min(on_scale), max(on_scale) + 1)) if on_scale else set()
+        return tuple(sorted(filled | set(self.values)))
+
 
 @dataclass(frozen=True)
 class Study:
@@ -121,3 +146,524 @@ class Study:
             if w.id == wave_id:
                 return w
         raise KeyError(f"no wave '{wave_id}' in the spec; declared waves: {', '.join(w.id for w in self.waves)}")
+
+
+# ---------------------------------------------------------------------------------------------
+# Loading and validation
+# ---------------------------------------------------------------------------------------------
+
+_TOP_KEYS = ("title", "notes", "respondent_id", "database", "waves", "design", "variables", "weighting", "variance")
+_WAVE_KEYS = ("label", "file", "fieldwork")
+_DESIGN_KEYS = (
+    "kind",
+    "strata",
+    "psu",
+    "psu_ids",
+    "base_weight",
+    "selection_probability",
+    "population",
+    "sampling_fraction",
+    "single_psu",
+    "collapse_with",
+)
+_VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
+    "single": ("label", "type", "values", "nets"),
+    "scale": ("label", "type", "values", "exclude_from_mean", "nets"),
+    "multi": ("label", "type", "items"),
+    "numeric": ("label", "type", "minimum", "maximum"),
+}
+_ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
+_VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
+    "single": ("label", "values"),
+    "scale": ("label", "values"),
+    "multi": ("label", "items"),
+    "numeric": ("label",),
+}
+_WAVE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]*$")
+_INT_LITERAL = re.compile(r"^[+-]?[0-9]+$")
+_TOML_POSITION = re.compile(r"\(at line (\d+), column (\d+)\)")
+
+_TYPE_NAMES = {
+    str: "a string",
+    list: "an array",
+    dict: "a table",
+    dt.date: "a date",
+}
+
+
+def load_spec(path: str | Path) -> Study:
+    """Read and validate a study spec (TOML); return the `Study`.
+
+    Every problem is collected and raised together as one `SpecError`; each `Problem` names the
+    dotted key (`variables.satisfaction.exclude_from_mean`) and has one of the rules
+    toml-syntax, missing-file, unknown-key, missing-key, wrong-type, bad-value, key-not-for-type,
+    conflicting-keys, undeclared-code, duplicate-column. Wave files are resolved against the
+    spec's folder but not opened (staging checks them). `[[weighting]]` items and `[variance]` are
+    only checked to be an array of tables and a table; their own modules validate their insides.
+    """
+    spec_path = Path(path).resolve()
+    try:
+        text = spec_path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("missing-file", f"the spec file {spec_path} does not exist", file=str(spec_path))],
+        ) from None
+    except UnicodeDecodeError as exc:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("toml-syntax", f"the spec is not UTF-8 text ({exc.reason})", file=str(spec_path))],
+        ) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise SpecError(f"the study spec {spec_path} is not valid TOML", [_syntax_problem(spec_path, exc)]) from None
+    checker = _Checker(str(spec_path))
+    study = checker.study(data, spec_path)
+    if checker.problems:
+        n = len(checker.problems)
+        raise SpecError(f"the study spec {spec_path} has {n} problem{'s' if n != 1 else ''}", checker.problems)
+    assert study is not None
+    return study
+
+
+def _syntax_problem(spec_path: Path, exc: tomllib.TOMLDecodeError) -> Problem:
+    message = str(exc)
+    match = _TOML_POSITION.search(message)
+    where = f"line {match.group(1)}, column {match.group(2)}" if match else "end of file"
+    reason = _TOML_POSITION.sub("", message).replace("(at end of document)", "").strip()
+    return Problem("toml-syntax", f"{spec_path.name}, {where}: {reason}", file=str(spec_path))
+
+
+def _codes_from_keys(keys: list[str]) -> list[Code]:
+    """Codes from TOML keys: ints when every key is an integer literal, else the strings."""
+    if keys and all(_INT_LITERAL.match(k) for k in keys):
+        return [int(k) for k in keys]
+    return list(keys)
+
+
+def _is_number(value: object) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+class _Checker:
+    """Walks the parsed TOML, collecting every problem; builds the Study objects as it goes."""
+
+    def __init__(self, file: str) -> None:
+        self.file = file
+        self.problems: list[Problem] = []
+
+    def add(self, rule: str, key: str, message: str, *, value: object = None) -> None:
+        self.problems.append(
+            Problem(rule, f"{key}: {message}", file=self.file, value=None if value is None else str(value))
+        )
+
+    def keys(self, table: dict, key: str, allowed: tuple[str, ...], required: tuple[str, ...] = ()) -> None:
+        prefix = f"{key}." if key else ""
+        for k in table:
+            if k not in allowed:
+                self.add(
+                    "unknown-key",
+                    f"{prefix}{k}",
+                    f"unknown key '{k}'" + (f" in [{key}]" if key else "") + f"; allowed: {', '.join(allowed)}",
+                )
+        for k in required:
+            if k not in table:
+                self.add("missing-key", f"{prefix}{k}", f"required key '{k}' is missing")
+
+    def typed(self, table: dict, key: str, name: str, kind: type) -> object:
+        """table[name] if present and of the right kind, else None (reporting a wrong type)."""
+        if name not in table:
+            return None
+        value = table[name]
+        ok = type(value) is dt.date if kind is dt.date else isinstance(value, kind) and not isinstance(value, bool)
+        if kind is float:
+            ok = _is_number(value)
+        if not ok:
+            wanted = "a number" if kind is float else _TYPE_NAMES.get(kind, kind.__name__)
+            full = f"{key}.{name}" if key else name
+            self.add("wrong-type", full, f"must be {wanted}, not {type(value).__name__} {value!r}", value=value)
+            return None
+        return value
+
+    def choice(self, table: dict, key: str, name: str, options: tuple[str, ...], default: str) -> str:
+        value = self.typed(table, key, name, str)
+        if value is None:
+            return default
+        if value not in options:
+            self.add("bad-value", f"{key}.{name}", f"'{value}' is not one of: {', '.join(options)}", value=value)
+            return default
+        return str(value)
+
+    def string_list(self, table: dict, key: str, name: str) -> tuple[str, ...]:
+        value = self.typed(table, key, name, list)
+        if value is None:
+            return ()
+        bad = [v for v in value if not isinstance(v, str)]
+        if bad:
+            self.add("wrong-type", f"{key}.{name}" if key else name, f"must be an array of strings; got {bad[0]!r}")
+            return ()
+        return tuple(value)
+
+    # -- the whole study ---------------------------------------------------------------------
+    def study(self, data: dict, spec_path: Path) -> Study | None:
+        self.keys(data, "", _TOP_KEYS, ("title", "respondent_id", "waves"))
+        title = self.typed(data, "", "title", str)
+        respondent_id = self.typed(data, "", "respondent_id", str)
+        notes = self.string_list(data, "", "notes")
+        database = self.typed(data, "", "database", str)
+        waves = self.waves(data.get("waves"), spec_path.parent) if "waves" in data else ()
+        variables = self.variables(data.get("variables", {}))
+        design = self.design(data.get("design", {}), variables)
+        weighting = self.weighting(data)
+        variance = self.typed(data, "", "variance", dict)
+        self.columns(respondent_id, design, variables)
+        if self.problems:
+            return None
+        return Study(
+            path=spec_path,
+            title=str(title),
+            respondent_id=str(respondent_id),
+            waves=waves,
+            design=design,
+            variables=variables,
+            notes=notes,
+            database=(spec_path.parent / database) if database else None,
+            weighting=weighting,
+            variance=dict(variance or {}),
+        )
+
+    def weighting(self, data: dict) -> tuple[dict, ...]:
+        steps = data.get("weighting", [])
+        if not isinstance(steps, list) or not all(isinstance(s, dict) for s in steps):
+            self.add("wrong-type", "weighting", "must be an array of tables ([[weighting]] blocks)")
+            return ()
+        return tuple(steps)
+
+    # -- waves ---------------------------------------------------------------------------------
+    def waves(self, raw: object, folder: Path) -> tuple[Wave, ...]:
+        if not isinstance(raw, dict):
+            self.add("wrong-type", "waves", "must be a table of waves ([waves.<id>] blocks)")
+            return ()
+        if not raw:
+            self.add("missing-key", "waves", "declare at least one wave ([waves.<id>] with label and file)")
+        waves = []
+        for wave_id, table in raw.items():
+            key = f"waves.{wave_id}"
+            if not _WAVE_ID.match(wave_id):
+                self.add(
+                    "bad-value",
+                    key,
+                    "a wave id uses letters, digits, '_' and '-' only, starting with a letter or digit",
+                    value=wave_id,
+                )
+            if not isinstance(table, dict):
+                self.add("wrong-type", key, "must be a table with label and file")
+                continue
+            self.keys(table, key, _WAVE_KEYS, ("label", "file"))
+            label = self.typed(table, key, "label", str)
+            file = self.typed(table, key, "file", str)
+            start, end = self.fieldwork(table, key)
+            if label is not None and file is not None:
+                waves.append(Wave(wave_id, label, folder / file, start, end))
+        return tuple(waves)
+
+    def fieldwork(self, table: dict, key: str) -> tuple[dt.date | None, dt.date | None]:
+        value = self.typed(table, key, "fieldwork", list)
+        if value is None:
+            return None, None
+        if len(value) != 2 or not all(type(v) is dt.date for v in value):
+            self.add("wrong-type", f"{key}.fieldwork", "must be two TOML dates [start, end], e.g. [2026-03-02, 2026-03-21]")
+            return None, None
+        start, end = value
+        if start > end:
+            self.add("bad-value", f"{key}.fieldwork", f"starts ({start}) after it ends ({end})")
+        return start, end
+
+    # -- variables -----------------------------------------------------------------------------
+    def variables(self, raw: object) -> dict[str, Variable]:
+        if not isinstance(raw, dict):
+            self.add("wrong-type", "variables", "must be a table of variables ([variables.<name>] blocks)")
+            return {}
+        out = {}
+        for name, table in raw.items():
+            key = f"variables.{name}"
+            if not isinstance(table, dict):
+                self.add("wrong-type", key, "must be a table with label and type")
+                continue
+            variable = self.variable(name, table, key)
+            if variable is not None:
+                out[name] = variable
+        return out
+
+    def variable(self, name: str, table: dict, key: str) -> Variable | None:
+        vtype = self.typed(table, key, "type", str)
+        if "type" not in table:
+            self.add("missing-key", f"{key}.type", "required key 'type' is missing (single, multi, scale or numeric)")
+            return None
+        if vtype not in _VARIABLE_KEYS:
+            if vtype is not None:
+                self.add("bad-value", f"{key}.type", f"'{vtype}' is not one of: single, multi, scale, numeric", value=vtype)
+            return None
+        allowed = _VARIABLE_KEYS[vtype]
+        for k in table:
+            if k in _ANY_VARIABLE_KEY and k not in allowed:
+                self.add("key-not-for-type", f"{key}.{k}", f"'{k}' is not used by a {vtype} variable; remove it")
+        known = {k: v for k, v in table.items() if k not in _ANY_VARIABLE_KEY or k in allowed}
+        self.keys(known, key, allowed, _VARIABLE_REQUIRED[vtype])
+        label = self.typed(table, key, "label", str)
+        if vtype == "numeric":
+            return self.numeric(name, table, key, label)
+        if vtype == "multi":
+            items = self.labels(table, key, "items")
+            if label is None or items is None:
+                return None
+            return Variable(name, "multi", label, items=dict(items))
+        labels = self.labels(table, key, "values")
+        if labels is None or label is None:
+            return None
+        codes = _codes_from_keys(list(labels))
+        values = dict(zip(codes, labels.values(), strict=True))
+        if vtype == "scale" and not all(isinstance(c, int) for c in codes):
+            self.add("wrong-type", f"{key}.values", "the codes of a scale must all be integers")
+            return None
+        base = Variable(name, vtype, label, values=values)  # type: ignore[arg-type]
+        exclude: tuple[Code, ...] = ()
+        if vtype == "scale" and "exclude_from_mean" in table:
+            exclude = self.code_list(table["exclude_from_mean"], f"{key}.exclude_from_mean", base, tuple(values))
+        scaled = Variable(name, vtype, label, values=values, exclude_from_mean=exclude)  # type: ignore[arg-type]
+        nets = self.nets(table, key, scaled)
+        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_mean=exclude)  # type: ignore[arg-type]
+
+    def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
+        low = self.typed(table, key, "minimum", float)
+        high = self.typed(table, key, "maximum", float)
+        if low is not None and high is not None and low > high:
+            self.add("bad-value", f"{key}.minimum", f"minimum {low} is above maximum {high}")
+        if label is None:
+            return None
+        return Variable(
+            name,
+            "numeric",
+            str(label),
+            minimum=None if low is None else float(low),
+            maximum=None if high is None else float(high),
+        )
+
+    def labels(self, table: dict, key: str, name: str) -> dict[str, str] | None:
+        value = self.typed(table, key, name, dict)
+        if value is None:
+            return None
+        if not value:
+            self.add("bad-value", f"{key}.{name}", "is empty; list at least one entry")
+            return None
+        bad = [k for k, v in value.items() if not isinstance(v, str)]
+        for k in bad:
+            self.add("wrong-type", f"{key}.{name}.{k}", f"the label must be a string, not {value[k]!r}", value=value[k])
+        return None if bad else dict(value)
+
+    def code_list(self, raw: object, key: str, variable: Variable, allowed: tuple[Code, ...]) -> tuple[Code, ...]:
+        """Codes given as a TOML array, converted to the variable's code type and checked against `allowed`."""
+        if not isinstance(raw, list):
+            self.add("wrong-type", key, f"must be an array of codes, not {type(raw).__name__} {raw!r}")
+            return ()
+        out: list[Code] = []
+        for item in raw:
+            code = self.code(item, key, variable)
+            if code is None:
+                continue
+            if code not in allowed:
+                shown = ", ".join(str(c) for c in _ranges(allowed))
+                self.add(
+                    "undeclared-code",
+                    key,
+                    f"code {code!r} is not a valid code of '{variable.name}' (valid: {shown})",
+                    value=code,
+                )
+                continue
+            out.append(code)
+        return tuple(out)
+
+    def code(self, item: object, key: str, variable: Variable) -> Code | None:
+        if variable.int_coded:
+            if isinstance(item, int) and not isinstance(item, bool):
+                return item
+            if isinstance(item, str) and _INT_LITERAL.match(item):
+                return int(item)
+            self.add("wrong-type", key, f"codes of '{variable.name}' are integers; got {item!r}", value=item)
+            return None
+        if isinstance(item, (str, int)) and not isinstance(item, bool):
+            return str(item)
+        self.add("wrong-type", key, f"codes of '{variable.name}' are strings; got {item!r}", value=item)
+        return None
+
+    def nets(self, table: dict, key: str, variable: Variable) -> dict[str, tuple[Code, ...]]:
+        raw = self.typed(table, key, "nets", dict)
+        if raw is None:
+            return {}
+        nets = {}
+        for label, codes in raw.items():
+            nets[label] = self.code_list(codes, f"{key}.nets.{label}", variable, variable.valid_codes)
+            if isinstance(codes, list) and not codes:
+                self.add("bad-value", f"{key}.nets.{label}", "a net needs at least one code")
+        return nets
+
+    # -- design --------------------------------------------------------------------------------
+    def design(self, raw: object, variables: dict[str, Variable]) -> Design:
+        if not isinstance(raw, dict):
+            self.add("wrong-type", "design", "must be a table ([design])")
+            return Design()
+        self.keys(raw, "design", _DESIGN_KEYS)
+        kind = self.choice(raw, "design", "kind", ("probability", "nonprobability"), "probability")
+        strata = self.typed(raw, "design", "strata", str)
+        psu = self.typed(raw, "design", "psu", str)
+        psu_ids = self.choice(raw, "design", "psu_ids", ("nested", "unique"), "nested")
+        base_weight = self.typed(raw, "design", "base_weight", str)
+        probability = self.typed(raw, "design", "selection_probability", str)
+        single_psu = self.choice(raw, "design", "single_psu", ("error", "certainty", "centre", "collapse"), "error")
+        if base_weight is not None and probability is not None:
+            self.add(
+                "conflicting-keys",
+                "design.base_weight",
+                "give at most one of base_weight and selection_probability (base weight = 1 / probability)",
+            )
+        if kind == "nonprobability" and probability is not None:
+            self.add(
+                "conflicting-keys",
+                "design.selection_probability",
+                "a nonprobability sample has no selection probabilities; drop it or give a supplied base_weight",
+            )
+        if strata is not None and strata == psu:
+            self.add("conflicting-keys", "design.psu", f"the PSU column cannot also be the strata column '{strata}'")
+        if "psu_ids" in raw and psu is None:
+            self.add("conflicting-keys", "design.psu_ids", "psu_ids only applies when design.psu names a column")
+        strata_var = variables.get(strata) if strata else None
+        population = self.stratum_numbers(raw, "population", strata, strata_var, upper=None)
+        fraction = self.stratum_numbers(raw, "sampling_fraction", strata, strata_var, upper=1.0)
+        if "population" in raw and "sampling_fraction" in raw:
+            self.add("conflicting-keys", "design.sampling_fraction", "give population or sampling_fraction, not both")
+        if kind == "nonprobability" and (population or fraction):
+            self.add(
+                "conflicting-keys",
+                "design.population" if population else "design.sampling_fraction",
+                "a finite population correction needs a probability sample (kind = \"probability\")",
+            )
+        collapse = self.collapse(raw, strata, strata_var, single_psu)
+        return Design(
+            kind=kind,  # type: ignore[arg-type]
+            strata=strata,
+            psu=psu,
+            psu_ids=psu_ids,  # type: ignore[arg-type]
+            base_weight=base_weight,
+            selection_probability=probability,
+            population=population,
+            sampling_fraction=fraction,
+            single_psu=single_psu,  # type: ignore[arg-type]
+            collapse_with=collapse,
+        )
+
+    def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:
+        """Stratum codes from TOML keys, typed like the strata variable's codes when it is declared."""
+        if strata_var is None or not strata_var.values:
+            return _codes_from_keys(keys)
+        codes: list[Code] = []
+        for k in keys:
+            code = self.code(k, key, strata_var)
+            if code is not None and code not in strata_var.values:
+                self.add("undeclared-code", f"{key}.{k}", f"'{k}' is not a code of the strata variable '{strata_var.name}'")
+            codes.append(code if code is not None else k)
+        return codes
+
+    def stratum_numbers(
+        self, raw: dict, name: str, strata: str | None, strata_var: Variable | None, *, upper: float | None
+    ) -> dict[Code, float]:
+        key = f"design.{name}"
+        table = self.typed(raw, "design", name, dict)
+        if table is None:
+            return {}
+        if strata is None and len(table) != 1:
+            self.add(
+                "bad-value",
+                key,
+                "without design.strata give exactly one entry (any key, e.g. { all = 5000 }) for the whole population",
+            )
+        codes = self.stratum_codes(list(table), key, strata_var)
+        out: dict[Code, float] = {}
+        for code, (k, value) in zip(codes, table.items(), strict=True):
+            if not _is_number(value):
+                self.add("wrong-type", f"{key}.{k}", f"must be a number, not {value!r}", value=value)
+                continue
+            if value <= 0 or (upper is not None and value > upper):
+                limit = "in (0, 1]" if upper is not None else "positive"
+                self.add("bad-value", f"{key}.{k}", f"must be {limit}; got {value}", value=value)
+                continue
+            out[code] = float(value)
+        return out
+
+    def collapse(
+        self, raw: dict, strata: str | None, strata_var: Variable | None, single_psu: str
+    ) -> dict[Code, Code]:
+        table = self.typed(raw, "design", "collapse_with", dict)
+        if table is None:
+            return {}
+        if single_psu != "collapse":
+            self.add("conflicting-keys", "design.collapse_with", "collapse_with needs single_psu = \"collapse\"")
+        if strata is None:
+            self.add("conflicting-keys", "design.collapse_with", "collapse_with needs design.strata")
+        bad = [k for k, v in table.items() if not isinstance(v, (str, int)) or isinstance(v, bool)]
+        for k in bad:
+            self.add("wrong-type", f"design.collapse_with.{k}", f"must be a stratum code, not {table[k]!r}")
+        keys = [k for k in table if k not in bad]
+        sources = self.stratum_codes(keys, "design.collapse_with", strata_var)
+        targets = self.stratum_codes([str(table[k]) for k in keys], "design.collapse_with", strata_var)
+        return dict(zip(sources, targets, strict=True))
+
+    # -- column names --------------------------------------------------------------------------
+    def columns(self, respondent_id: object, design: Design, variables: dict[str, Variable]) -> None:
+        owner: dict[str, str] = {}
+        for variable in variables.values():
+            for column in variable.columns:
+                if column in owner:
+                    self.add(
+                        "duplicate-column",
+                        f"variables.{variable.name}",
+                        f"column '{column}' is already used by variables.{owner[column]}",
+                    )
+                owner[column] = variable.name
+        if isinstance(respondent_id, str):
+            if respondent_id in owner:
+                self.add(
+                    "duplicate-column",
+                    f"variables.{owner[respondent_id]}",
+                    f"column '{respondent_id}' is the respondent id; it cannot be a codebook variable",
+                )
+            if respondent_id in design.columns:
+                self.add("duplicate-column", "design", f"the respondent id '{respondent_id}' cannot be a design column")
+        for name in ("base_weight", "selection_probability"):
+            column = getattr(design, name)
+            if column in owner and variables[owner[column]].type != "numeric":
+                self.add(
+                    "duplicate-column",
+                    f"design.{name}",
+                    f"'{column}' is declared as a {variables[owner[column]].type} variable; a weight must be numeric",
+                )
+        for name in ("strata", "psu"):
+            column = getattr(design, name)
+            if column in owner and variables[owner[column]].type == "multi":
+                self.add("duplicate-column", f"design.{name}", f"'{column}' is an item of a multi-response set")
+
+
+def _ranges(codes: tuple[Code, ...]) -> list[str]:
+    """Codes for messages, runs of consecutive integers shown as 'a..b'."""
+    out: list[str] = []
+    run: list[int] = []
+    for code in [*codes, None]:
+        if isinstance(code, int) and run and code == run[-1] + 1:
+            run.append(code)
+            continue
+        if run:
+            out.append(f"{run[0]}..{run[-1]}" if len(run) > 2 else ", ".join(map(str, run)))
+        run = [code] if isinstance(code, int) else []
+        if isinstance(code, str):
+            out.append(code)
+    return out
