@@ -1,0 +1,371 @@
+"""The result book: one self-contained HTML page built from the tidy long cell frame.
+
+`render_book(study, cells, out_path=...)` turns the cells (see `pipeline.topline` for their
+columns) into a `BookContext` (the documented object every template receives), renders
+`templates/book.html.j2` with autoescaping forced on and strict undefined variables, and writes
+the page atomically (a temporary file in the same folder, then `os.replace`).
+
+The book holds aggregates only: counts, percentages and statistics per wave. It never receives
+respondent-level rows, so it cannot show them.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import os
+import re
+import tempfile
+from dataclasses import dataclass
+from functools import cache
+from pathlib import Path
+
+import jinja2
+import polars as pl
+
+from pipeline import __version__
+from pipeline.errors import WavebookError
+from pipeline.resources import resource_dir
+from pipeline.spec import Design, Study, Wave
+
+# Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
+LOW_BASE = 50
+VERY_LOW_BASE = 30
+
+TYPE_LABELS = {
+    "single": "Single choice",
+    "multi": "Multiple choice",
+    "scale": "Rating scale",
+    "numeric": "Number",
+}
+REQUIRED_COLUMNS = ("wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note")
+
+
+@dataclass(frozen=True)
+class WaveColumn:
+    """A wave as a table column: id, label, fieldwork dates as text, respondents staged (None: not staged)."""
+
+    id: str
+    label: str
+    fieldwork: str | None
+    respondents: int | None
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One table cell: the main figure as text, an optional secondary figure (the count under a
+    percentage) and the base flag: None, "low" (base < LOW_BASE) or "very-low" (< VERY_LOW_BASE)."""
+
+    text: str
+    detail: str | None = None
+    base_flag: str | None = None
+
+
+@dataclass(frozen=True)
+class TableRow:
+    """One table row: its kind (see pipeline.topline.ROW_KINDS), label and one cell per wave."""
+
+    kind: str
+    label: str
+    cells: tuple[Cell, ...]
+
+
+@dataclass(frozen=True)
+class Table:
+    """One variable's table: rows = base, categories/items, nets, statistics, no answer; columns = waves."""
+
+    columns: tuple[WaveColumn, ...]
+    rows: tuple[TableRow, ...]
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Section:
+    """One variable of the codebook with its table; `anchor` is its id in the page."""
+
+    anchor: str
+    name: str
+    label: str
+    type_label: str
+    table: Table
+    has_low_base: bool
+
+
+@dataclass(frozen=True)
+class Caution:
+    """A caution for the reader: a short title and its paragraphs."""
+
+    title: str
+    paragraphs: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class BookContext:
+    """Everything `templates/book.html.j2` receives (as `book`).
+
+    title, notes: from the spec. waves: every declared wave in spec order. design: one line per
+    design fact. methodology: paragraphs on how the figures were produced. cautions: what the
+    reader must keep in mind. sections: one per codebook variable, in spec order.
+    low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
+    version: for the footer.
+    """
+
+    title: str
+    notes: tuple[str, ...]
+    waves: tuple[WaveColumn, ...]
+    design: tuple[str, ...]
+    methodology: tuple[str, ...]
+    cautions: tuple[Caution, ...]
+    sections: tuple[Section, ...]
+    low_base: int
+    very_low_base: int
+    generated_at: str
+    version: str
+
+
+def render_book(study: Study, cells: pl.DataFrame, *, out_path: Path) -> Path:
+    """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
+
+    The page is rendered completely in memory first; only then is it written to a temporary
+    file in the destination folder and moved over `out_path` with `os.replace` (atomic on one
+    file system), so a failure never leaves a half-written or missing book. Returns `out_path`.
+    """
+    context = build_context(study, cells)
+    html = _environment().get_template("book.html.j2").render(book=context)
+    out_path = Path(out_path)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    _write_atomically(out_path, html)
+    return out_path
+
+
+def build_context(study: Study, cells: pl.DataFrame, *, now: dt.datetime | None = None) -> BookContext:
+    """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.topline`)."""
+    missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]
+    if missing:
+        raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
+    respondents = dict(
+        cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
+    )
+    waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
+    sections = tuple(
+        _section(index, variable.name, variable.label, variable.type, waves, cells.filter(pl.col("variable") == name))
+        for index, (name, variable) in enumerate(study.variables.items())
+    )
+    generated = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
+    return BookContext(
+        title=study.title,
+        notes=tuple(study.notes),
+        waves=waves,
+        design=_design_lines(study.design),
+        methodology=_methodology(study),
+        cautions=_cautions(study, sections),
+        sections=sections,
+        low_base=LOW_BASE,
+        very_low_base=VERY_LOW_BASE,
+        generated_at=generated.strftime("%Y-%m-%d %H:%M UTC"),
+        version=__version__,
+    )
+
+
+@cache
+def _environment() -> jinja2.Environment:
+    """The template environment: autoescaping forced on for every template, strict undefined."""
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(str(resource_dir("templates"))),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    env.filters["thousands"] = lambda number: f"{number:,}"
+    return env
+
+
+def _write_atomically(path: Path, text: str) -> None:
+    """Write `text` to a temporary file beside `path`, then replace `path` with it.
+
+    The temporary file gets the permissions of a normally created file (0o666 minus the umask).
+    """
+    handle, temp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8") as out:
+            out.write(text)
+            out.flush()
+            os.fsync(out.fileno())
+        os.chmod(temp_name, 0o666 & ~_umask())
+        os.replace(temp_name, path)
+    except BaseException:
+        Path(temp_name).unlink(missing_ok=True)
+        raise
+
+
+def _umask() -> int:
+    """The process's file-creation mask (read by setting it and restoring it at once)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:
+    """A wave with its fieldwork dates as text ("2 Mar 2026 to 21 Mar 2026")."""
+    dates = [d for d in (wave.fieldwork_start, wave.fieldwork_end) if d is not None]
+    fieldwork = " to ".join(f"{d.day} {d:%b %Y}" for d in dates) if dates else None
+    return WaveColumn(id=wave.id, label=wave.label, fieldwork=fieldwork, respondents=respondents)
+
+
+def _section(
+    index: int, name: str, label: str, type_: str, waves: tuple[WaveColumn, ...], cells: pl.DataFrame
+) -> Section:
+    """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no data)."""
+    by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
+    layout = cells.unique("row_order", keep="first").sort("row_order").select("row_order", "row_kind", "row_label")
+    rows = []
+    for order, kind, row_label in layout.iter_rows():
+        row_cells = tuple(_cell(by_key.get((order, w.id))) for w in waves)
+        rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
+    notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
+    slug = re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-")
+    return Section(
+        anchor=f"v{index + 1}-{slug}" if slug else f"v{index + 1}",
+        name=name,
+        label=label,
+        type_label=TYPE_LABELS.get(type_, type_),
+        table=Table(columns=waves, rows=tuple(rows), notes=notes),
+        has_low_base=any(c.base_flag for r in rows for c in r.cells),
+    )
+
+
+def _cell(row: dict | None) -> Cell:
+    """Format one cell: percentages as whole numbers with the count beside, statistics to 2 decimals."""
+    if row is None:
+        return Cell(text="–")
+    flag = _base_flag(row["base"])
+    kind = row["row_kind"]
+    if kind == "base":
+        return Cell(text=f"{row['count']:,}")
+    if kind == "statistic":
+        value = row["value"]
+        if value is None:
+            return Cell(text="–", base_flag=flag)
+        text = f"{value:,.0f}" if row.get("code") == "n" else f"{value:,.2f}"
+        return Cell(text=text, base_flag=flag)
+    if row["percent"] is None:
+        return Cell(text="–", detail=f"{row['count']:,}", base_flag=flag)
+    return Cell(text=_percent_text(row["percent"]), detail=f"{row['count']:,}", base_flag=flag)
+
+
+def _percent_text(percent: float) -> str:
+    """A percentage rounded half up to a whole number; "<1%" for a non-zero share below 0.5%."""
+    if 0 < percent < 0.5:
+        return "<1%"
+    return f"{math.floor(percent + 0.5)}%"
+
+
+def _base_flag(base: int | None) -> str | None:
+    """ "very-low" below VERY_LOW_BASE, "low" below LOW_BASE, else None (a base of 0 is shown as a dash)."""
+    if base is None or base == 0:
+        return None
+    if base < VERY_LOW_BASE:
+        return "very-low"
+    if base < LOW_BASE:
+        return "low"
+    return None
+
+
+def _design_lines(design: Design) -> tuple[str, ...]:
+    """The declared sample design, one plain sentence per fact."""
+    if design.kind == "nonprobability":
+        lines = ["Non-probability sample (quota or online panel): every respondent has the same base weight."]
+    else:
+        lines = ["Probability sample."]
+    lines.append(f"Strata: column '{design.strata}'." if design.strata else "No stratification declared.")
+    lines.append(
+        f"Primary sampling units: column '{design.psu}' (ids {'restart within each stratum' if design.psu_ids == 'nested' else 'unique across strata'})."
+        if design.psu
+        else "Each respondent is their own primary sampling unit."
+    )
+    if design.base_weight:
+        lines.append(f"Base weights: column '{design.base_weight}'.")
+    elif design.selection_probability:
+        lines.append(f"Base weights: 1 / selection probability (column '{design.selection_probability}').")
+    else:
+        lines.append("Base weights: equal for every respondent.")
+    if design.population:
+        lines.append("Finite population correction from the declared population of first-stage units per stratum.")
+    elif design.sampling_fraction:
+        lines.append("Finite population correction from the declared sampling fractions per stratum.")
+    else:
+        lines.append("No finite population correction declared.")
+    return tuple(lines)
+
+
+def _methodology(study: Study) -> tuple[str, ...]:
+    """How the figures in this version of the book were produced."""
+    paragraphs = [
+        "All figures in this book are UNWEIGHTED: every respondent counts once, whatever weights the "
+        "design declares. Weighted estimates, standard errors and design effects are not shown in "
+        "this version.",
+        "Base: the respondents of the wave who gave a valid answer to the question. Percentages of "
+        "categories and nets are of that base. The 'No answer' row counts the wave's other respondents; "
+        "its percentage is of all respondents of the wave.",
+        "Multiple-choice questions: each item's percentage is of the respondents asked who answered "
+        "that item; 'Any of these' counts respondents who chose at least one item. The 'Not asked' "
+        "row counts respondents with no answer to any item.",
+        "Rating scales and numbers: the mean, median, minimum and maximum use the answers given, "
+        "leaving out codes such as 'don't know' where the codebook says so (noted under the table). "
+        "The median is the middle answer, or the midpoint of the two middle answers.",
+    ]
+    return tuple(paragraphs)
+
+
+def _cautions(study: Study, sections: tuple[Section, ...]) -> tuple[Caution, ...]:
+    """The reader's cautions: sample type, low bases, what a confidence interval says."""
+    cautions = [
+        Caution(
+            "Unweighted figures",
+            (
+                "These figures describe the people who answered, not the population: no weights "
+                "correct for the sample design or for who chose to respond.",
+            ),
+        )
+    ]
+    if study.design.kind == "nonprobability":
+        cautions.append(
+            Caution(
+                "Non-probability sample",
+                (
+                    "Respondents were not selected with known probabilities (a quota sample or an "
+                    "online panel). Weighting can align the sample with known population margins, "
+                    "but it cannot guarantee that respondents resemble non-respondents on anything "
+                    "else. Sampling-error figures computed for such samples rest on a model, not on "
+                    "the selection, and should be read as approximate.",
+                ),
+            )
+        )
+    low = [s.label for s in sections if s.has_low_base]
+    if low:
+        cautions.append(
+            Caution(
+                "Low bases",
+                (
+                    f"Cells marked † rest on fewer than {LOW_BASE} respondents and cells marked ‡ on "
+                    f"fewer than {VERY_LOW_BASE}: treat them with caution, and the second as indicative "
+                    "only.",
+                    "Tables with low bases: " + "; ".join(low) + ".",
+                ),
+            )
+        )
+    cautions.append(
+        Caution(
+            "What a confidence interval says",
+            (
+                "A 95% confidence interval comes from a method that, over many samples drawn the same "
+                "way, would cover the population value 95 times in 100. It does not mean there is a 95% "
+                "chance that the population value lies in one particular interval.",
+                "It covers sampling error only: not errors from who could be reached, who chose to "
+                "answer, how questions were worded or how answers were recorded. Two intervals that "
+                "overlap can still come from a significant difference; test the difference itself.",
+            ),
+        )
+    )
+    return tuple(cautions)
