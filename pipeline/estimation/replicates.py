@@ -1,0 +1,463 @@
+"""Replicate weights: PSU-level factors for the jackknife, BRR/Fay and the bootstrap, and replicate
+totals of every cell computed from group totals (no respondent-by-replicate matrix).
+
+Replicate r multiplies the base weight of every respondent of PSU j by `factors[r, j]`. When the
+study declares a weighting recipe, each replicate's base weights go through the same recipe
+again (its replay on class totals), so the replicate weight of group g = (stratum, PSU j, class c)
+is a_r(j) * f_r(c) and all replicate totals of all cells are matrix products on the group totals
+(../shared/DESIGN.md). The variance formulas that go with each method are in
+`pipeline.estimation.replicate_variance`.
+
+Methods (Wolter 2007, Introduction to Variance Estimation, 2nd ed., chapters 3-5):
+  jk1        delete one PSU, strata ignored: R = P, factor P/(P-1) on the other PSUs, 0 on the
+             deleted one; variance multiplier (P-1)/P (Wolter section 4.2, from memory).
+  jkn        stratified delete-one-PSU jackknife: R = P, factor n_h/(n_h-1) on the other PSUs of
+             the deleted PSU's stratum h, 1 elsewhere; multiplier (n_h-1)/n_h per replicate
+             (Rust & Rao 1996, Stat. Methods Med. Res. 5:283-310, section 3; Wolter section 4.5).
+  brr / fay  balanced repeated replication with exactly 2 PSUs per stratum: replicate r takes
+             column h+1 of a normalised Hadamard matrix of order R > H as alpha_rh in {+1, -1};
+             factor 1 + (1 - rho) alpha_rh on the stratum's first PSU and 1 - (1 - rho) alpha_rh
+             on its second, i.e. 2 - rho and rho (McCarthy 1969; Fay 1989, Proc. ASA Survey
+             Research Methods 212-217; Judkins 1990, J. Official Stat. 6:223-234). Variance
+             multiplier 1 / (R (1 - rho)^2); rho = 0 is plain BRR.
+  bootstrap  Rao-Wu rescaling bootstrap with m_h = n_h - 1 PSUs drawn with replacement in each
+             stratum: factor (n_h / (n_h - 1)) * multiplicity (Rao & Wu 1988, JASA 83:231-241,
+             eq. 4.1 with m_h = n_h - 1; Rao, Wu & Yue 1992, Survey Methodology 18:209-217,
+             section 2); multiplier 1/R.
+  supplied   replicate-weight columns shipped with the data, with their declared method and
+             scale (`supplied_factors`): successive-difference replication uses 4/R
+             (Fay & Train 1995, Proc. ASA Section on Government Statistics 154-159; ACS PUMS
+             User Guide section VII.B).
+
+Finite population correction: the jackknife multiplies each replicate's multiplier by
+(1 - f_h) of the deleted PSU's stratum (first-stage fraction; Wolter section 4.5, from memory).
+BRR, Fay and the bootstrap apply none; the factors' `notes` say so when fractions were declared.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+import polars as pl
+
+from pipeline.errors import DataError, Problem, SpecError
+from pipeline.estimation.hadamard import hadamard, order_at_least
+from pipeline.estimation.totals import GroupTotals
+
+METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap")
+SUPPLIED_METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap", "sdr")
+DEFAULT_BOOTSTRAP_REPLICATES = 500  # common practice, no source
+
+
+@dataclass(frozen=True)
+class ReplicateFactors:
+    """Replicate r multiplies the base weight of every respondent in PSU j by factors[r, j].
+
+    The variance of an estimate theta is scale * sum_r rscales[r] * (theta_r - centre_r)^2,
+    where centre_r is the full-sample estimate ("full") or the mean of the replicates that share
+    replicate_stratum[r] ("mean"; one group for every method but the stratified jackknife).
+    For supplied replicate weights `factors` has no columns (shape (R, 0)): the replicate totals
+    come from the weight columns themselves (`supplied_replicate_totals`).
+    """
+
+    factors: np.ndarray  # (R, P)
+    scale: float  # overall multiplier
+    rscales: np.ndarray  # (R,) per-replicate multipliers (ones when unused)
+    method: str  # "jk1" | "jkn" | "brr" | "fay" | "bootstrap" | "sdr"
+    centre: str = "full"  # "full": deviations around the full-sample estimate; "mean": around the replicate mean
+    df: int | None = None  # degrees of freedom for intervals and tests (see replicate_variance.replicate_df)
+    replicate_stratum: np.ndarray | None = None  # (R,) group of each replicate for centre "mean"
+    supplied: bool = False  # True: replicate weights read from the data
+    notes: tuple[str, ...] = field(default_factory=tuple)  # methodology notes for the book
+
+    def __post_init__(self) -> None:
+        if self.centre not in ("full", "mean"):
+            raise SpecError(
+                "unknown replicate centre",
+                [Problem(rule="bad-option", message=f"centre must be 'full' or 'mean', not {self.centre!r}")],
+            )
+
+    @property
+    def n_replicates(self) -> int:
+        """R, the number of replicates."""
+        return self.factors.shape[0]
+
+
+def make_replicates(
+    method: str,
+    psu_stratum: np.ndarray,
+    *,
+    fay: float = 0.0,
+    replicates: int | None = None,
+    seed: int | None = None,
+    sampling_fraction: np.ndarray | None = None,
+    stratum_labels: Sequence[str] | None = None,
+    centre: str = "full",
+) -> ReplicateFactors:
+    """PSU-level replicate factors for `method` (formulas in the module docstring).
+
+    psu_stratum: (P,) stratum index of each PSU (GroupTotals.psu_stratum).
+    fay: Fay's rho in [0, 1) for "brr"/"fay" (0 = plain BRR).
+    replicates: R for the bootstrap (default 500); ignored otherwise (R is set by the design).
+    seed: bootstrap random seed (None = 0, so runs reproduce).
+    sampling_fraction: (H,) first-stage sampling fraction per stratum, for the jackknife FPC.
+    stratum_labels: names of the strata, used in error messages.
+
+    Raises SpecError for an unknown method or bad option, DataError listing every stratum that the
+    method cannot handle (one PSU for the jackknife and bootstrap; not exactly two for BRR).
+    """
+    psu_stratum = np.asarray(psu_stratum, dtype=np.int64)
+    _check_options(method, fay=fay, replicates=replicates)
+    n_strata = int(psu_stratum.max()) + 1 if len(psu_stratum) else 0
+    n_h = np.bincount(psu_stratum, minlength=n_strata)
+    labels = tuple(stratum_labels) if stratum_labels is not None else tuple(str(h) for h in range(n_strata))
+    f_h = np.zeros(n_strata) if sampling_fraction is None else np.asarray(sampling_fraction, dtype=np.float64)
+    if method == "jk1":
+        _require_psus(n_h.sum(keepdims=True), labels=("all strata",), at_least=2, method=method)
+        return _jk1(psu_stratum, f_h, centre=centre, n_strata=n_strata)
+    if method == "jkn":
+        _require_psus(n_h, labels=labels, at_least=2, method=method)
+        return _jkn(psu_stratum, n_h, f_h, centre=centre)
+    if method in ("brr", "fay"):
+        _require_two(n_h, labels=labels)
+        return _brr(psu_stratum, fay, f_h, centre=centre)
+    _require_psus(n_h, labels=labels, at_least=2, method=method)
+    return _bootstrap(
+        psu_stratum,
+        n_h,
+        f_h,
+        replicates=replicates or DEFAULT_BOOTSTRAP_REPLICATES,
+        seed=0 if seed is None else seed,
+        centre=centre,
+    )
+
+
+def _check_options(method: str, *, fay: float, replicates: int | None) -> None:
+    problems = []
+    if method not in METHODS:
+        problems.append(
+            Problem(rule="bad-option", message=f"unknown replicate method {method!r}; use one of {', '.join(METHODS)}")
+        )
+    if not 0.0 <= fay < 1.0:
+        problems.append(Problem(rule="bad-option", message=f"Fay's coefficient must be in [0, 1), not {fay}"))
+    if method == "fay" and fay == 0.0:
+        problems.append(
+            Problem(rule="bad-option", message="method 'fay' needs a coefficient > 0 (with 0, ask for 'brr')")
+        )
+    if replicates is not None and replicates < 2:
+        problems.append(Problem(rule="bad-option", message=f"at least 2 replicates are needed, not {replicates}"))
+    if problems:
+        raise SpecError("the replicate options are invalid", problems)
+
+
+def _require_psus(n_h: np.ndarray, *, labels: Sequence[str], at_least: int, method: str) -> None:
+    bad = np.flatnonzero(n_h < at_least)
+    if len(bad):
+        raise DataError(
+            f"replicate method '{method}' needs at least {at_least} PSUs in every stratum",
+            [
+                Problem(
+                    rule="single-psu-stratum",
+                    message=f"{len(bad)} strata have fewer than {at_least} PSUs; declare a single-PSU policy "
+                    "for the design (collapse the stratum with a partner, or treat it as certainty)",
+                    count=len(bad),
+                    examples=tuple(str(labels[h]) for h in bad[:5]),
+                )
+            ],
+        )
+
+
+def _require_two(n_h: np.ndarray, *, labels: Sequence[str]) -> None:
+    bad = np.flatnonzero(n_h != 2)
+    if len(bad):
+        raise DataError(
+            "balanced repeated replication needs exactly 2 PSUs in every stratum",
+            [
+                Problem(
+                    rule="brr-needs-two-psus",
+                    message=f"{len(bad)} strata do not have exactly 2 PSUs (they have "
+                    + ", ".join(f"{labels[h]}: {n_h[h]}" for h in bad[:5])
+                    + "); use the stratified jackknife ('jkn') or the bootstrap instead",
+                    count=len(bad),
+                    examples=tuple(str(labels[h]) for h in bad[:5]),
+                )
+            ],
+        )
+
+
+def _fpc_note(method: str, f_h: np.ndarray) -> tuple[str, ...]:
+    if np.any(f_h > 0):
+        return (f"No finite population correction is applied with {method} replicates.",)
+    return ()
+
+
+def _jk1(psu_stratum: np.ndarray, f_h: np.ndarray, *, centre: str, n_strata: int) -> ReplicateFactors:
+    """Delete-one-PSU jackknife ignoring strata (Wolter 2007 section 4.2, from memory)."""
+    p = len(psu_stratum)
+    factors = np.full((p, p), p / (p - 1))
+    np.fill_diagonal(factors, 0.0)
+    notes = ("JK1 treats all PSUs as one stratum.",) if n_strata > 1 else ()
+    return ReplicateFactors(
+        factors=factors,
+        scale=(p - 1) / p,
+        rscales=1.0 - f_h[psu_stratum],
+        method="jk1",
+        centre=centre,
+        df=p - 1,
+        replicate_stratum=np.zeros(p, dtype=np.int64),
+        notes=notes,
+    )
+
+
+def _jkn(psu_stratum: np.ndarray, n_h: np.ndarray, f_h: np.ndarray, *, centre: str) -> ReplicateFactors:
+    """Stratified delete-one-PSU jackknife (Rust & Rao 1996 section 3; Wolter 2007 section 4.5)."""
+    p = len(psu_stratum)
+    same = psu_stratum[:, None] == psu_stratum[None, :]
+    factors = np.where(same, (n_h / (n_h - 1))[psu_stratum][:, None], 1.0)
+    np.fill_diagonal(factors, 0.0)
+    nr = n_h[psu_stratum]
+    return ReplicateFactors(
+        factors=factors,
+        scale=1.0,
+        rscales=(nr - 1) / nr * (1.0 - f_h[psu_stratum]),
+        method="jkn",
+        centre=centre,
+        df=p - len(n_h),
+        replicate_stratum=psu_stratum.copy(),
+    )
+
+
+def _brr(psu_stratum: np.ndarray, rho: float, f_h: np.ndarray, *, centre: str) -> ReplicateFactors:
+    """BRR / Fay factors from a Hadamard matrix of order R > H (full orthogonal balance).
+
+    Columns 1..H of the normalised matrix (the all-ones column 0 is skipped) give alpha_rh, so
+    sum_r alpha_rh = 0 and sum_r alpha_rh alpha_rh' = 0 for h != h' (Wolter 2007 section 3.3:
+    H < R <= H + 4 for such a set, from memory); R is the smallest constructible order above H.
+    """
+    n_strata = len(f_h)
+    r = order_at_least(n_strata + 1)
+    alpha = hadamard(r)[:, 1 : n_strata + 1].astype(np.float64)  # (R, H)
+    first = np.zeros(len(psu_stratum), dtype=bool)
+    first[np.unique(psu_stratum, return_index=True)[1]] = True
+    sign = np.where(first, 1.0, -1.0)
+    factors = 1.0 + (1.0 - rho) * alpha[:, psu_stratum] * sign[None, :]
+    return ReplicateFactors(
+        factors=factors,
+        scale=1.0 / (r * (1.0 - rho) ** 2),
+        rscales=np.ones(r),
+        method="fay" if rho > 0 else "brr",
+        centre=centre,
+        df=n_strata,
+        replicate_stratum=np.zeros(r, dtype=np.int64),
+        notes=_fpc_note("BRR" if rho == 0 else "Fay", f_h),
+    )
+
+
+def _bootstrap(
+    psu_stratum: np.ndarray, n_h: np.ndarray, f_h: np.ndarray, *, replicates: int, seed: int, centre: str
+) -> ReplicateFactors:
+    """Rao-Wu rescaling bootstrap, m_h = n_h - 1 (Rao & Wu 1988 eq. 4.1; Rao, Wu & Yue 1992 section 2).
+
+    In each replicate and stratum, m_h = n_h - 1 PSUs are drawn with replacement; PSU j's factor is
+    n_h / (n_h - 1) times the number of times it was drawn, so the factors of a stratum sum to n_h.
+    All draws of all replicates are made at once (one uniform array, one bincount).
+    """
+    p, n_strata = len(psu_stratum), len(n_h)
+    order = np.argsort(psu_stratum, kind="stable")
+    start = np.concatenate([[0], np.cumsum(n_h)[:-1]])
+    draw_stratum = np.repeat(np.arange(n_strata), n_h - 1)  # (D,), D = P - H
+    rng = np.random.default_rng(seed)
+    u = rng.random((replicates, len(draw_stratum)))
+    drawn = order[start[draw_stratum] + np.floor(u * n_h[draw_stratum]).astype(np.int64)]
+    flat = (np.arange(replicates)[:, None] * p + drawn).ravel()
+    counts = np.bincount(flat, minlength=replicates * p).reshape(replicates, p)
+    factors = counts * (n_h / (n_h - 1))[psu_stratum][None, :]
+    return ReplicateFactors(
+        factors=factors,
+        scale=1.0 / replicates,
+        rscales=np.ones(replicates),
+        method="bootstrap",
+        centre=centre,
+        df=p - n_strata,
+        replicate_stratum=np.zeros(replicates, dtype=np.int64),
+        notes=_fpc_note("bootstrap", f_h),
+    )
+
+
+def supplied_factors(
+    method: str,
+    replicates: int,
+    *,
+    fay: float = 0.0,
+    scale: float | None = None,
+    rscales: np.ndarray | None = None,
+    centre: str = "full",
+    df: int | None = None,
+) -> ReplicateFactors:
+    """The variance recipe of replicate-weight columns shipped with the data.
+
+    Default multipliers when `scale` is not declared: sdr 4/R (Fay & Train 1995; ACS PUMS User
+    Guide VII.B), jk1 (R-1)/R, brr 1/R, fay 1/(R (1-rho)^2), bootstrap 1/R; jkn needs the declared
+    per-replicate `rscales` ((n_h-1)/n_h of each replicate's stratum). df: declared, else R - 1
+    (common practice, no source).
+    """
+    problems = []
+    if method not in SUPPLIED_METHODS:
+        problems.append(
+            Problem(
+                rule="bad-option",
+                message=f"unknown method {method!r} for supplied replicate weights; use one of {', '.join(SUPPLIED_METHODS)}",
+            )
+        )
+    if replicates < 2:
+        problems.append(Problem(rule="bad-option", message=f"at least 2 replicate-weight columns are needed, not {replicates}"))
+    if method == "jkn" and rscales is None:
+        problems.append(
+            Problem(rule="bad-option", message="supplied 'jkn' replicate weights need their per-replicate multipliers")
+        )
+    if not 0.0 <= fay < 1.0:
+        problems.append(Problem(rule="bad-option", message=f"Fay's coefficient must be in [0, 1), not {fay}"))
+    if rscales is not None and np.shape(rscales) != (replicates,):
+        problems.append(
+            Problem(rule="bad-option", message=f"{np.size(rscales)} per-replicate multipliers for {replicates} replicates")
+        )
+    if problems:
+        raise SpecError("the supplied replicate-weight options are invalid", problems)
+    defaults = {
+        "sdr": 4.0 / replicates,
+        "jk1": (replicates - 1) / replicates,
+        "jkn": 1.0,
+        "brr": 1.0 / replicates,
+        "fay": 1.0 / (replicates * (1.0 - fay) ** 2),
+        "bootstrap": 1.0 / replicates,
+    }
+    return ReplicateFactors(
+        factors=np.empty((replicates, 0)),
+        scale=defaults[method] if scale is None else float(scale),
+        rscales=np.ones(replicates) if rscales is None else np.asarray(rscales, dtype=np.float64),
+        method=method,
+        centre=centre,
+        df=replicates - 1 if df is None else df,
+        replicate_stratum=np.zeros(replicates, dtype=np.int64),
+        supplied=True,
+    )
+
+
+def supplied_replicate_totals(
+    frame: pl.DataFrame,
+    quantities: dict[str, pl.Expr],
+    weights: Sequence[str],
+    *,
+    source: str | None = None,
+) -> np.ndarray:
+    """Replicate totals t_rk = sum_i W_ir y_ik from replicate-weight columns: one product W^T Y.
+
+    weights: the R replicate-weight columns, in replicate order. Raises DataError naming every
+    missing column and every column with missing, non-finite or negative weights (with counts);
+    `source` names the file in those messages.
+    """
+    missing = [c for c in weights if c not in frame.columns]
+    if missing:
+        raise DataError(
+            "replicate-weight columns are missing",
+            [Problem(rule="missing-column", message="replicate-weight column not in the data", file=source, column=c) for c in missing],
+        )
+    w = frame.select(pl.col(c).cast(pl.Float64) for c in weights)
+    bad = w.select(
+        *[pl.col(c).is_null().sum().alias(f"null:{c}") for c in weights],
+        *[(~pl.col(c).is_finite()).sum().alias(f"inf:{c}") for c in weights],
+        *[(pl.col(c) < 0).sum().alias(f"neg:{c}") for c in weights],
+    ).row(0, named=True)
+    what = {"null": "missing replicate weights", "inf": "non-finite replicate weights", "neg": "negative replicate weights"}
+    problems = [
+        Problem(rule="bad-weight", message=what[key.split(":", 1)[0]], file=source, column=key.split(":", 1)[1], count=n)
+        for key, n in bad.items()
+        if n
+    ]
+    if problems:
+        raise DataError("the replicate-weight columns are invalid", problems)
+    y = frame.select(expr.cast(pl.Float64).alias(name) for name, expr in quantities.items()).to_numpy()
+    return w.to_numpy().T @ y
+
+
+def _class_by_psu(gt: GroupTotals, values: np.ndarray) -> np.ndarray:
+    """(G,) -> (P, C): sum of `values` over the groups of each (PSU, class)."""
+    out = np.zeros((gt.n_psus, gt.n_classes))
+    np.add.at(out, (gt.psu, gt.cls), values)
+    return out
+
+
+def _base_column(gt: GroupTotals, base: str | None) -> np.ndarray:
+    if base is None:
+        raise ValueError("replaying a weighting recipe needs `base`, the quantity whose totals are the weight sums")
+    return gt.totals[:, gt.column(base)]
+
+
+def reweighted_totals(
+    gt: GroupTotals, *, reweight: Callable[[np.ndarray], np.ndarray], base: str
+) -> np.ndarray:
+    """Full-sample totals after the recipe: t_k = sum_c f(c) Y_c[c, k], f = reweight(B) with B the
+    class totals of the weights in `gt` (the quantity `base` = 1 for every respondent). (K,)"""
+    b = gt.class_totals(_base_column(gt, base)[:, None])[:, 0]
+    f = np.asarray(reweight(b[None, :]), dtype=np.float64)[0]
+    return f @ gt.class_totals()
+
+
+def replicate_totals(
+    gt: GroupTotals,
+    rf: ReplicateFactors,
+    *,
+    reweight: Callable[[np.ndarray], np.ndarray] | None = None,
+    base: str | None = None,
+    chunk_bytes: int = 256 * 2**20,
+) -> np.ndarray:
+    """Replicate totals of every quantity: (R, K).
+
+    Without a recipe: t_r = A_r @ Y_psu, i.e. factors (R, P) times PSU totals (P, K).
+    With a recipe: B_r(c) = sum_g a_r(j_g) W_g 1[c_g = c] are the replicate class totals of the
+    weights (W = totals of the quantity `base`, which is 1 for every respondent), f_r = reweight(B)
+    (R, C) are the replayed class factors, and t_rk = sum_g a_r(j_g) f_r(c_g) Y[g, k]
+    (../shared/DESIGN.md). This is computed as f_r @ Y_class plus a correction over the groups
+    whose PSU factor differs from 1 (sparse for the jackknife and BRR-like sets), or as a dense
+    (R, G) @ (G, K) product in chunks of at most `chunk_bytes` of replicate weights when most
+    factors differ from 1 (bootstrap). No loop over replicates, no respondent-level matrix.
+    """
+    if rf.supplied:
+        raise ValueError("supplied replicate weights have no PSU factors: use supplied_replicate_totals")
+    if rf.factors.shape[1] != gt.n_psus:
+        raise ValueError(f"the factors have {rf.factors.shape[1]} PSUs, the group totals {gt.n_psus}")
+    if reweight is None:
+        return rf.factors @ gt.psu_totals()
+    b = rf.factors @ _class_by_psu(gt, _base_column(gt, base))  # (R, C)
+    f = np.asarray(reweight(b), dtype=np.float64)
+    if f.shape != b.shape:
+        raise ValueError(f"reweight returned shape {f.shape}, expected {b.shape}")
+    delta = rf.factors - 1.0
+    if np.count_nonzero(delta) <= 0.1 * delta.size:
+        return f @ gt.class_totals() + _sparse_correction(gt, delta, f)
+    rows = max(1, chunk_bytes // (8 * max(len(gt.psu), 1)))
+    return np.concatenate(
+        [
+            (rf.factors[s : s + rows][:, gt.psu] * f[s : s + rows][:, gt.cls]) @ gt.totals
+            for s in range(0, rf.n_replicates, rows)
+        ]
+    )
+
+
+def _sparse_correction(gt: GroupTotals, delta: np.ndarray, f: np.ndarray) -> np.ndarray:
+    """sum_g (a_r(j_g) - 1) f_r(c_g) Y[g, :] over the (replicate, PSU) pairs with a_r(j) != 1."""
+    from scipy import sparse
+
+    order = np.argsort(gt.psu, kind="stable")
+    count = np.bincount(gt.psu, minlength=gt.n_psus)
+    start = np.concatenate([[0], np.cumsum(count)[:-1]])
+    r_idx, p_idx = np.nonzero(delta)
+    reps = count[p_idx]
+    rows = np.repeat(r_idx, reps)
+    offset = np.arange(reps.sum()) - np.repeat(np.cumsum(reps) - reps, reps)
+    groups = order[np.repeat(start[p_idx], reps) + offset]
+    values = np.repeat(delta[r_idx, p_idx], reps) * f[rows, gt.cls[groups]]
+    matrix = sparse.csr_matrix((values, (rows, groups)), shape=(delta.shape[0], len(gt.psu)))
+    return np.asarray(matrix @ gt.totals)
