@@ -1,0 +1,32 @@
+"""`wavebook run`: stage the waves whose files changed, compute the tables, write the result book."""
+
+from __future__ import annotations
+
+import argparse
+
+HELP = "stage changed waves, compute the tables and write the HTML result book"
+EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """SPEC, --out, --restage (--quiet is added by pipeline.cli)."""
+    parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
+    parser.add_argument(
+        "--out",
+        metavar="BOOK.html",
+        help="where to write the book (default: book/<spec name>.html beside the spec)",
+    )
+    parser.add_argument(
+        "--restage",
+        action="store_true",
+        help="stage every wave again, even those whose raw file has not changed",
+    )
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run the study and print the book's path."""
+    from pipeline.runner import run_study
+
+    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet)
+    print(path)
+    return 0
