@@ -1,0 +1,396 @@
+"""`estimate()`: means, totals, proportions, ratios and quantiles with design-based standard errors.
+
+One call does, in order:
+1. builds the quantity expressions of every requested estimate, for the whole sample and for
+   each domain of `by` (domain quantities are products with the domain indicator: no row subsets);
+2. for quantiles, the weighted CDF of each domain, then the indicator 1[y <= q_hat] as a quantity;
+3. ONE grouped pass: `group_totals` by (stratum, PSU, class);
+4. estimates theta = t_num / t_den and their variances: Taylor (`taylor_variance`) or
+   replicates (`pipeline.estimation.replicates`), design effects (`deff`), intervals.
+
+Missing answers are excluded from a variable's base (and counted out of n); a domain with no
+respondents who answered, or a ratio whose denominator total is 0, gives a row with a missing
+estimate and the reason in `reason`.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import polars as pl
+
+from pipeline.errors import DataError, Problem, SpecError
+from pipeline.estimation import deff as deff_mod
+from pipeline.estimation import intervals
+from pipeline.estimation.design import SampleDesign
+from pipeline.estimation.estimands import Ratios
+from pipeline.estimation.quantiles import weighted_cdfs, woodruff_interval
+from pipeline.estimation.result import COLUMNS, EstimateTable, interval
+from pipeline.estimation.taylor import Calibration, taylor_variance
+from pipeline.estimation.totals import GroupTotals, group_totals
+
+VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "sdr", "supplied")
+WEIGHT_QUANTITY = "__weight"
+
+
+@dataclass(frozen=True)
+class _Cell:
+    """One requested estimate: names of its numerator, denominator, base and moment quantities."""
+
+    statistic: str
+    variable: str
+    category: str
+    domain: str
+    num: str
+    den: str | None
+    base: str
+    s_nn: str
+    s_nd: str | None
+    s_dd: str | None
+    prob: float = np.nan  # quantiles only
+
+
+def _as_list(value: object) -> list:
+    if value is None:
+        return []
+    if isinstance(value, str | tuple):
+        return [value]
+    return list(value)
+
+
+def _answered(col: str, frame: pl.DataFrame) -> pl.Expr:
+    expr = pl.col(col).is_not_null()
+    if frame.schema[col].is_float():
+        expr = expr & pl.col(col).is_not_nan()
+    return expr
+
+
+def _domains(frame: pl.DataFrame, by: str | None) -> dict[str, pl.Expr]:
+    """Domain label -> boolean expression: the whole sample ("") and each level of `by` (missing as its own level)."""
+    out: dict[str, pl.Expr] = {"": pl.lit(True)}
+    if by is None:
+        return out
+    levels = frame[by].drop_nulls().unique().sort().to_list()
+    for v in levels:
+        out[f"{by}={v}"] = pl.col(by).eq(v).fill_null(False)
+    if frame[by].null_count():
+        out[f"{by}=(missing)"] = pl.col(by).is_null()
+    return out
+
+
+class _Plan:
+    """The quantity expressions and the cells that read them."""
+
+    def __init__(self) -> None:
+        self.quantities: dict[str, pl.Expr] = {WEIGHT_QUANTITY: pl.lit(1.0)}
+        self.cells: list[_Cell] = []
+
+    def q(self, name: str, expr: pl.Expr) -> str:
+        self.quantities.setdefault(name, expr.cast(pl.Float64))
+        return name
+
+    def mean_or_total(self, frame: pl.DataFrame, var: str, dom: str, d: pl.Expr, *, statistic: str) -> None:
+        a = (_answered(var, frame) & d).cast(pl.Float64)
+        y = pl.col(var).cast(pl.Float64).fill_null(0.0).fill_nan(0.0)
+        base = self.q(f"base|{var}|{dom}", a)
+        num = self.q(f"y|{var}|{dom}", y * a)
+        sq = self.q(f"y2|{var}|{dom}", y * y * a)
+        if statistic == "mean":
+            self.cells.append(_Cell("mean", var, "", dom, num, base, base, sq, num, base))
+        else:
+            self.cells.append(_Cell("total", var, "", dom, num, None, base, sq, None, None))
+
+    def proportion(self, frame: pl.DataFrame, var: str, dom: str, d: pl.Expr, categories: list) -> None:
+        base = self.q(f"base|{var}|{dom}", (_answered(var, frame) & d).cast(pl.Float64))
+        for c in categories:
+            num = self.q(f"eq|{var}|{c}|{dom}", (pl.col(var).eq(c).fill_null(False) & d).cast(pl.Float64))
+            self.cells.append(_Cell("proportion", var, str(c), dom, num, base, base, num, num, base))
+
+    def ratio(self, frame: pl.DataFrame, num_col: str, den_col: str, dom: str, d: pl.Expr) -> None:
+        a = (_answered(num_col, frame) & _answered(den_col, frame) & d).cast(pl.Float64)
+        y = pl.col(num_col).cast(pl.Float64).fill_null(0.0).fill_nan(0.0)
+        x = pl.col(den_col).cast(pl.Float64).fill_null(0.0).fill_nan(0.0)
+        key = f"{num_col}/{den_col}|{dom}"
+        base = self.q(f"rbase|{key}", a)
+        num = self.q(f"rnum|{key}", y * a)
+        den = self.q(f"rden|{key}", x * a)
+        s_nn = self.q(f"ryy|{key}", y * y * a)
+        s_nd = self.q(f"rxy|{key}", x * y * a)
+        s_dd = self.q(f"rxx|{key}", x * x * a)
+        self.cells.append(_Cell("ratio", f"{num_col}/{den_col}", "", dom, num, den, base, s_nn, s_nd, s_dd))
+
+    def quantile(self, frame: pl.DataFrame, var: str, prob: float, point: float, dom: str, d: pl.Expr) -> None:
+        base = self.q(f"base|{var}|{dom}", (_answered(var, frame) & d).cast(pl.Float64))
+        below = pl.col(var).cast(pl.Float64).le(point).fill_null(False) if np.isfinite(point) else pl.lit(False)
+        num = self.q(f"le|{var}|{prob!r}|{dom}", (below & d).cast(pl.Float64))
+        self.cells.append(_Cell("quantile", var, f"{prob:g}", dom, num, base, base, num, num, base, prob))
+
+
+def _parse_quantiles(quantile: object) -> list[tuple[str, float]]:
+    """(column, q) pairs from a pair or a list of pairs; q must lie in (0, 1)."""
+    items = _as_list(quantile)
+    if len(items) == 2 and isinstance(items[0], str) and not isinstance(items[1], str | tuple | list):
+        items = [tuple(items)]
+    out = []
+    for item in items:
+        col, prob = item
+        if not 0.0 < float(prob) < 1.0:
+            raise SpecError("bad quantile", [Problem(rule="bad-quantile", message="quantile probability must be strictly between 0 and 1", column=col, value=str(prob))])
+        out.append((col, float(prob)))
+    return out
+
+
+def _parse_ratios(ratio: object) -> list[tuple[str, str]]:
+    items = _as_list(ratio)
+    if len(items) == 2 and all(isinstance(i, str) for i in items):
+        items = [tuple(items)]
+    return [(str(a), str(b)) for a, b in items]
+
+
+def estimate_table(
+    frame: pl.DataFrame,
+    *,
+    weight: str,
+    strata: str | None = None,
+    psu: str | None = None,
+    fpc: str | Mapping[str, float] | None = None,
+    psu_ids: str = "nested",
+    mean: str | Sequence[str] | None = None,
+    total: str | Sequence[str] | None = None,
+    proportion: str | Sequence[str] | None = None,
+    ratio: tuple[str, str] | Sequence[tuple[str, str]] | None = None,
+    quantile: tuple[str, float] | Sequence[tuple[str, float]] | None = None,
+    by: str | None = None,
+    variance: str = "taylor",
+    replicate_cols: str | Sequence[str] | None = None,
+    replicate_scale: float | None = None,
+    fay: float = 0.0,
+    replicates: int | None = None,
+    seed: int | None = None,
+    level: float = 0.95,
+    single_psu: str = "error",
+    collapse_with: Mapping[str, str] | None = None,
+    classes: str | None = None,
+    calibration_matrix: np.ndarray | None = None,
+    reweight: Callable[[np.ndarray], np.ndarray] | None = None,
+    source: str | None = None,
+) -> EstimateTable:
+    """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
+    design = SampleDesign(
+        weight=weight, strata=strata, psu=psu, psu_ids=psu_ids, fpc=fpc,  # type: ignore[arg-type]
+        single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
+    )
+    _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
+                   by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source)
+    domains = _domains(frame, by)
+    plan = _Plan()
+    for dom, d in domains.items():
+        for var in _as_list(mean):
+            plan.mean_or_total(frame, var, dom, d, statistic="mean")
+        for var in _as_list(total):
+            plan.mean_or_total(frame, var, dom, d, statistic="total")
+        for var in _as_list(proportion):
+            plan.proportion(frame, var, dom, d, frame[var].drop_nulls().unique().sort().to_list())
+        for num_col, den_col in _parse_ratios(ratio):
+            plan.ratio(frame, num_col, den_col, dom, d)
+    cdfs = {}
+    for var, prob in _parse_quantiles(quantile):
+        cdfs[var] = cdfs.get(var) or weighted_cdfs(frame, value=var, weight=weight, domains=domains)
+        for dom, d in domains.items():
+            point = float(cdfs[var][dom].quantile(prob))
+            plan.quantile(frame, var, prob, point, dom, d)
+    gt = group_totals(frame, plan.quantities, weight=weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
+    ratios, t = _ratios(plan, gt), gt.totals.sum(axis=0)
+    if variance == "taylor":
+        layout = design.layout(gt, fpc_values=design.fpc_values(frame))
+        calibration = None
+        if calibration_matrix is not None:
+            calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
+        theta, v = taylor_variance(gt, ratios, layout, calibration=calibration)
+        df: float = layout.df
+        has_fpc = layout.has_fpc
+    else:
+        theta, v, df = _replicate_variance(frame, gt, plan, ratios, variance=variance, replicate_cols=replicate_cols,
+                                           replicate_scale=replicate_scale, fay=fay, replicates=replicates, seed=seed,
+                                           reweight=reweight)
+        has_fpc = False
+    return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
+
+
+def estimate(frame: pl.DataFrame, **options: object) -> pl.DataFrame:
+    """Design-based estimates, one row per estimate, as a polars DataFrame.
+
+    Columns: statistic, variable, category, domain, estimate, se, ci_low, ci_high, df, deff, n,
+    n_eff, reason, method. Options (all keyword-only):
+      weight (required), strata, psu, fpc (column of stratum population counts N_h, a value <= 1
+      read as the sampling fraction; or a mapping stratum -> value), psu_ids ("nested"/"unique");
+      mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
+      quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
+      variance: "taylor" (default) or a replicate method: "jk1", "jkn", "brr", "fay", "bootstrap",
+      "sdr", "supplied" (replicate_cols: a regular expression matched against whole column names
+      or a list of names, replicate_scale: the variance multiplier); fay, replicates, seed for the
+      replicate methods; level: interval level (t intervals with the design df; quantiles: the
+      Woodruff interval); single_psu: "error", "certainty", "centre" or "collapse" (collapse_with);
+      classes + calibration_matrix: calibration residuals in Taylor (see `taylor`); classes +
+      reweight: the weighting replay for replicates.
+    Formulas: `taylor`, `design`, `deff`, `intervals`, `quantiles` module docstrings.
+    """
+    return estimate_table(frame, **options).frame  # type: ignore[arg-type]
+
+
+def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> None:
+    """Every problem with the request at once: unknown columns, nothing requested, unknown method."""
+    source = req["source"] if isinstance(req["source"], str) else None
+    problems: list[Problem] = []
+    wanted: list[str] = [*design.columns]
+    for key in ("mean", "total", "proportion"):
+        wanted += _as_list(req[key])
+    for a, b in _parse_ratios(req["ratio"]):
+        wanted += [a, b]
+    wanted += [c for c, _ in _parse_quantiles(req["quantile"])]
+    if req["by"] is not None:
+        wanted.append(str(req["by"]))
+    if req["classes"] is not None:
+        wanted.append(str(req["classes"]))
+    for col in dict.fromkeys(wanted):
+        if col not in frame.columns:
+            problems.append(Problem(rule="missing-column", message="column not in the data", file=source, column=col))
+    if not any(_as_list(req[k]) for k in ("mean", "total", "proportion", "ratio", "quantile")):
+        problems.append(Problem(rule="nothing-to-estimate", message="ask for at least one mean, total, proportion, ratio or quantile"))
+    if req["variance"] not in VARIANCE_METHODS:
+        problems.append(Problem(rule="bad-option", message=f"variance must be one of {', '.join(VARIANCE_METHODS)}", value=str(req["variance"])))
+    if req["variance"] == "supplied" and not req["replicate_cols"]:
+        problems.append(Problem(rule="bad-option", message="supplied replicate weights need replicate_cols (a pattern or a list)"))
+    if req["variance"] not in ("taylor",) and design.fpc is not None:
+        problems.append(Problem(rule="bad-option", message="the finite population correction is applied by Taylor variance only; drop the FPC or use variance 'taylor'"))
+    weight = design.weight
+    if weight in frame.columns and not frame.schema[weight].is_numeric():
+        problems.append(Problem(rule="bad-weight", message=f"the weight column is not numeric ({frame.schema[weight]})", file=source, column=weight))
+    if problems:
+        raise SpecError("the estimation request is invalid", problems)
+
+
+def _ratios(plan: _Plan, gt: GroupTotals) -> Ratios:
+    return Ratios(
+        num=[gt.column(c.num) for c in plan.cells],
+        den=[gt.column(c.den) if c.den is not None else -1 for c in plan.cells],
+    )
+
+
+def _replicate_variance(
+    frame: pl.DataFrame,
+    gt: GroupTotals,
+    plan: _Plan,
+    ratios: Ratios,
+    *,
+    variance: str,
+    replicate_cols: str | Sequence[str] | None,
+    replicate_scale: float | None,
+    fay: float,
+    replicates: int | None,
+    seed: int | None,
+    reweight: Callable[[np.ndarray], np.ndarray] | None,
+) -> tuple[np.ndarray, np.ndarray, float]:
+    """theta, replicate variances and df for a replicate method (E2's `pipeline.estimation.replicates`)."""
+    from pipeline.estimation import replicates as rep
+
+    theta = ratios.value(gt.totals.sum(axis=0))
+    if variance == "supplied":
+        cols = _replicate_columns(frame, replicate_cols)
+        if replicate_scale is None:
+            raise SpecError("supplied replicate weights need a scale", [Problem(rule="bad-option", message="give replicate_scale (e.g. 4/80 for 80 successive-difference replicates)")])
+        rf, rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, columns=cols, scale=replicate_scale)
+        n_rep = len(cols)
+    else:
+        rf = rep.make_replicates(variance, gt.psu_stratum, fay=fay, replicates=replicates, seed=seed)
+        if replicate_scale is not None:
+            rf = rep.ReplicateFactors(rf.factors, replicate_scale, rf.rscales, rf.method, rf.centre)
+        rep_totals = rep.replicate_totals(gt, rf, reweight=reweight)
+        n_rep = rf.factors.shape[0]
+    theta_r = ratios.value(rep_totals)
+    v = rep.replicate_variance(theta, theta_r, rf)
+    v = np.where(np.isfinite(theta), v, np.nan)
+    method = "supplied" if variance == "supplied" else ("fay" if variance == "brr" and fay > 0 else variance)
+    return theta, v, intervals.replicate_df(method, n_replicates=n_rep, n_psus=gt.n_psus, n_strata=gt.n_strata)
+
+
+def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] | None) -> list[str]:
+    """Replicate weight columns: a regular expression matched against whole names, or a list of names."""
+    if isinstance(replicate_cols, str):
+        pattern = re.compile(replicate_cols)
+        cols = [c for c in frame.columns if pattern.fullmatch(c)]
+    else:
+        cols = list(replicate_cols or [])
+    if not cols:
+        raise SpecError("no replicate weight columns", [Problem(rule="no-replicates", message="the replicate-column pattern matches no column", value=str(replicate_cols))])
+    return cols
+
+
+def _table(
+    plan: _Plan,
+    gt: GroupTotals,
+    ratios: Ratios,
+    t: np.ndarray,
+    theta: np.ndarray,
+    v: np.ndarray,
+    df: float,
+    cdfs: dict,
+    *,
+    level: float,
+    method: str,
+    has_fpc: bool,
+) -> EstimateTable:
+    """Assemble the rows: estimates, SEs, intervals, design effects, bases and reasons."""
+    cells = plan.cells
+    col = gt.column
+    base_idx = np.array([col(c.base) for c in cells])
+    n = gt.counts.sum(axis=0)[base_idx]
+    base_w = t[base_idx]
+    t0 = np.append(t, 0.0)  # index len(t) stands for an absent moment (0)
+    pick = lambda name: col(name) if name is not None else len(t)  # noqa: E731
+    s_nn = t0[[pick(c.s_nn) for c in cells]]
+    s_nd = t0[[pick(c.s_nd) for c in cells]]
+    s_dd = t0[[pick(c.s_dd) for c in cells]]
+    sum_wz2 = deff_mod.second_moment(ratios, t, s_nn=s_nn, s_nd=s_nd, s_dd=s_dd)
+    sum_wz = np.where(ratios.is_total, t[ratios.num], 0.0)
+    v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=base_w, base_n=n, fpc=has_fpc)
+    deff = deff_mod.design_effect(v, v_srs)
+    se = np.sqrt(np.maximum(v, 0.0))
+    est = theta.copy()
+    low, high = interval(est, se, n, df, level=level, kind="t", proportion=False)
+    tcrit = float(intervals.critical_value(level, df))
+    reason = np.full(len(cells), "", dtype=object)
+    for i, c in enumerate(cells):
+        if base_w[i] <= 0 or n[i] == 0:
+            reason[i] = "no respondents in this domain with an answer" if c.domain else "no respondents with an answer"
+        elif not np.isfinite(theta[i]):
+            reason[i] = "denominator total is 0"
+        if c.statistic == "quantile" and not reason[i]:
+            cdf = cdfs[c.variable][c.domain]
+            est[i] = float(cdf.quantile(c.prob))
+            low[i], high[i], se[i] = woodruff_interval(cdf, c.prob, se[i], tcrit)
+    missing = reason != ""
+    for arr in (est, se, low, high, deff):
+        arr[missing] = np.nan
+    frame = pl.DataFrame(
+        {
+            "statistic": [c.statistic for c in cells],
+            "variable": [c.variable for c in cells],
+            "category": [c.category for c in cells],
+            "domain": [c.domain for c in cells],
+            "estimate": est,
+            "se": se,
+            "ci_low": low,
+            "ci_high": high,
+            "df": np.full(len(cells), float(df)),
+            "deff": deff,
+            "n": n.astype(np.int64),
+            "n_eff": deff_mod.effective_n(n, deff),
+            "reason": reason.astype(str).tolist(),
+            "method": [method] * len(cells),
+        }
+    ).select(*COLUMNS, "method")
+    return EstimateTable(frame.with_columns(pl.col(c).fill_nan(None) for c in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff")))

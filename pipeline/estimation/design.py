@@ -1,0 +1,246 @@
+"""The sample design as the variance sees it: strata, PSUs, finite population correction, single-PSU policy.
+
+The variance of an estimated total t = sum_h sum_j z_hj, where z_hj is the weighted total of a
+(linearized) variable in PSU j of stratum h, is estimated with the first-stage with-replacement
+("ultimate cluster") formula, with the first-stage finite population correction when it is given:
+
+    v(t) = sum_h (1 - f_h) * n_h / (n_h - 1) * sum_j (z_hj - zbar_h)^2,     zbar_h = (1/n_h) sum_j z_hj
+
+n_h PSUs sampled in stratum h, f_h = n_h / N_h their sampling fraction (0 without an FPC).
+References: Cochran (1977), Sampling Techniques, 3rd ed., section 11.8, eq. (11.30) with
+replacement (from memory); Wolter (2007), Introduction to Variance Estimation, 2nd ed., section 1.4
+(from memory); Lohr (2022), Sampling: Design and Analysis, 3rd ed., sections 3.2 (stratified SRS,
+eq. 3.6) and 6.3 / 7.5 (with-replacement PSU variance, from memory). For a stratified SRS of
+respondents (each respondent its own PSU, weights N_h / n_h) it is exactly Lohr's eq. (3.6).
+
+Strata with a single PSU have no within-stratum deviation; the policy says what to do:
+  "error"      stop, naming the strata (default);
+  "certainty"  treat the lone PSU as selected with certainty: it contributes 0;
+  "centre"     replace the stratum mean by the grand mean of all PSU totals,
+               zbar = (1/P) sum_{h, j} z_hj, and add (1 - f_h) * (z_h1 - zbar)^2 (a conservative
+               device; our own precise definition, following the idea of measuring the lone
+               PSU's deviation from the overall centre -- from memory, no printed source to hand);
+  "collapse"   merge the stratum into a declared partner stratum before computing (Wolter 2007,
+               section 2.5, collapsed strata, from memory); N_h add up in the merged stratum.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+import polars as pl
+
+from pipeline.errors import DataError, Problem, SpecError
+from pipeline.estimation.totals import GroupTotals
+
+SinglePsu = Literal["error", "certainty", "centre", "collapse"]
+SINGLE_PSU_POLICIES: tuple[str, ...] = ("error", "certainty", "centre", "collapse")
+
+
+@dataclass(frozen=True)
+class SampleDesign:
+    """Which columns hold the design, and how to treat the FPC and lone PSUs.
+
+    fpc: a column holding, per respondent, its stratum's first-stage population count N_h (a value
+    of at most 1 is read as the sampling fraction f_h), or a mapping stratum label -> that value,
+    or None (with-replacement variance, no FPC).
+    psu_ids: "nested" (PSU ids restart within each stratum) or "unique" (unique across strata).
+    collapse_with: for single_psu "collapse", stratum label -> partner stratum label.
+    """
+
+    weight: str
+    strata: str | None = None
+    psu: str | None = None
+    psu_ids: Literal["nested", "unique"] = "nested"
+    fpc: str | Mapping[str, float] | None = None
+    single_psu: SinglePsu = "error"
+    collapse_with: Mapping[str, str] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        problems = []
+        if self.single_psu not in SINGLE_PSU_POLICIES:
+            problems.append(
+                Problem(
+                    rule="bad-option",
+                    message=f"single-PSU policy must be one of {', '.join(SINGLE_PSU_POLICIES)}",
+                    value=str(self.single_psu),
+                )
+            )
+        if self.psu_ids not in ("nested", "unique"):
+            problems.append(Problem(rule="bad-option", message="psu_ids must be 'nested' or 'unique'", value=str(self.psu_ids)))
+        if self.single_psu == "collapse" and not self.collapse_with:
+            problems.append(Problem(rule="bad-option", message="single-PSU policy 'collapse' needs partner strata (collapse_with)"))
+        if problems:
+            raise SpecError("the sample design is invalid", problems)
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The data columns the design reads."""
+        cols = [self.weight, self.strata, self.psu, self.fpc if isinstance(self.fpc, str) else None]
+        return tuple(c for c in cols if c is not None)
+
+    def fpc_values(self, frame: pl.DataFrame) -> dict[str, float] | None:
+        """Stratum label -> N_h (or f_h) from the fpc column or mapping; the column must be constant within stratum."""
+        if self.fpc is None:
+            return None
+        if not isinstance(self.fpc, str):
+            return {str(k): float(v) for k, v in self.fpc.items()}
+        if self.fpc not in frame.columns:
+            raise DataError("the data lack the FPC column", [Problem(rule="missing-column", message="FPC column not found", column=self.fpc)])
+        stratum = pl.col(self.strata) if self.strata else pl.lit("all")
+        per = (
+            frame.select(stratum.cast(pl.String).alias("s"), pl.col(self.fpc).cast(pl.Float64).alias("v"))
+            .group_by("s")
+            .agg(pl.col("v").min().alias("lo"), pl.col("v").max().alias("hi"), pl.col("v").null_count().alias("nulls"))
+            .sort("s")
+        )
+        bad = per.filter((pl.col("lo") != pl.col("hi")) | (pl.col("nulls") > 0) | pl.col("lo").is_null())
+        if bad.height:
+            raise DataError(
+                "the FPC column is not one value per stratum",
+                [
+                    Problem(
+                        rule="fpc-not-constant",
+                        message="the FPC must be given, and be the same, for every respondent of a stratum",
+                        column=self.fpc,
+                        count=bad.height,
+                        examples=tuple(bad["s"].head(5).to_list()),
+                    )
+                ],
+            )
+        return dict(zip(per["s"].to_list(), per["lo"].to_list(), strict=True))
+
+    def layout(self, gt: GroupTotals, *, fpc_values: Mapping[str, float] | None = None) -> PsuLayout:
+        """The PSU layout for variance: collapsed strata, sampling fractions f_h, single-PSU check."""
+        psu_stratum, labels = gt.psu_stratum, gt.stratum_labels
+        n_h = np.bincount(psu_stratum, minlength=len(labels))
+        population = _population_counts(labels, n_h, fpc_values, fpc_name=self.fpc)
+        if self.single_psu == "collapse":
+            psu_stratum, labels, population = _collapse(psu_stratum, labels, population, self.collapse_with)
+            n_h = np.bincount(psu_stratum, minlength=len(labels))
+        lone = [labels[h] for h in np.flatnonzero(n_h == 1)]
+        if lone and self.single_psu in ("error", "collapse"):
+            raise DataError(
+                "some strata have a single PSU, so their variance cannot be estimated",
+                [
+                    Problem(
+                        rule="single-psu",
+                        message="strata with one PSU; choose a single-PSU policy (certainty, centre, or collapse "
+                        "with a partner stratum) or fix the design columns",
+                        column=self.strata,
+                        count=len(lone),
+                        examples=tuple(lone[:20]),
+                    )
+                ],
+            )
+        fraction = np.zeros(len(labels)) if population is None else n_h / population
+        return PsuLayout(
+            psu_stratum=psu_stratum, stratum_labels=labels, fraction=fraction, single_psu=self.single_psu
+        )
+
+
+def _population_counts(
+    labels: tuple[str, ...], n_h: np.ndarray, values: Mapping[str, float] | None, *, fpc_name: object
+) -> np.ndarray | None:
+    """N_h per stratum from counts or fractions (a value <= 1 is f_h, so N_h = n_h / f_h)."""
+    if values is None:
+        return None
+    column = fpc_name if isinstance(fpc_name, str) else None
+    missing = [s for s in labels if s not in values]
+    problems = []
+    if missing:
+        problems.append(Problem(rule="fpc-missing", message="no FPC for these strata", column=column, count=len(missing), examples=tuple(missing[:20])))
+    pop = np.array([values.get(s, np.nan) for s in labels], dtype=np.float64)
+    as_count = np.where((pop > 0) & (pop <= 1), n_h / np.where(pop > 0, pop, 1.0), pop)
+    bad = [s for s, v, n in zip(labels, as_count, n_h, strict=True) if s not in missing and not (v >= n and np.isfinite(v))]
+    if bad:
+        problems.append(
+            Problem(
+                rule="fpc-too-small",
+                message="the FPC gives a population smaller than the number of sampled PSUs (or is 0 / negative)",
+                column=column,
+                count=len(bad),
+                examples=tuple(bad[:20]),
+            )
+        )
+    if problems:
+        raise DataError("the finite population correction is invalid", problems)
+    return as_count
+
+
+def _collapse(
+    psu_stratum: np.ndarray, labels: tuple[str, ...], population: np.ndarray | None, partners: Mapping[str, str]
+) -> tuple[np.ndarray, tuple[str, ...], np.ndarray | None]:
+    """Merge each stratum into its declared partner (one level: partners are not chained)."""
+    index = {s: h for h, s in enumerate(labels)}
+    unknown = [f"{a}->{b}" for a, b in partners.items() if str(a) not in index or str(b) not in index]
+    if unknown:
+        raise DataError(
+            "collapse partners name strata not in the data",
+            [Problem(rule="collapse-unknown", message="unknown strata in collapse pairs", count=len(unknown), examples=tuple(unknown[:20]))],
+        )
+    target = np.arange(len(labels))
+    for a, b in partners.items():
+        target[index[str(a)]] = index[str(b)]
+    kept = np.unique(target)
+    renumber = np.full(len(labels), -1)
+    renumber[kept] = np.arange(len(kept))
+    new_population = None
+    if population is not None:
+        new_population = np.bincount(renumber[target], weights=population, minlength=len(kept))
+    new_labels = tuple("+".join(labels[h] for h in np.flatnonzero(target == k)) for k in kept)
+    return renumber[target][psu_stratum], new_labels, new_population
+
+
+@dataclass(frozen=True)
+class PsuLayout:
+    """Everything the with-replacement PSU variance needs: each PSU's stratum and each stratum's f_h."""
+
+    psu_stratum: np.ndarray  # (P,) stratum index (after collapsing)
+    stratum_labels: tuple[str, ...]
+    fraction: np.ndarray  # (H,) first-stage sampling fraction f_h (0 without FPC)
+    single_psu: str
+
+    @property
+    def n_strata(self) -> int:
+        """H after collapsing."""
+        return len(self.stratum_labels)
+
+    @property
+    def df(self) -> int:
+        """Design degrees of freedom: number of PSUs minus number of strata (Lohr 3rd ed. section 9.6? from memory)."""
+        return len(self.psu_stratum) - self.n_strata
+
+    @property
+    def has_fpc(self) -> bool:
+        """Whether a finite population correction is applied."""
+        return bool(np.any(self.fraction > 0))
+
+    def _deviations(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(P, m) PSU totals -> deviations from the stratum (or grand) mean and the per-PSU multiplier."""
+        h = self.psu_stratum
+        n_h = np.bincount(h, minlength=self.n_strata).astype(np.float64)
+        sums = np.zeros((self.n_strata, z.shape[1]))
+        np.add.at(sums, h, z)
+        centre = sums / np.maximum(n_h, 1)[:, None]
+        lone = n_h == 1
+        if self.single_psu == "centre" and lone.any():
+            centre[lone] = z.mean(axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            factor = (1.0 - self.fraction) * np.where(lone, 1.0, n_h / (n_h - 1))
+        if self.single_psu != "centre":
+            factor = np.where(lone, 0.0, factor)
+        return z - centre[h], factor[h]
+
+    def variance(self, z: np.ndarray) -> np.ndarray:
+        """(P, m) PSU totals of linearized variables -> (m,) variances, sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2."""
+        dev, factor = self._deviations(np.asarray(z, dtype=np.float64))
+        return (factor[:, None] * dev**2).sum(axis=0)
+
+    def covariance(self, z: np.ndarray) -> np.ndarray:
+        """(P, m) PSU totals -> (m, m) covariance matrix, the same formula with cross-products."""
+        dev, factor = self._deviations(np.asarray(z, dtype=np.float64))
+        return (factor[:, None] * dev).T @ dev
