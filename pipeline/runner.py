@@ -16,8 +16,12 @@ import sys
 from pathlib import Path
 
 from pipeline import progress
+from pipeline.book import render_book
+from pipeline.database import open_database, staged_waves
 from pipeline.errors import DataError, Problem
-from pipeline.spec import Study
+from pipeline.spec import Study, load_spec
+from pipeline.stage import stage_wave
+from pipeline.topline import unweighted_toplines
 
 _CHUNK = 1 << 20
 
@@ -43,8 +47,6 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     or when the SHA-256 of its raw file differs from the one recorded at its last staging.
     Raises DataError listing every wave whose raw file is missing.
     """
-    from pipeline.database import open_database, staged_waves
-
     missing = [
         Problem("wave-file-missing", f"the raw file of wave '{w.id}' does not exist", file=str(w.file), value=w.id)
         for w in study.waves
@@ -69,12 +71,6 @@ def run_study(spec_path: str | Path, *, out: str | Path | None = None, restage: 
     unweighted toplines of every declared wave and renders the book to `out` (default
     `default_book_path`). Raises SpecError / DataError with every problem found.
     """
-    from pipeline.book import render_book
-    from pipeline.database import open_database
-    from pipeline.spec import load_spec
-    from pipeline.stage import stage_wave
-    from pipeline.topline import unweighted_toplines
-
     study = load_spec(spec_path)
     for wave_id in waves_to_stage(study, restage=restage):
         with progress.step(f"staging wave {wave_id}", quiet=quiet):

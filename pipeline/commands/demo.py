@@ -64,8 +64,8 @@ def copy_demo(folder: str | Path, *, force: bool = False) -> Path:
 
 def run(args: argparse.Namespace) -> int:
     """Copy the demo study, run it and print the book's path."""
+    folder = copy_demo(args.folder, force=args.force)
     from pipeline.runner import run_study
 
-    folder = copy_demo(args.folder, force=args.force)
     print(run_study(folder / DEMO_SPEC, quiet=args.quiet))
     return 0
