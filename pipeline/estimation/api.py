@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import polars as pl
@@ -25,14 +25,14 @@ import polars as pl
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation import deff as deff_mod
 from pipeline.estimation import intervals
-from pipeline.estimation.design import SampleDesign
+from pipeline.estimation.design import SampleDesign, sampling_fractions
 from pipeline.estimation.estimands import Ratios
 from pipeline.estimation.quantiles import weighted_cdfs, woodruff_interval
 from pipeline.estimation.result import COLUMNS, EstimateTable, interval
 from pipeline.estimation.taylor import Calibration, taylor_variance
 from pipeline.estimation.totals import GroupTotals, group_totals
 
-VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "sdr", "supplied")
+VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied")
 WEIGHT_QUANTITY = "__weight"
 
 
@@ -167,6 +167,7 @@ def estimate_table(
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
     replicate_scale: float | None = None,
+    replicate_method: str = "sdr",
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -203,21 +204,34 @@ def estimate_table(
             point = float(cdfs[var][dom].quantile(prob))
             plan.quantile(frame, var, prob, point, dom, d)
     gt = group_totals(frame, plan.quantities, weight=weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
-    ratios, t = _ratios(plan, gt), gt.totals.sum(axis=0)
+    final = _final_totals(gt, reweight)
+    ratios, t = _ratios(plan, gt), final.totals.sum(axis=0)
+    fpc_values = design.fpc_values(frame)
     if variance == "taylor":
-        layout = design.layout(gt, fpc_values=design.fpc_values(frame))
+        layout = design.layout(final, fpc_values=fpc_values)
         calibration = None
         if calibration_matrix is not None:
             calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
-        theta, v = taylor_variance(gt, ratios, layout, calibration=calibration)
+        theta, v = taylor_variance(final, ratios, layout, calibration=calibration)
         df: float = layout.df
         has_fpc = layout.has_fpc
     else:
-        theta, v, df = _replicate_variance(frame, gt, plan, ratios, variance=variance, replicate_cols=replicate_cols,
-                                           replicate_scale=replicate_scale, fay=fay, replicates=replicates, seed=seed,
-                                           reweight=reweight)
-        has_fpc = False
+        fractions = sampling_fractions(gt, fpc_values, fpc_name=design.fpc)
+        theta = ratios.value(t)
+        v, df = _replicate_variance(frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
+                                    replicate_scale=replicate_scale, replicate_method=replicate_method, fay=fay,
+                                    replicates=replicates, seed=seed, reweight=reweight, fractions=fractions, source=source)
+        has_fpc = fractions is not None
     return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
+
+
+def _final_totals(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] | None) -> GroupTotals:
+    """The group totals under final weights: `gt` itself, or with each class scaled by the recipe's factor f(c)."""
+    if reweight is None:
+        return gt
+    b = gt.class_totals(gt.totals[:, [gt.column(WEIGHT_QUANTITY)]])[:, 0]
+    f = np.asarray(reweight(b[None, :]), dtype=np.float64)[0]
+    return replace(gt, totals=gt.totals * f[gt.cls][:, None])
 
 
 def estimate(frame: pl.DataFrame, **options: object) -> pl.DataFrame:
@@ -230,12 +244,16 @@ def estimate(frame: pl.DataFrame, **options: object) -> pl.DataFrame:
       mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
       quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
       variance: "taylor" (default) or a replicate method: "jk1", "jkn", "brr", "fay", "bootstrap",
-      "sdr", "supplied" (replicate_cols: a regular expression matched against whole column names
-      or a list of names, replicate_scale: the variance multiplier); fay, replicates, seed for the
+      "supplied" (replicate_cols: a regular expression matched against whole column names or a
+      list of names; replicate_method: how they were made, default "sdr"; replicate_scale: the
+      variance multiplier, default that of the method); fay, replicates, seed for the
       replicate methods; level: interval level (t intervals with the design df; quantiles: the
       Woodruff interval); single_psu: "error", "certainty", "centre" or "collapse" (collapse_with);
       classes + calibration_matrix: calibration residuals in Taylor (see `taylor`); classes +
-      reweight: the weighting replay for replicates.
+      reweight: `weight` then holds the adjusted base weights and reweight maps (R, C) class
+      weight totals to (R, C) class factors (the weighting recipe's replay): final weights are
+      base * f(class), and replicate methods replay the recipe in every replicate.
+    A quantile row's deff and n_eff are those of the proportion F(q_hat) its interval comes from.
     Formulas: `taylor`, `design`, `deff`, `intervals`, `quantiles` module docstrings.
     """
     return estimate_table(frame, **options).frame  # type: ignore[arg-type]
@@ -264,8 +282,8 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         problems.append(Problem(rule="bad-option", message=f"variance must be one of {', '.join(VARIANCE_METHODS)}", value=str(req["variance"])))
     if req["variance"] == "supplied" and not req["replicate_cols"]:
         problems.append(Problem(rule="bad-option", message="supplied replicate weights need replicate_cols (a pattern or a list)"))
-    if req["variance"] not in ("taylor",) and design.fpc is not None:
-        problems.append(Problem(rule="bad-option", message="the finite population correction is applied by Taylor variance only; drop the FPC or use variance 'taylor'"))
+    if req["variance"] == "supplied" and design.fpc is not None:
+        problems.append(Problem(rule="bad-option", message="supplied replicate weights carry their own variance recipe; drop the FPC"))
     weight = design.weight
     if weight in frame.columns and not frame.schema[weight].is_numeric():
         problems.append(Problem(rule="bad-weight", message=f"the weight column is not numeric ({frame.schema[weight]})", file=source, column=weight))
@@ -285,36 +303,43 @@ def _replicate_variance(
     gt: GroupTotals,
     plan: _Plan,
     ratios: Ratios,
+    theta: np.ndarray,
     *,
     variance: str,
     replicate_cols: str | Sequence[str] | None,
     replicate_scale: float | None,
+    replicate_method: str,
     fay: float,
     replicates: int | None,
     seed: int | None,
     reweight: Callable[[np.ndarray], np.ndarray] | None,
-) -> tuple[np.ndarray, np.ndarray, float]:
-    """theta, replicate variances and df for a replicate method (E2's `pipeline.estimation.replicates`)."""
-    from pipeline.estimation import replicates as rep
+    fractions: np.ndarray | None,
+    source: str | None,
+) -> tuple[np.ndarray, float]:
+    """Replicate variances and df (`pipeline.estimation.replicates` and `replicate_variance`).
 
-    theta = ratios.value(gt.totals.sum(axis=0))
+    Generated replicates: PSU factors from the design, replicate totals from the group totals
+    (the recipe replayed per replicate when `reweight` is given). Supplied replicate weights:
+    replicate totals W' Y from the weight columns, multiplier `replicate_scale` (default from
+    `replicate_method`).
+    """
+    from pipeline.estimation import replicates as rep
+    from pipeline.estimation.replicate_variance import replicate_df, replicate_variance
+
     if variance == "supplied":
         cols = _replicate_columns(frame, replicate_cols)
-        if replicate_scale is None:
-            raise SpecError("supplied replicate weights need a scale", [Problem(rule="bad-option", message="give replicate_scale (e.g. 4/80 for 80 successive-difference replicates)")])
-        rf, rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, columns=cols, scale=replicate_scale)
-        n_rep = len(cols)
+        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, scale=replicate_scale)
+        rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, cols, source=source)
     else:
-        rf = rep.make_replicates(variance, gt.psu_stratum, fay=fay, replicates=replicates, seed=seed)
+        rf = rep.make_replicates(
+            variance, gt.psu_stratum, fay=fay, replicates=replicates, seed=seed,
+            sampling_fraction=fractions, stratum_labels=gt.stratum_labels,
+        )
         if replicate_scale is not None:
-            rf = rep.ReplicateFactors(rf.factors, replicate_scale, rf.rscales, rf.method, rf.centre)
-        rep_totals = rep.replicate_totals(gt, rf, reweight=reweight)
-        n_rep = rf.factors.shape[0]
-    theta_r = ratios.value(rep_totals)
-    v = rep.replicate_variance(theta, theta_r, rf)
-    v = np.where(np.isfinite(theta), v, np.nan)
-    method = "supplied" if variance == "supplied" else ("fay" if variance == "brr" and fay > 0 else variance)
-    return theta, v, intervals.replicate_df(method, n_replicates=n_rep, n_psus=gt.n_psus, n_strata=gt.n_strata)
+            rf = replace(rf, scale=float(replicate_scale))
+        rep_totals = rep.replicate_totals(gt, rf, reweight=reweight, base=WEIGHT_QUANTITY if reweight else None)
+    v = replicate_variance(theta, ratios.value(rep_totals), rf)
+    return np.where(np.isfinite(theta), v, np.nan), replicate_df(rf)
 
 
 def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] | None) -> list[str]:

@@ -118,6 +118,8 @@ class SampleDesign:
         psu_stratum, labels = gt.psu_stratum, gt.stratum_labels
         n_h = np.bincount(psu_stratum, minlength=len(labels))
         population = _population_counts(labels, n_h, fpc_values, fpc_name=self.fpc)
+        if self.fpc is not None and population is None:
+            raise ValueError("the design has an FPC: pass fpc_values=design.fpc_values(frame)")
         if self.single_psu == "collapse":
             psu_stratum, labels, population = _collapse(psu_stratum, labels, population, self.collapse_with)
             n_h = np.bincount(psu_stratum, minlength=len(labels))
@@ -140,6 +142,13 @@ class SampleDesign:
         return PsuLayout(
             psu_stratum=psu_stratum, stratum_labels=labels, fraction=fraction, single_psu=self.single_psu
         )
+
+
+def sampling_fractions(gt: GroupTotals, fpc_values: Mapping[str, float] | None, *, fpc_name: object = None) -> np.ndarray | None:
+    """(H,) first-stage sampling fractions f_h = n_h / N_h of the strata of `gt` (None without an FPC)."""
+    n_h = np.bincount(gt.psu_stratum, minlength=gt.n_strata)
+    population = _population_counts(gt.stratum_labels, n_h, fpc_values, fpc_name=fpc_name)
+    return None if population is None else n_h / population
 
 
 def _population_counts(

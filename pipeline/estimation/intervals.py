@@ -1,12 +1,8 @@
 """Confidence intervals and degrees of freedom for design-based estimates.
 
-Degrees of freedom:
-  Taylor:         number of PSUs minus number of strata (Korn & Graubard 1999, Analysis of Health
-                  Surveys, section 5.2, from memory; Lohr 3rd ed. section 9.6, from memory);
-  jk1, bootstrap, supplied:  R - 1 replicates (common practice, no source);
-  jkn:            number of PSUs minus number of strata (same as Taylor);
-  brr, fay:       the number of half-sample strata H (Wolter 2007 section 3.5, from memory);
-  sdr:            R - 1 (common practice, no source).
+Degrees of freedom: Taylor uses the number of PSUs minus the number of strata (Korn & Graubard
+1999, Analysis of Health Surveys, section 5.2, from memory); replicate methods use
+`pipeline.estimation.replicate_variance.replicate_df`.
 A df of None means the normal distribution (infinite df).
 
 All functions are vectorised over numpy arrays of estimates.
@@ -86,17 +82,6 @@ def korn_graubard_interval(
         high = np.where(x < n_df, stats.beta.ppf(1 - alpha / 2, x + 1, np.maximum(n_df - x, 1e-300)), 1.0)
     bad = ~np.isfinite(p) | ~np.isfinite(n_df) | (n_df <= 0)
     return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
-
-
-def replicate_df(method: str, *, n_replicates: int, n_psus: int, n_strata: int) -> int:
-    """Degrees of freedom of a replicate variance (see the module docstring for each rule)."""
-    if method in ("jk1", "bootstrap", "supplied", "sdr"):
-        return n_replicates - 1
-    if method == "jkn":
-        return n_psus - n_strata
-    if method in ("brr", "fay"):
-        return n_strata
-    raise ValueError(f"unknown replicate method {method!r}")
 
 
 def _check_level(level: float) -> None:

@@ -90,15 +90,13 @@ def interval(
     """Dispatch to the interval functions; "logit" and "korn-graubard" only where `proportion` is true (NaN elsewhere)."""
     if kind == "t":
         return intervals.t_interval(estimate, se, df, level=level)
-    if kind == "logit":
-        low, high = intervals.logit_interval(estimate, se, df, level=level)
-    elif kind == "korn-graubard":
-        low, high = intervals.korn_graubard_interval(estimate, se, n, df, level=level)
-    else:
+    if kind not in ("logit", "korn-graubard"):
         raise ValueError(f"interval kind must be 't', 'logit' or 'korn-graubard', not {kind!r}")
     if not np.all(proportion):
         raise ValueError(f"the {kind} interval is for proportions only")
-    return low, high
+    if kind == "logit":
+        return intervals.logit_interval(estimate, se, df, level=level)
+    return intervals.korn_graubard_interval(estimate, se, n, df, level=level)
 
 
 @dataclass(frozen=True)
