@@ -355,8 +355,9 @@ def supplied_replicate_totals(
     """Replicate totals t_rk = sum_i W_ir y_ik from replicate-weight columns: one product W^T Y.
 
     weights: the R replicate-weight columns, in replicate order. Raises DataError naming every
-    missing column and every column with missing, non-finite or negative weights (with counts);
-    `source` names the file in those messages.
+    missing column and every column with missing or non-finite weights (with counts); `source`
+    names the file in those messages. Negative replicate weights are accepted: calibrated
+    successive-difference replicates can be negative (the ACS 2017-2021 PUMS files carry some).
     """
     missing = [c for c in weights if c not in frame.columns]
     if missing:
@@ -368,9 +369,8 @@ def supplied_replicate_totals(
     bad = w.select(
         *[pl.col(c).is_null().sum().alias(f"null:{c}") for c in weights],
         *[(~pl.col(c).is_finite()).sum().alias(f"inf:{c}") for c in weights],
-        *[(pl.col(c) < 0).sum().alias(f"neg:{c}") for c in weights],
     ).row(0, named=True)
-    what = {"null": "missing replicate weights", "inf": "non-finite replicate weights", "neg": "negative replicate weights"}
+    what = {"null": "missing replicate weights", "inf": "non-finite replicate weights"}
     problems = [
         Problem(rule="bad-weight", message=what[key.split(":", 1)[0]], file=source, column=key.split(":", 1)[1], count=n)
         for key, n in bad.items()
