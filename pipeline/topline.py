@@ -169,10 +169,9 @@ def _category_rows(variable: Variable, seen_codes: Iterable[str]) -> list[_Row]:
     in the codebook are appended, labelled as such, so that no answer is dropped.
     """
     labels = {_code_text(code): label for code, label in variable.values.items()}
-    if variable.type == "scale":
-        excluded = {_code_text(c) for c in variable.exclude_from_mean}
-        scored = [int(c) for c in variable.values if _code_text(c) not in excluded]
-        order = [str(c) for c in range(min(scored), max(scored) + 1)] if scored else []
+    scored = [c for c in variable.values if c not in variable.exclude_from_mean]
+    if variable.type == "scale" and scored and all(isinstance(c, int) for c in scored):
+        order = [str(c) for c in range(min(scored), max(scored) + 1)]
         order += [code for code in labels if code not in order]
     else:
         order = list(labels)
