@@ -6,7 +6,8 @@ Run from the project root:
     python sample_data/generate_demo.py --out DIR    # write them into DIR instead
 
 Same seed, same files, byte for byte (the CSVs; the Parquet file holds the same frame). The seed
-is `SEED` below; change it and every file changes together. Everything here is invented: the
+is `SEED = 20260302` below; every random stream (frame, people, area effects, each wave's answers
+and each wave's sample) is spawned from it, so changing it changes every file together. Everything here is invented: the
 country, its regions and areas, its people, the six grocery chains and their figures. Nothing
 describes a real place, person or brand.
 
@@ -420,10 +421,10 @@ def draw_wave(
     refused = rng.random(rows.size) < 0.04
     spend = np.where(refused, np.nan, spend)
     area_index = pop["area_index"][rows]
-    ids = [f"{wave}-{k:05d}" for k in range(1, rows.size + 1)]
+    ids = pl.Series("resp_id", np.arange(1, rows.size + 1)).cast(pl.String).str.zfill(5)
     return pl.DataFrame(
         {
-            "resp_id": ids,
+            "resp_id": f"{wave}-" + ids,
             "region": pop["region"][rows].astype(np.int64),
             "area": frame["area"].to_numpy()[area_index],
             "p_select": p_select,
