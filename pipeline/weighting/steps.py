@@ -1,0 +1,352 @@
+"""The `[[weighting]]` steps of a study spec, parsed and validated.
+
+Each table of the array is one step, applied in the declared order; `step` names its kind:
+
+  step = "nonresponse"   status = "disposition", responded = [1], nonrespondent = [2],
+                         ineligible = [3] (optional), classes = ["region"] (optional)
+  step = "poststratify"  cells = "age_band x sex", targets = "cells.csv" | totals = {...},
+                         total = 1200000 (optional), collapse = {...} (optional)
+  step = "rake"          margins = ["age_band x sex", "region"], targets = "margins.csv" | totals = {...},
+                         total, tolerance = 1e-6, max_iterations = 100, allow_nonconvergence = false, collapse
+  step = "trim"          upper = 5.0, lower = 0.2 (at least one), relative_to = "mean" | "median" | "absolute",
+                         max_rounds = 100
+  step = "calibrate"     distance = "linear" | "logit", bounds = [0.4, 3.0] (logit), margins = [...],
+                         numeric = { hh_size = 2450000 }, targets | totals, total, tolerance = 1e-8,
+                         max_iterations = 50, collapse
+
+Targets (file or inline) are proportions or counts; proportions are scaled by `total` when given,
+else by the population total of the step's count margins, else by the sum of the incoming
+weights. `collapse = { min_count = 20, order = { age_band = [[5, 6], [1, 2]], region = "adjacent" } }`
+merges small categories before the step (see pipeline.weighting.margins).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from pipeline.errors import Problem, SpecError
+from pipeline.weighting.margins import Collapse
+from pipeline.weighting.targets import TargetTable, inline_targets, read_targets_csv, split_margin
+
+if TYPE_CHECKING:
+    from pipeline.spec import Study
+
+
+@dataclass(frozen=True)
+class NonresponseStep:
+    """Move each class's base weight from nonrespondents onto its respondents (weighting-class adjustment)."""
+
+    index: int
+    status: str
+    responded: tuple[str, ...]
+    nonrespondent: tuple[str, ...]
+    ineligible: tuple[str, ...] = ()
+    classes: tuple[str, ...] = ()
+    kind: str = "nonresponse"
+
+
+@dataclass(frozen=True)
+class PoststratifyStep:
+    """Scale each cell of a cross-classification to its population total."""
+
+    index: int
+    cells: tuple[str, ...]
+    targets: TargetTable
+    total: float | None = None
+    collapse: Collapse | None = None
+    kind: str = "poststratify"
+
+
+@dataclass(frozen=True)
+class RakeStep:
+    """Iterative proportional fitting to marginal targets (margins may be crossed)."""
+
+    index: int
+    margins: tuple[tuple[str, ...], ...]
+    targets: TargetTable
+    total: float | None = None
+    tolerance: float = 1e-6
+    max_iterations: int = 100
+    allow_nonconvergence: bool = False
+    collapse: Collapse | None = None
+    kind: str = "rake"
+
+
+@dataclass(frozen=True)
+class TrimStep:
+    """Bound the weights (relative to their mean or median on entry, or absolute), re-fitting after each round."""
+
+    index: int
+    upper: float | None = None
+    lower: float | None = None
+    relative_to: str = "mean"
+    max_rounds: int = 100
+    kind: str = "trim"
+
+
+@dataclass(frozen=True)
+class CalibrateStep:
+    """Calibration (Deville-Sarndal) with linear or bounded logit distance, categorical and numeric auxiliaries."""
+
+    index: int
+    distance: str
+    margins: tuple[tuple[str, ...], ...]
+    numeric: dict[str, float]
+    targets: TargetTable
+    bounds: tuple[float, float] | None = None
+    total: float | None = None
+    tolerance: float = 1e-8
+    max_iterations: int = 50
+    collapse: Collapse | None = None
+    kind: str = "calibrate"
+
+
+Step = NonresponseStep | PoststratifyStep | RakeStep | TrimStep | CalibrateStep
+
+_KEYS = {
+    "nonresponse": {"step", "status", "responded", "nonrespondent", "ineligible", "classes"},
+    "poststratify": {"step", "cells", "targets", "totals", "total", "collapse"},
+    "rake": {"step", "margins", "targets", "totals", "total", "tolerance", "max_iterations", "allow_nonconvergence", "collapse"},
+    "trim": {"step", "upper", "lower", "relative_to", "max_rounds"},
+    "calibrate": {"step", "distance", "bounds", "margins", "numeric", "targets", "totals", "total", "tolerance",
+                  "max_iterations", "collapse"},
+}
+
+
+class _Reader:
+    """Typed access to one step table, collecting problems that name the key."""
+
+    def __init__(self, raw: dict[str, Any], where: str, problems: list[Problem]) -> None:
+        self.raw, self.where, self.problems = raw, where, problems
+
+    def bad(self, key: str, message: str) -> None:
+        self.problems.append(Problem("spec-weighting", f"{self.where}.{key}: {message}"))
+
+    def number(self, key: str, default: float | None, *, positive: bool = True) -> float | None:
+        value = self.raw.get(key, default)
+        if value is None:
+            return None
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or (positive and value <= 0):
+            self.bad(key, f"must be a {'positive ' if positive else ''}number, got {value!r}")
+            return default
+        return float(value)
+
+    def integer(self, key: str, default: int) -> int:
+        value = self.raw.get(key, default)
+        if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+            self.bad(key, f"must be a whole number >= 1, got {value!r}")
+            return default
+        return value
+
+    def flag(self, key: str, default: bool) -> bool:
+        value = self.raw.get(key, default)
+        if not isinstance(value, bool):
+            self.bad(key, f"must be true or false, got {value!r}")
+            return default
+        return value
+
+    def codes(self, key: str, *, required: bool) -> tuple[str, ...]:
+        value = self.raw.get(key)
+        if value is None:
+            if required:
+                self.bad(key, "is required: list the status codes")
+            return ()
+        if not isinstance(value, list) or not value:
+            self.bad(key, f"must be a non-empty list of codes, got {value!r}")
+            return ()
+        return tuple(str(v) for v in value)
+
+    def choice(self, key: str, default: str, options: tuple[str, ...]) -> str:
+        value = self.raw.get(key, default)
+        if value not in options:
+            self.bad(key, f"must be one of {', '.join(repr(o) for o in options)}, got {value!r}")
+            return default
+        return str(value)
+
+
+def _known_codes(study: Study) -> set[str]:
+    return {name for name, v in study.variables.items() if v.type in ("single", "scale")} | (
+        {study.design.strata} if study.design.strata else set()
+    )
+
+
+def _variables(r: _Reader, key: str, value: object, known: set[str]) -> tuple[str, ...]:
+    names = split_margin(value) if isinstance(value, str) else value
+    if not isinstance(names, (list, tuple)) or not names or not all(isinstance(n, str) for n in names):
+        r.bad(key, f"must name variables, e.g. \"age_band x sex\", got {value!r}")
+        return ()
+    for n in names:
+        if n not in known:
+            r.bad(key, f"'{n}' is not a single-choice or scale variable of the codebook (nor the strata column)")
+    return tuple(names)
+
+
+def _margins(r: _Reader, key: str, known: set[str], *, required: bool) -> tuple[tuple[str, ...], ...]:
+    value = r.raw.get(key)
+    if value is None:
+        if required:
+            r.bad(key, 'is required, e.g. margins = ["age_band x sex", "region"]')
+        return ()
+    if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+        r.bad(key, f"must be a list of margin names, got {value!r}")
+        return ()
+    margins = tuple(_variables(r, f"{key}[{i}]", v, known) for i, v in enumerate(value))
+    seen = [v for m in margins for v in m]
+    twice = sorted({v for v in seen if seen.count(v) > 1})
+    if twice and len(margins) > 1 and r.raw.get("step") == "calibrate":
+        r.bad(key, f"variable(s) {', '.join(twice)} appear in more than one margin; calibration needs each once")
+    return margins
+
+
+def _targets(r: _Reader, folder: Path) -> TargetTable:
+    has_file, has_inline = "targets" in r.raw, "totals" in r.raw
+    if has_file == has_inline:
+        r.bad("targets", "give exactly one of `targets` (a CSV file variable,category,target) or `totals` (inline)")
+        return TargetTable({}, source=r.where)
+    if has_file:
+        if not isinstance(r.raw["targets"], str):
+            r.bad("targets", f"must be a file path, got {r.raw['targets']!r}")
+            return TargetTable({}, source=r.where)
+        table, problems = read_targets_csv(folder / r.raw["targets"], where=f"{r.where}.targets")
+    else:
+        table, problems = inline_targets(r.raw["totals"], where=f"{r.where}.totals")
+    r.problems.extend(problems)
+    return table if table is not None else TargetTable({}, source=r.where)
+
+
+def _collapse(r: _Reader, known: set[str]) -> Collapse | None:
+    value = r.raw.get("collapse")
+    if value is None:
+        return None
+    if not isinstance(value, dict) or set(value) - {"min_count", "order"}:
+        r.bad("collapse", "must be a table with min_count and order, e.g. { min_count = 20, order = { age_band = [[5, 6]] } }")
+        return None
+    min_count = value.get("min_count", 1)
+    if isinstance(min_count, bool) or not isinstance(min_count, int) or min_count < 1:
+        r.bad("collapse.min_count", f"must be a whole number >= 1, got {min_count!r}")
+        min_count = 1
+    order: dict[str, tuple[tuple[str, ...], ...] | str] = {}
+    for var, rule in dict(value.get("order", {})).items():
+        if var not in known:
+            r.bad(f"collapse.order.{var}", "is not a single-choice or scale variable of the codebook")
+        if rule == "adjacent":
+            order[var] = "adjacent"
+        elif isinstance(rule, list) and all(isinstance(g, list) and len(g) >= 2 for g in rule):
+            order[var] = tuple(tuple(str(c) for c in g) for g in rule)
+        else:
+            r.bad(f"collapse.order.{var}", f'must be "adjacent" or a list of code groups like [[5, 6], [1, 2]], got {rule!r}')
+    return Collapse(min_count, order)
+
+
+def _parse_one(i: int, raw: object, study: Study, problems: list[Problem]) -> Step | None:
+    where = f"weighting[{i}]"
+    if not isinstance(raw, dict):
+        problems.append(Problem("spec-weighting", f"{where}: each [[weighting]] entry must be a table"))
+        return None
+    kind = raw.get("step")
+    if kind not in _KEYS:
+        problems.append(Problem("spec-weighting", f"{where}.step: must be one of {', '.join(sorted(_KEYS))}, got {kind!r}"))
+        return None
+    r = _Reader(raw, where, problems)
+    for key in sorted(set(raw) - _KEYS[kind]):
+        r.bad(key, f"unknown key for step '{kind}'; allowed: {', '.join(sorted(_KEYS[kind] - {'step'}))}")
+    known = _known_codes(study)
+    folder = study.path.parent
+    if kind == "nonresponse":
+        status = raw.get("status")
+        if not isinstance(status, str) or status not in study.variables:
+            r.bad("status", f"must name a codebook variable holding the response status, got {status!r}")
+        classes = _variables(r, "classes", raw["classes"], known) if "classes" in raw else ()
+        responded, nonresp = r.codes("responded", required=True), r.codes("nonrespondent", required=True)
+        inelig = r.codes("ineligible", required=False)
+        clash = (set(responded) & set(nonresp)) | (set(responded) & set(inelig)) | (set(nonresp) & set(inelig))
+        if clash:
+            r.bad("responded", f"code(s) {', '.join(sorted(clash))} are listed in more than one status list")
+        if i != 0:
+            r.bad("step", "the nonresponse adjustment must be the first weighting step")
+        return NonresponseStep(i, str(status), responded, nonresp, inelig, classes)
+    if kind == "trim":
+        upper, lower = r.number("upper", None), r.number("lower", None)
+        if upper is None and lower is None:
+            r.bad("upper", "give `upper`, `lower` or both")
+        relative_to = r.choice("relative_to", "mean", ("mean", "median", "absolute"))
+        if relative_to != "absolute" and upper is not None and upper <= 1:
+            r.bad("upper", f"relative to the {relative_to} must exceed 1, got {upper}")
+        if relative_to != "absolute" and lower is not None and lower >= 1:
+            r.bad("lower", f"relative to the {relative_to} must be below 1, got {lower}")
+        if upper is not None and lower is not None and lower >= upper:
+            r.bad("lower", f"must be below upper ({lower} >= {upper})")
+        return TrimStep(i, upper, lower, relative_to, r.integer("max_rounds", 100))
+    collapse = _collapse(r, known)
+    targets = _targets(r, folder)
+    total = r.number("total", None)
+    if kind == "poststratify":
+        if "cells" not in raw:
+            r.bad("cells", 'is required, e.g. cells = "age_band x sex"')
+        cells = _variables(r, "cells", raw.get("cells", ()), known) if "cells" in raw else ()
+        return PoststratifyStep(i, cells, targets, total, collapse)
+    if kind == "rake":
+        return RakeStep(
+            i, _margins(r, "margins", known, required=True), targets, total, float(r.number("tolerance", 1e-6) or 1e-6),
+            r.integer("max_iterations", 100), r.flag("allow_nonconvergence", False), collapse,
+        )
+    distance = r.choice("distance", "linear", ("linear", "logit"))
+    bounds = None
+    if distance == "logit":
+        b = raw.get("bounds")
+        if not (isinstance(b, list) and len(b) == 2 and all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in b)
+                and 0 <= b[0] < 1 < b[1]):
+            r.bad("bounds", f"the logit distance needs bounds = [L, U] with 0 <= L < 1 < U, got {b!r}")
+        else:
+            bounds = (float(b[0]), float(b[1]))
+    elif "bounds" in raw:
+        r.bad("bounds", "bounds apply to the logit distance only")
+    numeric = raw.get("numeric", {})
+    if not isinstance(numeric, dict):
+        r.bad("numeric", "must be a table variable = population total")
+        numeric = {}
+    for var, tot in numeric.items():
+        if var not in study.variables or study.variables[var].type != "numeric":
+            r.bad(f"numeric.{var}", "is not a numeric variable of the codebook")
+        if isinstance(tot, bool) or not isinstance(tot, (int, float)):
+            r.bad(f"numeric.{var}", f"must be a population total (a number), got {tot!r}")
+    margins = _margins(r, "margins", known, required=False)
+    if not margins and not numeric:
+        r.bad("margins", "calibration needs `margins`, `numeric` or both")
+    return CalibrateStep(
+        i, distance, margins, {k: float(v) for k, v in numeric.items() if isinstance(v, (int, float))}, targets,
+        bounds, total, float(r.number("tolerance", 1e-8) or 1e-8), r.integer("max_iterations", 50), collapse,
+    )
+
+
+def parse_steps(raw: tuple[dict, ...], study: Study) -> list[Step]:
+    """Parse the raw `[[weighting]]` tables of `study`; every problem is collected into one SpecError.
+
+    Problems name the key, e.g. `weighting[2].margins[0]`. Targets files are read here (paths relative
+    to the spec's folder) so their problems are reported with the spec's.
+    """
+    problems: list[Problem] = []
+    steps = [_parse_one(i, item, study, problems) for i, item in enumerate(raw)]
+    if problems:
+        raise SpecError(f"{study.path}: the [[weighting]] steps have {len(problems)} problem(s)", problems)
+    return [s for s in steps if s is not None]
+
+
+def code_order(study: Study | None, variables: set[str]) -> dict[str, list[str]]:
+    """Codebook code order (as text) of `variables`; for a scale every integer between its lowest and
+    highest labelled non-excluded code counts as a code."""
+    out: dict[str, list[str]] = {}
+    if study is None:
+        return out
+    for name in variables:
+        var = study.variables.get(name)
+        if var is None:
+            continue
+        codes = list(var.values)
+        if var.type == "scale" and codes and all(isinstance(c, int) for c in codes):
+            kept = [c for c in codes if c not in var.exclude_from_mean]
+            codes = sorted(set(range(min(kept), max(kept) + 1)) | set(codes)) if kept else codes
+        out[name] = [str(c) for c in codes]
+    return out

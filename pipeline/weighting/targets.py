@@ -1,0 +1,128 @@
+"""Population targets for post-stratification, raking and calibration.
+
+Targets come from a long CSV with header `variable,category,target` or inline in the spec as
+`totals = { region = { 1 = 0.55, 2 = 0.45 }, "age_band x sex" = { "1 x 1" = 0.06, ... } }`.
+A crossed margin is named by joining its variables with " x " and its categories by joining
+the codes with " x ". Targets of one margin are proportions (they sum to 1) or counts.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from pipeline.errors import Problem
+
+CROSS = " x "
+PROPORTION_TOLERANCE = 1e-6  # proportions must sum to 1 within this (rounding of published shares)
+
+
+def margin_name(variables: tuple[str, ...]) -> str:
+    """The name of a (possibly crossed) margin: its variables joined by " x "."""
+    return CROSS.join(variables)
+
+
+def split_margin(name: str) -> tuple[str, ...]:
+    """The variables of a margin name ("age_band x sex" -> ("age_band", "sex"))."""
+    return tuple(part.strip() for part in name.split(CROSS.strip()) if part.strip())
+
+
+def split_category(label: str) -> tuple[str, ...]:
+    """The codes of a category label ("3 x 2" -> ("3", "2"))."""
+    return tuple(part.strip() for part in str(label).split(CROSS.strip()))
+
+
+@dataclass(frozen=True)
+class TargetTable:
+    """Targets by margin: margin name -> {category label (codes joined by " x ") -> target}."""
+
+    margins: dict[str, dict[tuple[str, ...], float]]
+    source: str
+
+    def get(self, variables: tuple[str, ...]) -> dict[tuple[str, ...], float] | None:
+        """The targets of the margin over `variables` (None when the table lacks that margin)."""
+        return self.margins.get(margin_name(variables))
+
+
+def _add(
+    margins: dict[str, dict[tuple[str, ...], float]],
+    problems: list[Problem],
+    *,
+    where: str,
+    margin: str,
+    category: str,
+    raw_target: object,
+) -> None:
+    variables = split_margin(margin)
+    codes = split_category(category)
+    if len(codes) != len(variables):
+        problems.append(
+            Problem(
+                "target-category",
+                f"{where}: category '{category}' of margin '{margin}' has {len(codes)} part(s) but the margin "
+                f"crosses {len(variables)} variable(s); join one code per variable with ' x '",
+                column=margin,
+                value=str(category),
+            )
+        )
+        return
+    try:
+        target = float(raw_target)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        problems.append(
+            Problem("target-value", f"{where}: target '{raw_target}' is not a number", column=margin, value=category)
+        )
+        return
+    if not target >= 0 or target == float("inf"):
+        problems.append(
+            Problem("target-value", f"{where}: target {raw_target} must be a finite number >= 0", column=margin, value=category)
+        )
+        return
+    cells = margins.setdefault(margin_name(variables), {})
+    if codes in cells:
+        problems.append(
+            Problem("target-duplicate", f"{where}: category '{category}' of margin '{margin}' is listed twice", column=margin, value=category)
+        )
+        return
+    cells[codes] = target
+
+
+def read_targets_csv(path: Path, *, where: str) -> tuple[TargetTable | None, list[Problem]]:
+    """Read a long targets CSV (`variable,category,target`); returns the table and every problem found."""
+    import polars as pl
+
+    problems: list[Problem] = []
+    if not path.is_file():
+        return None, [Problem("target-file", f"{where}: targets file not found", file=str(path))]
+    frame = pl.read_csv(path, infer_schema=False)
+    missing = [c for c in ("variable", "category", "target") if c not in frame.columns]
+    if missing:
+        return None, [
+            Problem(
+                "target-file",
+                f"{where}: targets file lacks column(s) {', '.join(missing)}; the header must be variable,category,target",
+                file=str(path),
+            )
+        ]
+    margins: dict[str, dict[tuple[str, ...], float]] = {}
+    for row in frame.select("variable", "category", "target").iter_rows():
+        _add(margins, problems, where=f"{where} ({path.name})", margin=str(row[0]), category=str(row[1]), raw_target=row[2])
+    problems = [Problem(**{**p.__dict__, "file": str(path)}) for p in problems]
+    return TargetTable(margins, source=str(path)), problems
+
+
+def inline_targets(raw: object, *, where: str) -> tuple[TargetTable | None, list[Problem]]:
+    """Targets given inline in the spec: {margin name: {category label: target}}."""
+    problems: list[Problem] = []
+    if not isinstance(raw, dict) or not all(isinstance(v, dict) for v in raw.values()):
+        return None, [Problem("spec-type", f"{where} must be a table of margins, each a table category = target")]
+    margins: dict[str, dict[tuple[str, ...], float]] = {}
+    for margin, cells in raw.items():
+        for category, target in cells.items():
+            _add(margins, problems, where=where, margin=str(margin), category=str(category), raw_target=target)
+    return TargetTable(margins, source=where), problems
+
+
+def proportion_or_count(values: list[float]) -> str:
+    """'proportion' when the targets sum to 1 (within PROPORTION_TOLERANCE), else 'count'."""
+    return "proportion" if abs(sum(values) - 1.0) <= PROPORTION_TOLERANCE else "count"
