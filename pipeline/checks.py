@@ -1,0 +1,465 @@
+"""Staging checks: every rule a raw wave file must pass, run in SQL, every problem collected.
+
+Each rule is one query in `sql/check_<rule>.sql` over the raw text table (see pipeline.readers)
+returning rows of (col, value, n, examples, detail); this module turns them into `Problem`s
+with readable messages. Errors stop staging; warnings are printed and recorded.
+
+Rules (severity): missing-column (error), extra-column (warning), empty-file (error),
+missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
+out-of-bounds, missing-design-value, bad-design-weight, psu-in-several-strata,
+stratum-without-population, population-too-small (errors), and the drift rules against the
+earlier staged waves: code-gone, code-new, share-shift (warnings).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+
+import duckdb
+import polars as pl
+
+from pipeline.errors import Problem
+from pipeline.spec import Study, Variable
+from pipeline.sqlfiles import sql
+
+# A category's unweighted share of the answers moving by more than this between the latest
+# earlier wave and this one is reported (share-shift warning). 15 percentage points: common
+# practice, no source; large enough that sampling noise at tracker sizes (n >= 300: SE of a
+# share <= 2.9 points) almost never triggers it, small enough to catch a recoded question.
+DRIFT_SHARE_THRESHOLD = 0.15
+# At most this many problems per rule and column; the rest are summarised in one more problem.
+MAX_PROBLEMS_PER_COLUMN = 10
+
+
+@dataclass(frozen=True)
+class _Columns:
+    """The spec's columns that are present in the file, grouped by what the checks do with them."""
+
+    codes: list[str]  # single and scale
+    int_codes: list[str]
+    items: list[str]
+    numbers: list[str]  # numeric variables
+    bounded: list[str]
+    design: list[str]
+    weights: list[str]  # base weight and selection probability
+
+    @property
+    def must_be_numbers(self) -> list[str]:
+        return _unique([*self.numbers, *self.int_codes, *self.weights])
+
+
+def expected_columns(study: Study) -> dict[str, str]:
+    """Every column the spec requires in a wave file -> where the spec declares it."""
+    out = {study.respondent_id: "respondent_id"}
+    design = study.design
+    for key in ("strata", "psu", "base_weight", "selection_probability"):
+        column = getattr(design, key)
+        if column is not None:
+            out.setdefault(column, f"design.{key}")
+    for variable in study.variables.values():
+        for column in variable.columns:
+            where = f"variables.{variable.name}" + (".items" if variable.type == "multi" else "")
+            out.setdefault(column, where)
+    return out
+
+
+def run_checks(
+    con: duckdb.DuckDBPyConnection,
+    study: Study,
+    *,
+    raw: str,
+    file_columns: list[str],
+    file: str,
+    previous: list[str],
+) -> list[Problem]:
+    """Every problem of the raw table `raw` (read from `file`), errors and warnings together.
+
+    previous: the earlier staged waves (spec order) the drift rules compare with, read from the
+    `responses` table of `con`; empty to skip drift.
+    """
+    expected = expected_columns(study)
+    present = set(file_columns)
+    problems = [
+        Problem(
+            "missing-column",
+            f"column '{column}' (declared at {where}) is not in the file",
+            file=file,
+            column=column,
+        )
+        for column, where in expected.items()
+        if column not in present
+    ]
+    extra = [c for c in file_columns if c not in expected]
+    if extra:
+        problems.append(
+            Problem(
+                "extra-column",
+                f"{len(extra)} column{'s' if len(extra) != 1 else ''} in the file "
+                f"{'are' if len(extra) != 1 else 'is'} not in the spec and will not be staged: {', '.join(extra)}",
+                severity="warning",
+                file=file,
+            )
+        )
+    rows = con.execute(sql("check_row_count.sql", raw=raw)).fetchall()[0][0]
+    if rows == 0:
+        return [*problems, Problem("empty-file", "the file has no data rows", file=file, count=0)]
+    if study.respondent_id not in present:
+        return problems
+    columns = _present_columns(study, present)
+    _setup_tables(con, study, columns)
+    context = _Context(con, study, file, raw, columns)
+    problems += context.rule_problems()
+    if previous:
+        problems += context.drift_problems(previous)
+    return problems
+
+
+def _unique(columns: list[str]) -> list[str]:
+    return list(dict.fromkeys(columns))
+
+
+def _present_columns(study: Study, present: set[str]) -> _Columns:
+    variables = list(study.variables.values())
+    design = study.design
+    return _Columns(
+        codes=[v.name for v in variables if v.type in ("single", "scale") and v.name in present],
+        int_codes=[v.name for v in variables if v.int_coded and v.name in present],
+        items=[c for v in variables if v.type == "multi" for c in v.items if c in present],
+        numbers=[v.name for v in variables if v.type == "numeric" and v.name in present],
+        bounded=[
+            v.name
+            for v in variables
+            if v.type == "numeric" and v.name in present and (v.minimum is not None or v.maximum is not None)
+        ],
+        design=[c for c in design.columns if c in present],
+        weights=[c for c in (design.base_weight, design.selection_probability) if c is not None and c in present],
+    )
+
+
+def _setup_tables(con: duckdb.DuckDBPyConnection, study: Study, columns: _Columns) -> None:
+    """Temp tables the check queries join: column roles, valid codes, strata with population sizes."""
+    design = study.design
+    variables = {c: v for v in study.variables.values() for c in v.columns}
+    names = _unique([*columns.codes, *columns.items, *columns.numbers, *columns.weights])
+    roles = pl.DataFrame(
+        {
+            "col": names,
+            "int_coded": [c in columns.int_codes or c in columns.items for c in names],
+            "is_item": [c in columns.items for c in names],
+            "weight_role": [
+                "weight" if c == design.base_weight else "probability" if c == design.selection_probability else None
+                for c in names
+            ],
+            "minimum": [variables[c].minimum if c in variables else None for c in names],
+            "maximum": [variables[c].maximum if c in variables else None for c in names],
+        },
+        schema={
+            "col": pl.String,
+            "int_coded": pl.Boolean,
+            "is_item": pl.Boolean,
+            "weight_role": pl.String,
+            "minimum": pl.Float64,
+            "maximum": pl.Float64,
+        },
+    )
+    allowed = [(c, str(code)) for c in columns.codes for code in variables[c].valid_codes]
+    allowed += [(c, code) for c in columns.items for code in ("0", "1")]
+    sizes = design.population or design.sampling_fraction
+    frames = {
+        "check_setup_columns.sql": roles,
+        "check_setup_allowed.sql": pl.DataFrame(allowed, schema={"col": pl.String, "code": pl.String}, orient="row"),
+        "check_setup_strata.sql": pl.DataFrame(
+            {"code": [str(k) for k in sizes], "size": [float(v) for v in sizes.values()]},
+            schema={"code": pl.String, "size": pl.Float64},
+        ),
+    }
+    for name, frame in frames.items():
+        con.register("__wavebook_frame", frame)
+        try:
+            con.execute(sql(name, frame="__wavebook_frame"))
+        finally:
+            con.unregister("__wavebook_frame")
+
+
+Row = tuple[str, str | None, int, list, str | None]
+
+
+@dataclass(frozen=True)
+class _Rule:
+    name: str
+    severity: str
+    describe: Callable[[Row], str]
+    counts_rows: bool = True  # whether n counts rows (shown as "; n rows") or something else
+
+
+class _Context:
+    """One wave's checks: runs the rule queries and words their rows as Problems."""
+
+    def __init__(self, con: duckdb.DuckDBPyConnection, study: Study, file: str, raw: str, columns: _Columns) -> None:
+        self.con = con
+        self.study = study
+        self.file = file
+        self.raw = raw
+        self.columns = columns
+        self.owner: dict[str, Variable] = {c: v for v in study.variables.values() for c in v.columns}
+
+    def run(self, rule: _Rule, name: str, params: dict | None = None, **context: object) -> list[Problem]:
+        """Run `sql/<name>` (identifiers in `context`, values in `params`) and word its rows."""
+        rows = self.con.execute(sql(name, raw=self.raw, **context), params or {}).fetchall()
+        return _capped([self.problem(rule, row) for row in rows])
+
+    def problem(self, rule: _Rule, row: Row) -> Problem:
+        col, value, n, examples, _ = row
+        return Problem(
+            rule.name,
+            rule.describe(row),
+            severity=rule.severity,
+            file=self.file,
+            column=col,
+            value=value,
+            count=int(n) if rule.counts_rows else None,
+            examples=tuple(str(e) for e in examples or ()),
+        )
+
+    def rule_problems(self) -> list[Problem]:
+        """The error rules, each one query over all the columns it concerns."""
+        study, cols, design = self.study, self.columns, self.study.design
+        id_col = study.respondent_id
+        found = self.run(
+            _Rule("missing-id", "error", lambda r: f"{r[2]} rows have no respondent id; every row needs one"),
+            "check_missing_id.sql",
+            {"column": id_col},
+            id=id_col,
+        )
+        found = [replace(p, examples=tuple(f"row {e}" for e in p.examples)) for p in found]
+        found += self.run(
+            _Rule(
+                "duplicate-id",
+                "error",
+                lambda r: f"{r[4]} respondent id{'s' if r[4] != '1' else ''} appear on more than one row "
+                "(ids must be unique within a wave)",
+            ),
+            "check_duplicate_id.sql",
+            {"column": id_col},
+            id=id_col,
+        )
+        if cols.codes:
+            found += self.run(
+                _Rule(
+                    "code-outside-codebook",
+                    "error",
+                    lambda r: f"code '{r[1]}' is not a code of {self.role(r[0])} (valid: {self.valid(r[0])}); "
+                    f"add it to variables.{self.owner[r[0]].name}.values or fix the data",
+                ),
+                "check_codes.sql",
+                id=id_col,
+                columns=cols.codes,
+            )
+        if cols.must_be_numbers:
+            found += self.run(
+                _Rule("not-a-number", "error", lambda r: f"'{r[1]}' is not a number; {self.role(r[0])} holds numbers"),
+                "check_not_numeric.sql",
+                id=id_col,
+                columns=cols.must_be_numbers,
+            )
+        if cols.items:
+            found += self.run(
+                _Rule(
+                    "multi-not-binary",
+                    "error",
+                    lambda r: f"'{r[1]}' in item '{r[0]}' of multi-response set '{self.owner[r[0]].name}': "
+                    "items hold 1 (selected), 0 (not selected) or nothing (not asked)",
+                ),
+                "check_multi_binary.sql",
+                id=id_col,
+                columns=cols.items,
+            )
+        if cols.bounded:
+            found += self.run(
+                _Rule("out-of-bounds", "error", self.bounds_message),
+                "check_bounds.sql",
+                id=id_col,
+                columns=cols.bounded,
+            )
+        if cols.design:
+            found += self.run(
+                _Rule(
+                    "missing-design-value",
+                    "error",
+                    lambda r: f"{r[2]} rows have no {self.design_key(r[0])} value; every respondent needs one",
+                ),
+                "check_design_missing.sql",
+                id=id_col,
+                columns=cols.design,
+            )
+        if cols.weights:
+            found += self.run(
+                _Rule(
+                    "bad-design-weight",
+                    "error",
+                    lambda r: (
+                        "base weights must be positive"
+                        if r[0] == design.base_weight
+                        else "selection probabilities must be in (0, 1]"
+                    )
+                    + f" ({r[4]})",
+                ),
+                "check_weights.sql",
+                id=id_col,
+                columns=cols.weights,
+            )
+        found += self.strata_problems()
+        return found
+
+    def strata_problems(self) -> list[Problem]:
+        """PSU ids across strata, and the strata's population sizes / sampling fractions."""
+        design, id_col = self.study.design, self.study.respondent_id
+        present = set(self.columns.design)
+        found: list[Problem] = []
+        if design.psu_ids == "unique" and design.psu in present and design.strata in present:
+            found += self.run(
+                _Rule(
+                    "psu-in-several-strata",
+                    "error",
+                    lambda r: f"{r[4]} PSU id(s) appear in more than one stratum (e.g. PSU '{r[1]}') but "
+                    'design.psu_ids = "unique"; set psu_ids = "nested" if PSU ids restart within each stratum',
+                ),
+                "check_psu_unique.sql",
+                {"column": design.psu},
+                id=id_col,
+                psu=design.psu,
+                strata=design.strata,
+            )
+        sizes = design.population or design.sampling_fraction
+        key = "design.population" if design.population else "design.sampling_fraction"
+        int_keys = all(isinstance(k, int) for k in sizes)
+        if sizes and design.strata in present:
+            found += self.run(
+                _Rule(
+                    "stratum-without-population",
+                    "error",
+                    lambda r: f"stratum '{r[1]}' is in the data but has no entry in {key}; add one",
+                ),
+                "check_strata_population.sql",
+                {"column": design.strata},
+                id=id_col,
+                strata=design.strata,
+                int_keys=int_keys,
+            )
+        unit = design.psu if design.psu is not None else id_col
+        if design.population and unit in present and (design.strata is None or design.strata in present):
+            found += self.run(
+                _Rule(
+                    "population-too-small",
+                    "error",
+                    lambda r: f"{'stratum ' + repr(r[1]) if r[1] is not None else 'the sample'} has {r[2]} sampled "
+                    f"{'PSUs' if design.psu else 'respondents'} but design.population gives {float(r[4]):g}",
+                    counts_rows=False,
+                ),
+                "check_population_size.sql",
+                {"column": design.strata or unit},
+                strata=design.strata,
+                unit=unit,
+                int_keys=int_keys,
+            )
+        return found
+
+    def drift_problems(self, previous: list[str]) -> list[Problem]:
+        """Warnings where this wave's codes differ from the earlier staged waves (`previous`, spec order)."""
+        staged = set(_table_columns(self.con, "responses"))
+        columns = [c for c in (*self.columns.codes, *self.columns.items) if c in staged]
+        if not columns:
+            return []
+        self.con.execute(sql("check_drift_current.sql", raw=self.raw, columns=columns))
+        self.con.execute(sql("check_drift_previous.sql", columns=columns), {"waves": previous})
+        threshold = DRIFT_SHARE_THRESHOLD
+        return [
+            *self.run(
+                _Rule(
+                    "code-gone",
+                    "warning",
+                    lambda r: f"code '{r[1]}' was answered in earlier waves ({r[2]} rows, last in {r[4]}) "
+                    "but by nobody in this wave; check the questionnaire routing or the coding",
+                    counts_rows=False,
+                ),
+                "check_drift_gone.sql",
+                {"waves": previous},
+            ),
+            *self.run(
+                _Rule(
+                    "code-new",
+                    "warning",
+                    lambda r: f"code '{r[1]}' is answered for the first time in this wave (never in "
+                    f"{', '.join(previous)})",
+                ),
+                "check_drift_new.sql",
+            ),
+            *self.run(
+                _Rule(
+                    "share-shift",
+                    "warning",
+                    lambda r: f"the unweighted share of code '{r[1]}' moved by more than "
+                    f"{100 * threshold:g} points: {r[4]}",
+                ),
+                "check_drift_share.sql",
+                {"last": previous[-1], "threshold": threshold},
+            ),
+        ]
+
+    def bounds_message(self, row: Row) -> str:
+        col, side, n, _, extreme = row
+        variable = self.owner[col]
+        bound = variable.minimum if side == "below" else variable.maximum
+        word = "minimum" if side == "below" else "maximum"
+        most = "lowest" if side == "below" else "highest"
+        return f"{n} values {side} the declared {word} {bound:g} (variables.{variable.name}.{word}); {most} {extreme}"
+
+    def valid(self, col: str) -> str:
+        codes = [str(c) for c in self.owner[col].valid_codes]
+        return ", ".join(codes[:12]) + (f", ... ({len(codes)} codes)" if len(codes) > 12 else "")
+
+    def role(self, col: str) -> str:
+        design = self.study.design
+        if col in (design.base_weight, design.selection_probability):
+            return self.design_key(col)
+        variable = self.owner[col]
+        return f"{variable.type} variable '{variable.name}'"
+
+    def design_key(self, col: str) -> str:
+        design = self.study.design
+        for key in ("strata", "psu", "base_weight", "selection_probability"):
+            if getattr(design, key) == col:
+                return f"design.{key}"
+        return col
+
+
+def _table_columns(con: duckdb.DuckDBPyConnection, table: str) -> list[str]:
+    return [r[0] for r in con.execute(sql("schema_columns.sql"), {"table": table}).fetchall()]
+
+
+def _capped(problems: list[Problem]) -> list[Problem]:
+    """At most MAX_PROBLEMS_PER_COLUMN problems per (rule, column), the most frequent first; one summary for the rest."""
+    by_column: dict[tuple[str, str | None], list[Problem]] = {}
+    for p in problems:
+        by_column.setdefault((p.rule, p.column), []).append(p)
+    out: list[Problem] = []
+    for (rule, column), group in by_column.items():
+        if len(group) <= MAX_PROBLEMS_PER_COLUMN:
+            out += group
+            continue
+        group = sorted(group, key=lambda p: -(p.count or 0))
+        kept, rest = group[:MAX_PROBLEMS_PER_COLUMN], group[MAX_PROBLEMS_PER_COLUMN:]
+        out += kept
+        out.append(
+            Problem(
+                rule,
+                f"and {len(rest)} more distinct values breaking the same rule",
+                severity=rest[0].severity,
+                file=rest[0].file,
+                column=column,
+                count=sum(p.count or 0 for p in rest) if rest[0].count is not None else None,
+                examples=tuple(e for p in rest for e in p.examples)[:5],
+            )
+        )
+    return out

@@ -1,0 +1,201 @@
+"""Stage a wave: read its raw file, check it, and replace the wave in the study database atomically.
+
+`stage_wave` reads the file into a temp table of text (pipeline.readers), runs every check
+(pipeline.checks) and, only when no check fails, writes the wave in ONE transaction: add the
+columns the spec gained, delete the wave's old rows, insert the typed rows, record the wave in
+`waves` and its warnings in `problems`. Any failure rolls the transaction back, so the database
+is exactly as it was. Staging one wave never touches another wave's rows.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import duckdb
+
+from pipeline.checks import run_checks
+from pipeline.database import add_new_columns, column_types, open_database, staged_waves, table_columns
+from pipeline.errors import DataError, Problem
+from pipeline.progress import step
+from pipeline.readers import install_macros, read_raw
+from pipeline.spec import Study, Wave
+from pipeline.sqlfiles import sql
+
+RAW_TABLE = "__wavebook_raw"
+
+
+@dataclass(frozen=True)
+class StageReport:
+    """What staging one wave did: rows written, the file and its SHA-256, the warnings."""
+
+    wave: str
+    rows: int
+    file: Path
+    sha256: str
+    warnings: list[Problem] = field(default_factory=list)
+    replaced_rows: int = 0  # rows the wave had before (0 when staged for the first time)
+    added_columns: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+
+    def summary(self) -> str:
+        """One line: wave, rows, file, what was replaced, warnings count, time."""
+        text = f"{self.wave}: staged {self.rows:,} rows from {self.file.name}"
+        if self.replaced_rows:
+            text += f" (replaced {self.replaced_rows:,})"
+        if self.added_columns:
+            text += f"; added column{'s' if len(self.added_columns) != 1 else ''} {', '.join(self.added_columns)}"
+        n = len(self.warnings)
+        text += f"; {n} warning{'s' if n != 1 else ''}" if n else "; no warnings"
+        return text + f" ({self.seconds:.1f} s)"
+
+
+def file_sha256(path: Path) -> str:
+    """Hex SHA-256 of a file's bytes (read in chunks)."""
+    with open(path, "rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest()
+
+
+def check_wave(study: Study, wave_id: str) -> list[Problem]:
+    """Every problem (errors and warnings) staging `wave_id` would meet; writes nothing.
+
+    The drift warnings compare with the earlier waves already staged in the study database,
+    which is opened read-only when it exists.
+    """
+    wave = study.wave(wave_id)
+    if study.database_path.is_file():
+        con = open_database(study, read_only=True)
+    else:
+        con = duckdb.connect()
+        install_macros(con)
+    try:
+        return _inspect(con, study, wave, quiet=True)[1]
+    finally:
+        con.close()
+
+
+def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageReport:
+    """Check `wave_id`'s file and, if it has no errors, replace the wave in the database atomically.
+
+    Raises DataError listing every problem (errors and warnings) when any check fails; then
+    nothing is written. Returns a StageReport whose warnings are also recorded in `problems`.
+    """
+    start = time.perf_counter()
+    wave = study.wave(wave_id)
+    con = open_database(study)
+    try:
+        file_columns, problems = _inspect(con, study, wave, quiet=quiet)
+        errors = [p for p in problems if p.severity == "error"]
+        if errors:
+            raise DataError(
+                f"wave {wave.id}: {len(errors)} error{'s' if len(errors) != 1 else ''} in {wave.file}; "
+                "nothing was staged",
+                problems,
+            )
+        warnings = [p for p in problems if p.severity != "error"]
+        with step(f"{wave.id}: hashing {wave.file.name}", quiet=quiet):
+            digest = file_sha256(wave.file)
+        with step(f"{wave.id}: writing to {study.database_path.name}", quiet=quiet):
+            rows, replaced, added = _write(con, study, wave, digest=digest, warnings=warnings)
+    finally:
+        con.close()
+    return StageReport(
+        wave=wave.id,
+        rows=rows,
+        file=wave.file,
+        sha256=digest,
+        warnings=warnings,
+        replaced_rows=replaced,
+        added_columns=added,
+        seconds=time.perf_counter() - start,
+    )
+
+
+def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool) -> tuple[list[str], list[Problem]]:
+    """Read the wave's file into the raw temp table and run the checks: (file columns, problems)."""
+    try:
+        with step(f"{wave.id}: reading {wave.file.name}", quiet=quiet):
+            file_columns = read_raw(con, wave.file, RAW_TABLE)
+    except DataError as exc:
+        return [], exc.problems
+    with step(f"{wave.id}: checking", quiet=quiet):
+        problems = run_checks(
+            con,
+            study,
+            raw=RAW_TABLE,
+            file_columns=file_columns,
+            file=str(wave.file),
+            previous=_earlier_staged(con, study, wave),
+        )
+    return file_columns, problems
+
+
+def _earlier_staged(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> list[str]:
+    """The waves declared before `wave` in the spec that are staged, in spec order."""
+    if not table_columns(con, "waves") or not table_columns(con, "responses"):
+        return []
+    staged = set(staged_waves(con)["wave"].to_list())
+    order = [w.id for w in study.waves]
+    return [w for w in order[: order.index(wave.id)] if w in staged]
+
+
+def _write(
+    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, digest: str, warnings: list[Problem]
+) -> tuple[int, int, list[str]]:
+    """One transaction: new columns, delete the wave, insert its rows, record it; (rows, replaced, added)."""
+    con.begin()
+    try:
+        added = add_new_columns(con, study)
+        params = {"wave": wave.id}
+        replaced = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
+        con.execute(sql("stage_delete_wave.sql"), params)
+        _insert_rows(con, study, wave)
+        rows = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
+        now = dt.datetime.now(dt.UTC).replace(tzinfo=None)
+        con.execute(
+            sql("stage_upsert_wave.sql"),
+            {
+                "wave": wave.id,
+                "position": [w.id for w in study.waves].index(wave.id),
+                "label": wave.label,
+                "fieldwork_start": wave.fieldwork_start,
+                "fieldwork_end": wave.fieldwork_end,
+                "source_file": str(wave.file),
+                "sha256": digest,
+                "row_count": rows,
+                "staged_at": now,
+            },
+        )
+        con.execute(sql("stage_delete_problems.sql"), params)
+        for p in warnings:
+            con.execute(
+                sql("stage_insert_problem.sql"),
+                {
+                    "wave": wave.id,
+                    "rule": p.rule,
+                    "severity": p.severity,
+                    "column_name": p.column,
+                    "value": p.value,
+                    "count": p.count,
+                    "examples": list(p.examples),
+                    "message": p.message,
+                    "recorded_at": now,
+                },
+            )
+        con.commit()
+    except BaseException:
+        con.rollback()
+        raise
+    return rows, replaced, added
+
+
+def _insert_rows(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> None:
+    """Insert the raw table's rows, typed per the codebook, as the wave's rows of `responses`."""
+    columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items()]
+    con.execute(
+        sql("stage_insert_responses.sql", raw=RAW_TABLE, id=study.respondent_id, columns=columns),
+        {"wave": wave.id},
+    )

@@ -1,0 +1,7 @@
+-- code-new: a valid code that appears now but in no earlier staged wave (for columns answered before).
+select c.col, c.code as value, c.n, [] as examples, null as detail
+from wb_current as c
+semi join wb_allowed as a on a.col = c.col and a.code = c.code
+anti join wb_previous as p on p.col = c.col and p.code = c.code
+where c.col in (select col from wb_previous)
+order by c.col, c.code

@@ -1,0 +1,2 @@
+-- empty-file: the number of data rows.
+select count(*) from {{ raw|ident }}

@@ -1,0 +1,15 @@
+-- stratum-without-population: strata in the data with no design.population / sampling_fraction entry.
+select
+    $column as col,
+    r.stratum as value,
+    count(*) as n,
+    min(r.id, 5) as examples,
+    null as detail
+from (
+    select {% if int_keys %}wb_code({{ strata|ident }}){% else %}{{ strata|ident }}{% endif %} as stratum, {{ id|ident }} as id
+    from {{ raw|ident }}
+    where {{ strata|ident }} is not null
+) as r
+anti join wb_strata as p on p.code = r.stratum
+group by r.stratum
+order by r.stratum

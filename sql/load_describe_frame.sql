@@ -1,0 +1,2 @@
+-- Column names and types of a registered data frame.
+describe select * from {{ frame|ident }}

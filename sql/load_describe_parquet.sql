@@ -1,0 +1,2 @@
+-- Column names and types of a Parquet file.
+describe select * from read_parquet($path)

@@ -1,0 +1,6 @@
+-- A data frame registered with the connection (an SPSS file read by pyreadstat) as a temp table of text.
+{% from "load_text_columns.sql" import text_columns %}
+create or replace temp table {{ table|ident }} as
+select
+    {{ text_columns(columns) }}
+from {{ frame|ident }}

@@ -1,0 +1,20 @@
+{#- Macro shared by the load_* files: every source column as trimmed text, empty -> NULL.
+    Whole floats become integer text ('3.0' -> '3') so CSV, Parquet and SPSS stage the same codes.
+    columns: list of {name, kind} with kind "text", "float" or "other". -#}
+{% macro text_columns(columns) -%}
+    row_number() over () as "__wavebook_row"
+    {%- for c in columns %},
+    {% if c.kind == "text" -%}
+    nullif(trim({{ c.name|ident }}), '')
+    {%- elif c.kind == "float" -%}
+    case
+        when {{ c.name|ident }} is null or isnan({{ c.name|ident }}) then null
+        when {{ c.name|ident }} = trunc({{ c.name|ident }}) and abs({{ c.name|ident }}) < 1e15
+            then cast(cast({{ c.name|ident }} as bigint) as varchar)
+        else cast({{ c.name|ident }} as varchar)
+    end
+    {%- else -%}
+    cast({{ c.name|ident }} as varchar)
+    {%- endif %} as {{ c.name|ident }}
+    {%- endfor %}
+{%- endmacro %}

@@ -1,0 +1,2 @@
+-- How many rows a wave has staged now.
+select count(*) from responses where wave = $wave

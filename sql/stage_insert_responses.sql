@@ -1,0 +1,15 @@
+-- The raw text rows of a wave, typed per the codebook, into responses (columns matched by name).
+insert into responses by name
+select
+    $wave as wave,
+    {{ id|ident }} as respondent_id
+    {%- for c in columns %},
+    {% if c.type == "VARCHAR" -%}
+    {{ c.name|ident }}
+    {%- elif c.type == "DOUBLE" -%}
+    wb_number({{ c.name|ident }})
+    {%- else -%}
+    cast(wb_number({{ c.name|ident }}) as {{ c.type }})
+    {%- endif %} as {{ c.name|ident }}
+    {%- endfor %}
+from {{ raw|ident }}

@@ -1,0 +1,5 @@
+-- Record (or replace) a staged wave's bookkeeping row.
+insert or replace into waves
+    (wave, position, label, fieldwork_start, fieldwork_end, source_file, sha256, row_count, staged_at)
+values
+    ($wave, $position, $label, $fieldwork_start, $fieldwork_end, $source_file, $sha256, $row_count, $staged_at)
