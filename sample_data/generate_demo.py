@@ -6,10 +6,10 @@ Run from the project root:
     python sample_data/generate_demo.py --out DIR    # write them into DIR instead
 
 Same seed, same files, byte for byte (the CSVs; the Parquet file holds the same frame). The seed
-is `SEED = 20260302` below; every random stream (frame, people, area effects, each wave's answers
-and each wave's sample) is spawned from it, so changing it changes every file together. Everything here is invented: the
-country, its regions and areas, its people, the six grocery chains and their figures. Nothing
-describes a real place, person or brand.
+is `SEED = 20260302` below; every random stream (frame, people, area effects, each wave's
+answers and each wave's sample) is spawned from it, so changing it changes every file together.
+Everything here is invented: the country, its regions and areas, its people, the six grocery
+chains and their figures. Nothing describes a real place, person or brand.
 
 Scenario
 --------
@@ -17,8 +17,8 @@ Ostrevia has about 600,000 adults in six regions (the strata), 285 areas (the fi
 unequal sizes, each urban or rural) and a market of six invented grocery chains. The capital
 region Harrowmere is young and urban; Oradel is young, industrial and less educated; Quillby
 Coast (a retirement coast) is old and well educated; Veskar Vale (a college valley) is older and
-well educated; Brannoch Uplands is old and rural. Answers depend on age, education, region, urbanity and
-the area (an area effect makes answers cluster, so design effects are above 1):
+well educated; Brannoch Uplands is old and rural. Answers depend on age, education, region,
+urbanity and the area (an area effect makes answers cluster, so design effects are above 1):
 
 - awareness of each chain (aided, multi-response set `aware_*`): Brimlet (discount, known to
   nearly everyone), Tarnwick Fresh (online grocer: young, urban, educated; its awareness GROWS
@@ -39,15 +39,16 @@ The population's demographics stay fixed over the year; its attitudes are redraw
 
 Sample design (every wave a fresh, independent sample)
 ------------------------------------------------------
-Stratified two-stage cluster sample. Strata: the six regions. First stage: `AREAS_SELECTED[h]`
-areas per region by systematic sampling with probability proportional to size (adults in the
-area) from a randomly ordered list; no area is larger than the sampling interval, so no area can
-be hit twice and the first-stage inclusion probability is exactly n_h M_hi / M_h. Second stage:
-a simple random sample of `ISSUED_PER_AREA` adults in each selected area. The overall selection
+Stratified two-stage cluster sample. Strata: the six regions. First stage: n_h areas
+(`Region.areas_selected`) per region by systematic sampling with probability proportional to
+size (adults in the area) from a randomly ordered list; no area is larger than the sampling
+interval, so no area can be hit twice and the first-stage inclusion probability is exactly
+n_h M_hi / M_h. Second stage: a simple random sample of `ISSUED_PER_AREA` adults in each selected area. The overall selection
 probability is therefore n_h m / M_h, the same for everyone in a region (self-weighting within
 strata; Kish, Survey Sampling (1965) section 7.5, from memory). The small regions Quillby Coast
-and Veskar Vale get about twice their share of the areas (a boost for regional reporting),
-Harrowmere and Oradel fewer than their share: see `REGIONS` and area_frame.csv.
+and Veskar Vale get about twice their share of the areas (a boost for regional reporting);
+Harrowmere, Fennick Lowlands and Oradel get fewer than their share: see `REGIONS` and
+area_frame.csv.
 
 `area` is the area number WITHIN its region (1..N_h): PSU ids are NESTED in strata
 (`psu_ids = "nested"` in study.toml). `p_select` is the selection probability of the issued
@@ -148,6 +149,16 @@ CHANNELS = {
 }
 DONT_KNOW = 99
 NOT_SHOPPING = 5
+SATISFACTION_NETS = {
+    "Top two box (9-10)": [9, 10],
+    "Top three box (8-10)": [8, 9, 10],
+    "Low (0-6)": [0, 1, 2, 3, 4, 5, 6],
+}
+RECOMMEND_NETS = {
+    "High (9-10)": [9, 10],
+    "Middle (7-8)": [7, 8],
+    "Low (0-6)": [0, 1, 2, 3, 4, 5, 6],
+}
 
 # national age profile of adults (shares of bands 1..6) before the regional tilt
 AGE_PROFILE = np.array([0.11, 0.17, 0.17, 0.17, 0.16, 0.22])
@@ -205,7 +216,7 @@ def build_frame(rng: np.random.Generator) -> pl.DataFrame:
 
 
 def build_population(rng: np.random.Generator, frame: pl.DataFrame) -> dict[str, np.ndarray]:
-    """Every adult of Ostrevia: region, area index into `frame`, urban_rural, age band, sex, education, traits."""
+    """Every adult of Ostrevia: region, area index into `frame`, urban, age band, sex, education, traits."""
     sizes = frame["adults"].to_numpy()
     area_index = np.repeat(np.arange(frame.height), sizes)
     region = frame["region"].to_numpy()[area_index]
@@ -344,7 +355,7 @@ def wave_answers(
     spend = np.clip(np.rint(np.exp(log_spend)), 20, 5000)
     answers["spend_true"] = np.where(shops, spend, np.nan)
 
-    online = -0.4 * age_c * 2.0 + 0.4 * (edu0 == 3) + effects.online[area] + 0.25 * t
+    online = -0.8 * age_c + 0.4 * (edu0 == 3) + effects.online[area] + 0.25 * t
     channel_logits = np.column_stack(
         [
             np.full(n, 1.2) + 0.3 * (1.0 - urban),
@@ -491,7 +502,14 @@ def truth_rows(wave: str, answers: dict[str, np.ndarray]) -> list[dict[str, obje
 
     def add(measure: str, variable: str, category: str, value: float, base: str) -> None:
         rows.append(
-            {"wave": wave, "measure": measure, "variable": variable, "category": category, "value": value, "base": base}
+            {
+                "wave": wave,
+                "measure": measure,
+                "variable": variable,
+                "category": category,
+                "value": value,
+                "base": base,
+            }
         )
 
     for column in BRANDS:
@@ -521,17 +539,6 @@ def truth_rows(wave: str, answers: dict[str, np.ndarray]) -> list[dict[str, obje
         add("proportion", "channel", str(code), share, everyone)
     return rows
 
-
-SATISFACTION_NETS = {
-    "Top two box (9-10)": [9, 10],
-    "Top three box (8-10)": [8, 9, 10],
-    "Low (0-6)": [0, 1, 2, 3, 4, 5, 6],
-}
-RECOMMEND_NETS = {
-    "High (9-10)": [9, 10],
-    "Middle (7-8)": [7, 8],
-    "Low (0-6)": [0, 1, 2, 3, 4, 5, 6],
-}
 
 
 def area_frame_table(frame: pl.DataFrame) -> pl.DataFrame:

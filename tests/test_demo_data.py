@@ -218,6 +218,26 @@ def test_design_columns_follow_the_documented_design(wave_id: str) -> None:
     assert (per_region["hit"] == per_region["areas_selected_per_wave"]).all()
 
 
+def test_spec_codebook_matches_the_generator() -> None:
+    """The labels, items and nets in study.toml are the ones the generator's answers use."""
+    variables = SPEC["variables"]
+
+    def values(name: str) -> dict[int, str]:
+        return {int(k): v for k, v in variables[name]["values"].items()}
+
+    assert values("region") == {r.code: r.name for r in GEN.REGIONS}
+    assert values("age_band") == GEN.AGE_BANDS
+    assert values("sex") == GEN.SEXES
+    assert values("education") == GEN.EDUCATION
+    assert values("urban_rural") == GEN.URBAN_RURAL
+    assert values("shop_freq") == GEN.SHOP_FREQ
+    assert values("channel") == GEN.CHANNELS
+    assert variables["aware"]["items"] == GEN.BRANDS
+    assert variables["satisfaction"]["exclude_from_mean"] == [GEN.DONT_KNOW]
+    assert variables["satisfaction"]["nets"] == GEN.SATISFACTION_NETS
+    assert variables["recommend"]["nets"] == GEN.RECOMMEND_NETS
+
+
 def test_spec_fpc_and_labels_match_the_area_frame() -> None:
     population = {int(k): v for k, v in SPEC["design"]["population"].items()}
     assert population == dict(zip(FRAME["region"], FRAME["areas"]))
@@ -237,15 +257,17 @@ def test_margins_sum_to_the_population() -> None:
     totals = MARGINS.group_by("variable").agg(pl.col("target").sum())
     population = FRAME["adults"].sum()
     assert 400_000 <= population <= 1_000_000
-    assert dict(totals.iter_rows()) == {v: population for v in ("age_band x sex", "region", "education", "urban_rural")}
+    margins = ("age_band x sex", "region", "education", "urban_rural")
+    assert dict(totals.iter_rows()) == dict.fromkeys(margins, population)
     region = MARGINS.filter(pl.col("variable") == "region")
-    assert dict(zip(region["category"].cast(pl.Int64), region["target"])) == dict(zip(FRAME["region"], FRAME["adults"]))
+    by_region = dict(zip(region["category"].cast(pl.Int64), region["target"]))
+    assert by_region == dict(zip(FRAME["region"], FRAME["adults"]))
     crossed = MARGINS.filter(pl.col("variable") == "age_band x sex")["category"].to_list()
     assert crossed == [f"{a} x {s}" for a in range(1, 7) for s in (1, 2)]
 
 
 def test_truth_is_complete_and_coherent() -> None:
-    """Distributions sum to 1 (identity); nets equal the sum of their codes (identity); the scenario's trend."""
+    """Distributions sum to 1 and nets equal the sum of their codes (identities); the scenario's trend."""
     truth = pl.read_csv(DEMO / "population_truth.csv", schema_overrides={"category": pl.String})
     assert set(truth["wave"]) == set(SPEC["waves"])
     assert set(truth["measure"]) == {"proportion", "mean"}
@@ -257,7 +279,11 @@ def test_truth_is_complete_and_coherent() -> None:
             assert dist.height == len(codes), name
             assert dist["value"].sum() == pytest.approx(1.0, abs=1e-12), name
         for name in ("satisfaction", "recommend"):
-            props = dict(t.filter((pl.col("variable") == name) & (pl.col("measure") == "proportion")).select("category", "value").iter_rows())
+            props = dict(
+                t.filter((pl.col("variable") == name) & (pl.col("measure") == "proportion"))
+                .select("category", "value")
+                .iter_rows()
+            )
             for label, codes in SPEC["variables"][name]["nets"].items():
                 assert props[label] == pytest.approx(sum(props[str(c)] for c in codes), abs=1e-12), label
         aware = t.filter(pl.col("variable") == "aware")
@@ -277,7 +303,8 @@ def test_unweighted_sample_over_represents_older_and_more_educated(wave_id: str)
     """Nonresponse rises with age and education, so completes are older and more educated than adults."""
     frame = WAVES[wave_id]
     age_pop, edu_pop = _population_shares("age_band"), _population_shares("education")
-    age, edu = _sample_shares(frame, "age_band", weighted=False), _sample_shares(frame, "education", weighted=False)
+    age = _sample_shares(frame, "age_band", weighted=False)
+    edu = _sample_shares(frame, "education", weighted=False)
     assert age[5] + age[6] > age_pop[5] + age_pop[6] + 0.08
     assert age[1] < age_pop[1] - 0.04
     assert edu[4] > edu_pop[4] + 0.03
