@@ -242,7 +242,9 @@ class PsuLayout:
             factor = (1.0 - self.fraction) * np.where(lone, 1.0, n_h / (n_h - 1))
         if self.single_psu != "centre":
             factor = np.where(lone, 0.0, factor)
-        return z - centre[h], factor[h]
+        dev = z - centre[h]
+        dev[np.abs(dev) <= 1e-12 * (np.abs(z) + np.abs(centre[h]))] = 0.0  # rounding noise of equal PSU totals
+        return dev, factor[h]
 
     def variance(self, z: np.ndarray) -> np.ndarray:
         """(P, m) PSU totals of linearized variables -> (m,) variances, sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2."""

@@ -1,0 +1,153 @@
+"""`wavebook estimate`: design-based estimates from one data file, without a study spec."""
+
+from __future__ import annotations
+
+import argparse
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from pathlib import Path
+
+    import polars as pl
+
+HELP = "estimate means, totals, proportions, ratios or quantiles with design-based standard errors"
+EXAMPLE = "wavebook estimate wave3.csv --weight wt --strata region --psu area --proportion q1 --by age_band"
+
+OUTPUT_COLUMNS = (
+    "statistic",
+    "variable",
+    "category",
+    "domain",
+    "estimate",
+    "se",
+    "ci_low",
+    "ci_high",
+    "df",
+    "deff",
+    "n",
+    "n_eff",
+    "reason",
+)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """DATA, the design columns, what to estimate, the variance method and the output format."""
+    parser.add_argument("data", metavar="DATA", help="respondent file: CSV or Parquet")
+    design = parser.add_argument_group("design")
+    design.add_argument("--weight", required=True, metavar="COL", help="final weight column")
+    design.add_argument("--strata", metavar="COL", help="stratum column (default: one stratum)")
+    design.add_argument("--psu", metavar="COL", help="PSU (cluster) column (default: each respondent is a PSU)")
+    design.add_argument(
+        "--psu-ids",
+        choices=("nested", "unique"),
+        default="nested",
+        help="PSU ids restart within each stratum (nested, default) or are unique across strata",
+    )
+    design.add_argument(
+        "--fpc",
+        metavar="COL",
+        help="stratum population count N_h for the finite population correction (a value <= 1 is read as the sampling fraction)",
+    )
+    design.add_argument(
+        "--single-psu",
+        choices=("error", "certainty", "centre"),
+        default="error",
+        help="what to do with strata that have one PSU (default: error)",
+    )
+    what = parser.add_argument_group("what to estimate (repeat any of these)")
+    what.add_argument("--mean", action="append", default=[], metavar="COL")
+    what.add_argument("--total", action="append", default=[], metavar="COL")
+    what.add_argument("--proportion", action="append", default=[], metavar="COL", help="proportion of each category")
+    what.add_argument("--ratio", action="append", default=[], nargs=2, metavar=("NUM_COL", "DEN_COL"))
+    what.add_argument("--quantile", action="append", default=[], nargs=2, metavar=("COL", "Q"), help="e.g. --quantile income 0.5")
+    what.add_argument("--by", metavar="COL", help="also estimate in each domain COL=VALUE (full design kept)")
+    var = parser.add_argument_group("variance")
+    var.add_argument(
+        "--variance",
+        choices=("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied"),
+        default="taylor",
+        help="Taylor linearization (default) or a replicate method",
+    )
+    var.add_argument("--replicate-cols", metavar="PATTERN", help="regular expression matching whole replicate-weight column names")
+    var.add_argument("--replicate-scale", type=float, metavar="X", help="variance multiplier of the replicate weights")
+    var.add_argument("--fay", type=float, default=0.0, metavar="RHO", help="Fay coefficient for BRR (default 0)")
+    var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
+    var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
+    parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
+    parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
+
+
+def run(args: argparse.Namespace) -> int:
+    """Read DATA, estimate, print one row per estimate (CSV or a JSON array)."""
+    import json
+    from pathlib import Path
+
+    from pipeline.errors import Problem, SpecError
+    from pipeline.estimation.api import estimate
+    from pipeline.progress import step
+
+    problems = []
+    quantiles = []
+    for col, q in args.quantile:
+        try:
+            quantiles.append((col, float(q)))
+        except ValueError:
+            problems.append(Problem(rule="bad-quantile", message="the quantile probability is not a number", column=col, value=q))
+    if not 0.0 < args.level < 1.0:
+        problems.append(Problem(rule="bad-option", message="--level must be between 0 and 1", value=str(args.level)))
+    if problems:
+        raise SpecError("the estimate options are invalid", problems)
+    path = Path(args.data)
+    with step(f"reading {path.name}", quiet=args.quiet):
+        frame = _read(path)
+    with step("estimating", quiet=args.quiet):
+        result = estimate(
+            frame,
+            weight=args.weight,
+            strata=args.strata,
+            psu=args.psu,
+            psu_ids=args.psu_ids,
+            fpc=args.fpc,
+            mean=args.mean,
+            total=args.total,
+            proportion=args.proportion,
+            ratio=[tuple(r) for r in args.ratio],
+            quantile=quantiles,
+            by=args.by,
+            variance=args.variance,
+            replicate_cols=args.replicate_cols,
+            replicate_scale=args.replicate_scale,
+            fay=args.fay,
+            replicates=args.replicates,
+            seed=args.seed,
+            level=args.level,
+            single_psu=args.single_psu,
+            source=str(path),
+        ).select(OUTPUT_COLUMNS)
+    if args.format == "json":
+        print(json.dumps(result.to_dicts(), indent=1, allow_nan=False))
+    else:
+        print(result.write_csv(), end="")
+    return 0
+
+
+def _read(path: Path) -> pl.DataFrame:
+    """Read a CSV (types inferred from every row) or Parquet file into polars."""
+    import polars as pl
+
+    from pipeline.errors import DataError, Problem
+
+    if not path.exists():
+        raise FileNotFoundError(f"no such data file: {path}")
+    suffix = path.suffix.lower()
+    if suffix == ".parquet":
+        return pl.read_parquet(path)
+    if suffix in (".csv", ".txt"):
+        try:
+            return pl.read_csv(path, infer_schema_length=None)
+        except pl.exceptions.PolarsError as exc:
+            raise DataError("cannot read the data file", [Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))]) from None
+    raise DataError(
+        "unsupported data file",
+        [Problem(rule="file-format", message="DATA must be a .csv or .parquet file", file=str(path), value=path.suffix)],
+    )
