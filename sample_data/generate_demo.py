@@ -43,12 +43,12 @@ Stratified two-stage cluster sample. Strata: the six regions. First stage: n_h a
 (`Region.areas_selected`) per region by systematic sampling with probability proportional to
 size (adults in the area) from a randomly ordered list; no area is larger than the sampling
 interval, so no area can be hit twice and the first-stage inclusion probability is exactly
-n_h M_hi / M_h. Second stage: a simple random sample of `ISSUED_PER_AREA` adults in each selected area. The overall selection
-probability is therefore n_h m / M_h, the same for everyone in a region (self-weighting within
-strata; Kish, Survey Sampling (1965) section 7.5, from memory). The small regions Quillby Coast
-and Veskar Vale get about twice their share of the areas (a boost for regional reporting);
-Harrowmere, Fennick Lowlands and Oradel get fewer than their share: see `REGIONS` and
-area_frame.csv.
+n_h M_hi / M_h. Second stage: a simple random sample of m = `ISSUED_PER_AREA` adults in each
+selected area. The overall selection probability is therefore n_h m / M_h, the same for
+everyone in a region (self-weighting within strata; Kish, Survey Sampling (1965) section 7.5,
+from memory). The small regions Quillby Coast and Veskar Vale get about twice their share of
+the areas (a boost for regional reporting); Harrowmere, Fennick Lowlands and Oradel get fewer
+than their share: see `REGIONS` and area_frame.csv.
 
 `area` is the area number WITHIN its region (1..N_h): PSU ids are NESTED in strata
 (`psu_ids = "nested"` in study.toml). `p_select` is the selection probability of the issued
