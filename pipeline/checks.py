@@ -379,7 +379,7 @@ class _Context:
                 _Rule(
                     "code-gone",
                     "warning",
-                    lambda r: f"code '{r[1]}' was answered in earlier waves ({r[2]} rows, last in {r[4]}) "
+                    lambda r: f"code '{r[1]}' was answered in earlier waves ({r[2]} row{'s' if r[2] != 1 else ''}, last in {r[4]}) "
                     "but by nobody in this wave; check the questionnaire routing or the coding",
                     counts_rows=False,
                 ),
@@ -401,6 +401,7 @@ class _Context:
                     "warning",
                     lambda r: f"the unweighted share of code '{r[1]}' moved by more than "
                     f"{100 * threshold:g} points: {r[4]}",
+                    counts_rows=False,
                 ),
                 "check_drift_share.sql",
                 {"last": previous[-1], "threshold": threshold},
