@@ -179,6 +179,7 @@ _VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "multi": ("label", "items"),
     "numeric": ("label",),
 }
+_RESERVED_COLUMNS = frozenset({"wave", "respondent_id"})
 _WAVE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]*$")
 _INT_LITERAL = re.compile(r"^[+-]?[0-9]+$")
 _TOML_POSITION = re.compile(r"\(at line (\d+), column (\d+)\)")
@@ -639,6 +640,15 @@ class _Checker:
                 )
             if respondent_id in design.columns:
                 self.add("duplicate-column", "design", f"the respondent id '{respondent_id}' cannot be a design column")
+        for column, where in [*((c, f"variables.{owner[c]}") for c in owner), *(
+            (getattr(design, k), f"design.{k}") for k in ("strata", "psu", "base_weight", "selection_probability")
+        )]:
+            if column in _RESERVED_COLUMNS:
+                self.add(
+                    "reserved-name",
+                    where,
+                    f"'{column}' is a column name wavebook uses itself in the study database; rename the column",
+                )
         for name in ("base_weight", "selection_probability"):
             column = getattr(design, name)
             if column in owner and variables[owner[column]].type != "numeric":
