@@ -234,11 +234,39 @@ def _final_totals(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] 
     return replace(gt, totals=gt.totals * f[gt.cls][:, None])
 
 
-def estimate(frame: pl.DataFrame, **options: object) -> pl.DataFrame:
+def estimate(
+    frame: pl.DataFrame,
+    *,
+    weight: str,
+    strata: str | None = None,
+    psu: str | None = None,
+    fpc: str | Mapping[str, float] | None = None,
+    psu_ids: str = "nested",
+    mean: str | Sequence[str] | None = None,
+    total: str | Sequence[str] | None = None,
+    proportion: str | Sequence[str] | None = None,
+    ratio: tuple[str, str] | Sequence[tuple[str, str]] | None = None,
+    quantile: tuple[str, float] | Sequence[tuple[str, float]] | None = None,
+    by: str | None = None,
+    variance: str = "taylor",
+    replicate_cols: str | Sequence[str] | None = None,
+    replicate_scale: float | None = None,
+    replicate_method: str = "sdr",
+    fay: float = 0.0,
+    replicates: int | None = None,
+    seed: int | None = None,
+    level: float = 0.95,
+    single_psu: str = "error",
+    collapse_with: Mapping[str, str] | None = None,
+    classes: str | None = None,
+    calibration_matrix: np.ndarray | None = None,
+    reweight: Callable[[np.ndarray], np.ndarray] | None = None,
+    source: str | None = None,
+) -> pl.DataFrame:
     """Design-based estimates, one row per estimate, as a polars DataFrame.
 
     Columns: statistic, variable, category, domain, estimate, se, ci_low, ci_high, df, deff, n,
-    n_eff, reason, method. Options (all keyword-only):
+    n_eff, reason, method. Options:
       weight (required), strata, psu, fpc (column of stratum population counts N_h, a value <= 1
       read as the sampling fraction; or a mapping stratum -> value), psu_ids ("nested"/"unique");
       mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
@@ -248,7 +276,7 @@ def estimate(frame: pl.DataFrame, **options: object) -> pl.DataFrame:
       list of names; replicate_method: how they were made, default "sdr"; replicate_scale: the
       variance multiplier, default that of the method); fay, replicates, seed for the
       replicate methods; level: interval level (t intervals with the design df; quantiles: the
-      Woodruff interval); single_psu: "error", "certainty", "centre" or "collapse" (collapse_with);
+      Woodruff interval); source: the file name used in error messages; single_psu: "error", "certainty", "centre" or "collapse" (collapse_with);
       classes + calibration_matrix: calibration residuals in Taylor (see `taylor`); classes +
       reweight: `weight` then holds the adjusted base weights and reweight maps (R, C) class
       weight totals to (R, C) class factors (the weighting recipe's replay): final weights are
@@ -256,7 +284,14 @@ def estimate(frame: pl.DataFrame, **options: object) -> pl.DataFrame:
     A quantile row's deff and n_eff are those of the proportion F(q_hat) its interval comes from.
     Formulas: `taylor`, `design`, `deff`, `intervals`, `quantiles` module docstrings.
     """
-    return estimate_table(frame, **options).frame  # type: ignore[arg-type]
+    return estimate_table(
+        frame, weight=weight, strata=strata, psu=psu, fpc=fpc, psu_ids=psu_ids, mean=mean, total=total,
+        proportion=proportion, ratio=ratio, quantile=quantile, by=by, variance=variance,
+        replicate_cols=replicate_cols, replicate_scale=replicate_scale, replicate_method=replicate_method,
+        fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
+        collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
+        reweight=reweight, source=source,
+    ).frame
 
 
 def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> None:

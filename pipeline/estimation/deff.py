@@ -36,7 +36,7 @@ def second_moment(ratios: Ratios, t: np.ndarray, *, s_nn: np.ndarray, s_nd: np.n
     with np.errstate(divide="ignore", invalid="ignore"):
         a = np.where(ratios.is_total, 1.0, 1.0 / den)
         b = np.where(ratios.is_total, 0.0, -ratios.value(t) / den)
-    return a**2 * s_nn + 2 * a * b * s_nd + b**2 * s_dd
+        return a**2 * s_nn + 2 * a * b * s_nd + b**2 * s_dd
 
 
 def srs_variance(

@@ -1,0 +1,134 @@
+"""Single-PSU policies, FPC handling and bad input: clear errors or explicit missing estimates with reasons."""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+import pytest
+
+from pipeline.errors import DataError, SpecError
+from pipeline.estimation import estimate
+
+
+def lone_psu_sample() -> pl.DataFrame:
+    """Invented: strata A and B have 2 PSUs each, stratum C one PSU."""
+    return pl.DataFrame(
+        {
+            "h": ["A"] * 4 + ["B"] * 4 + ["C"] * 2,
+            "j": [1, 1, 2, 2, 1, 1, 2, 2, 1, 1],
+            "w": [2.0] * 10,
+            "y": [1.0, 2.0, 4.0, 3.0, 5.0, 7.0, 6.0, 9.0, 11.0, 10.0],
+        }
+    )
+
+
+def psu_totals(frame: pl.DataFrame) -> pl.DataFrame:
+    return frame.group_by("h", "j").agg((pl.col("w") * pl.col("y")).sum().alias("z")).sort("h", "j")
+
+
+def stratum_part(z: np.ndarray) -> float:
+    return len(z) / (len(z) - 1) * ((z - z.mean()) ** 2).sum()
+
+
+def test_single_psu_error_names_the_strata() -> None:
+    with pytest.raises(DataError) as info:
+        estimate(lone_psu_sample(), weight="w", strata="h", psu="j", total="y")
+    text = info.value.render()
+    assert "single-psu" in text and "e.g. ids C" in text and "certainty" in text
+
+
+def test_single_psu_certainty_contributes_zero() -> None:
+    frame = lone_psu_sample()
+    row = estimate(frame, weight="w", strata="h", psu="j", total="y", single_psu="certainty").row(0, named=True)
+    z = psu_totals(frame)
+    expected = sum(stratum_part(z.filter(pl.col("h") == s)["z"].to_numpy()) for s in ("A", "B"))
+    assert row["se"] ** 2 == pytest.approx(expected, rel=1e-12)  # with-replacement formula by hand, C adds 0
+    assert row["estimate"] == pytest.approx((frame["w"] * frame["y"]).sum())
+
+
+def test_single_psu_centre_uses_the_grand_mean_of_psu_totals() -> None:
+    frame = lone_psu_sample()
+    row = estimate(frame, weight="w", strata="h", psu="j", total="y", single_psu="centre").row(0, named=True)
+    z = psu_totals(frame)
+    grand = z["z"].mean()
+    lone = z.filter(pl.col("h") == "C")["z"][0]
+    expected = sum(stratum_part(z.filter(pl.col("h") == s)["z"].to_numpy()) for s in ("A", "B")) + (lone - grand) ** 2
+    assert row["se"] ** 2 == pytest.approx(expected, rel=1e-12)  # the definition in design.py, by hand
+
+
+def test_single_psu_collapse_merges_with_the_partner() -> None:
+    frame = lone_psu_sample()
+    row = estimate(frame, weight="w", strata="h", psu="j", total="y", single_psu="collapse", collapse_with={"C": "B"}).row(0, named=True)
+    merged = frame.with_columns(h=pl.when(pl.col("h") == "C").then(pl.lit("B")).otherwise(pl.col("h")), j=pl.when(pl.col("h") == "C").then(3).otherwise(pl.col("j")))
+    by_hand = estimate(merged, weight="w", strata="h", psu="j", total="y").row(0, named=True)
+    assert row["se"] == pytest.approx(by_hand["se"], rel=1e-12)  # same as relabelling the stratum by hand
+    assert row["df"] == 5 - 2
+
+
+def test_fpc_column_must_be_constant_within_stratum_and_not_below_sample() -> None:
+    frame = lone_psu_sample().filter(pl.col("h") != "C").with_columns(N=pl.Series([10.0, 10, 10, 12, 1, 1, 1, 1]))
+    with pytest.raises(DataError) as info:
+        estimate(frame, weight="w", strata="h", psu="j", total="y", fpc="N")
+    assert "fpc-not-constant" in info.value.render() and "ids A" in info.value.render()
+    small = frame.with_columns(N=pl.when(pl.col("h") == "A").then(1.5).otherwise(10.0))
+    with pytest.raises(DataError, match="fpc-too-small"):
+        estimate(small, weight="w", strata="h", psu="j", total="y", fpc="N")
+
+
+def test_missing_design_values_and_bad_weights_reported_together() -> None:
+    frame = pl.DataFrame(
+        {"h": ["A", None, "B", "B"], "j": [1, 1, None, 2], "w": [1.0, -2.0, float("nan"), None], "y": [1.0, 2.0, 3.0, 4.0]}
+    )
+    with pytest.raises(DataError) as info:
+        estimate(frame, weight="w", strata="h", psu="j", mean="y")
+    text = info.value.render()
+    for expected in ("missing stratum values (column 'h'); 1 row", "missing PSU values (column 'j'); 1 row",
+                     "missing weights", "negative weights", "not finite"):
+        assert expected in text
+
+
+def test_unique_psu_ids_repeating_across_strata_suggest_nested() -> None:
+    frame = lone_psu_sample().filter(pl.col("h") != "C")
+    with pytest.raises(DataError) as info:
+        estimate(frame, weight="w", strata="h", psu="j", psu_ids="unique", total="y")
+    text = info.value.render()
+    assert "psu-in-several-strata" in text and 'psu_ids = "nested"' in text and "2 rows" in text
+    nested = estimate(frame, weight="w", strata="h", psu="j", total="y")
+    assert nested["df"][0] == 4 - 2
+
+
+def test_unknown_columns_and_options_listed_at_once() -> None:
+    frame = lone_psu_sample()
+    with pytest.raises(SpecError) as info:
+        estimate(frame, weight="wt", strata="stratum", mean="nope", variance="magic", source="x.csv")
+    text = info.value.render()
+    for col in ("'wt'", "'stratum'", "'nope'"):
+        assert col in text
+    assert "variance must be one of" in text
+
+
+def test_zero_weights_are_allowed_but_not_in_bases() -> None:
+    frame = lone_psu_sample().filter(pl.col("h") != "C").with_columns(w=pl.Series([0.0, 2, 2, 2, 2, 2, 2, 0]))
+    row = estimate(frame, weight="w", strata="h", psu="j", mean="y").row(0, named=True)
+    assert row["n"] == 6
+    assert row["estimate"] == pytest.approx(frame.filter(pl.col("w") > 0)["y"].mean())
+
+
+def test_empty_domain_and_zero_denominator_give_missing_rows_with_reasons() -> None:
+    frame = pl.DataFrame(
+        {
+            "j": [1, 1, 2, 2, 3, 3],
+            "w": [1.0, 2.0, 1.0, 2.0, 1.0, 1.0],
+            "y": [1.0, 2.0, None, None, 3.0, 4.0],
+            "x": [0.0, 0.0, 0.0, 0.0, 0.0, 0.0],
+            "g": ["a", "a", "b", "b", "a", "a"],
+        }
+    )
+    out = estimate(frame, weight="w", psu="j", mean="y", ratio=("y", "x"), by="g")
+    empty = out.filter((pl.col("statistic") == "mean") & (pl.col("domain") == "g=b")).row(0, named=True)
+    assert empty["estimate"] is None and empty["se"] is None and empty["n"] == 0
+    assert empty["reason"] == "no respondents in this domain with an answer"
+    ratio = out.filter((pl.col("statistic") == "ratio") & (pl.col("domain") == "")).row(0, named=True)
+    assert ratio["estimate"] is None and ratio["reason"] == "denominator total is 0"
+    whole = out.filter((pl.col("statistic") == "mean") & (pl.col("domain") == "")).row(0, named=True)
+    assert whole["estimate"] == pytest.approx((1 + 4 + 3 + 4) / 5) and whole["reason"] == ""
