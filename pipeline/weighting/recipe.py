@@ -29,6 +29,7 @@ from pipeline.weighting.steps import CalibrateStep, NonresponseStep, Poststratif
 
 TRIM_SLACK = 1e-6  # a weight within this relative distance of its bound counts as within it
 POSTSTRATIFY_TOLERANCE = 1e-10
+WATER_FILLING_STEPS = 50
 
 
 def _population(margins: Sequence[Margin], fixed: float | None) -> float | None:
@@ -251,13 +252,77 @@ def _chain_factors(ops: list, classes: ClassIndex, b: np.ndarray) -> np.ndarray:
     return factors[:, 0]
 
 
-def _trim(step: TrimStep, ops: list, classes: ClassIndex, base: np.ndarray, weights_in: np.ndarray) -> tuple[np.ndarray, int, list[Problem]]:
-    """Trimming factors t (n,): bound w = base * t * f(totals(base * t)), re-fitting the class steps each round."""
+def _clipped_factor(w: np.ndarray, cat: np.ndarray, t: np.ndarray, k: int, lower: float, upper: float) -> np.ndarray:
+    """(K,) factors f with sum_{i in k} clip(w_i f_k, L, U) = t_k, all categories at once.
+
+    g_k(f) is non-decreasing and piecewise linear with slope sum of the unclipped w_i: Newton steps,
+    kept inside a bracket [lo, hi] updated from the sign of g - t, falling back to the bracket's
+    geometric midpoint (doubling or halving while one side is open)."""
+    f = np.ones(k)
+    lo, hi = np.zeros(k), np.full(k, np.inf)
+    for _ in range(WATER_FILLING_STEPS):
+        v = w * f[cat]
+        clipped = np.clip(v, lower, upper)
+        g = np.bincount(cat, weights=clipped, minlength=k)
+        miss = t - g
+        if np.all(np.abs(miss) <= 1e-13 * np.maximum(t, 1e-300)):
+            break
+        slope = np.bincount(cat, weights=np.where(clipped == v, w, 0.0), minlength=k)
+        lo = np.where(miss > 0, f, lo)
+        hi = np.where(miss < 0, f, hi)
+        newton = f + np.divide(miss, slope, out=np.full(k, np.nan), where=slope > 0)
+        fallback = np.where(np.isinf(hi), 2.0 * f, np.where(lo == 0, 0.5 * f, np.sqrt(lo * hi)))
+        inside = np.isfinite(newton) & (newton > lo) & (newton < hi)
+        f = np.where(miss == 0, f, np.where(inside, newton, fallback))
+    return f
+
+
+def _bounded_rake(op: _RakeOp, classes: ClassIndex, w: np.ndarray, lower: float, upper: float, *, rounds: int) -> np.ndarray:
+    """Per-respondent raking with bounds: each margin's category factor f_k solves
+    sum_{i in k} clip(w_i f_k, L, U) = T_k (capped weights stay at their bound, the rest share
+    what is left), cycling over the margins until margins and bounds hold together."""
+    population = op.population if op.population is not None else float(w.sum())
+    cats = [m.of_class[classes.index] for m in op.margins]
+    targets = [absolute_targets(m, np.array([population]))[:, 0] for m in op.margins]
+    w = np.clip(w, lower, upper)
+    for _ in range(rounds):
+        for m, cat, t in zip(op.margins, cats, targets):
+            f = _clipped_factor(w, cat, t, m.size, lower, upper)
+            w = np.clip(w * f[cat], lower, upper)
+        worst = [float(np.max(np.abs(np.bincount(cat, weights=w, minlength=m.size) / t - 1.0), initial=0.0))
+                 for m, cat, t in zip(op.margins, cats, targets)]
+        if max(worst, default=0.0) <= op.tolerance:
+            return w
+    raise DataError(
+        f"weighting[{op.index}] margins cannot be met with every weight within [{lower:.4g}, {upper:.4g}] "
+        f"(raking with bounds, {rounds} cycles); widen the trimming bounds or collapse categories",
+        [Problem("trim-infeasible", f"margin '{m.name}': remaining relative discrepancy {d:.3e}", column=m.name)
+         for m, d in zip(op.margins, worst)],
+    )
+
+
+def _bounds(step: TrimStep, weights_in: np.ndarray) -> tuple[float, float]:
+    """(lower, upper) absolute bounds: relative to the mean or median of the incoming weights, or absolute."""
     ref = {"mean": float(weights_in.mean()), "median": float(np.median(weights_in)), "absolute": 1.0}[step.relative_to]
-    upper = step.upper * ref if step.upper is not None else np.inf
-    lower = step.lower * ref if step.lower is not None else 0.0
+    return (step.lower * ref if step.lower is not None else 0.0, step.upper * ref if step.upper is not None else np.inf)
+
+
+def _at_bounds(step: TrimStep, weights_in: np.ndarray, weights: np.ndarray) -> int:
+    """Number of weights sitting at a trimming bound (within TRIM_SLACK)."""
+    lower, upper = _bounds(step, weights_in)
+    return int(((weights >= upper * (1 - TRIM_SLACK)) | (weights <= lower * (1 + TRIM_SLACK))).sum())
+
+
+def _trim(step: TrimStep, ops: list, classes: ClassIndex, base: np.ndarray, weights_in: np.ndarray) -> tuple[np.ndarray, int]:
+    """Trimming factors t (n,) such that w = base * t * f(totals(base * t)) lies within the bounds.
+
+    With a raking or post-stratification step before, the trimmed weights are first found by raking
+    with bounds (`_bounded_rake`); then t = trimmed / (base * f) and rounds of trim-and-refit
+    (t_i *= bound / w_i for weights outside, then the class steps re-run) settle any remainder."""
+    lower, upper = _bounds(step, weights_in)
     where = f"weighting[{step.index}] (trim)"
     conflicts: list[Problem] = []
+    t = np.ones_like(base)
     if ops and isinstance(ops[-1], _RakeOp):
         op = ops[-1]
         pop = op.population if op.population is not None else float(weights_in.sum())
@@ -270,14 +335,16 @@ def _trim(step: TrimStep, ops: list, classes: ClassIndex, base: np.ndarray, weig
                     f"{where}: category '{m.categories[k]}' of margin '{m.name}' needs an average weight of {need[k]:.4g} "
                     f"over its {int(counts[k])} respondent(s), outside the bounds [{lower:.4g}, {upper:.4g}]",
                     column=m.name, value=m.categories[k], count=int(counts[k])))
-    if conflicts:
-        raise DataError(f"{where}: the bounds cannot hold together with the targets; widen them or collapse categories", conflicts)
-    t = np.ones_like(base)
+        if conflicts:
+            raise DataError(f"{where}: the bounds cannot hold together with the targets; widen them or collapse categories",
+                            conflicts)
+        trimmed = _bounded_rake(op, classes, weights_in, lower, upper, rounds=step.max_rounds)
+        t = trimmed / weights_in
     for rounds in range(1, step.max_rounds + 1):
         w = base * t * (_chain_factors(ops, classes, base * t)[classes.index] if ops else 1.0)
         hi, lo = w > upper * (1 + TRIM_SLACK), w < lower * (1 - TRIM_SLACK)
         if not (hi.any() or lo.any()):
-            return t, rounds, []
+            return t, rounds
         t[hi] *= upper / w[hi]
         t[lo] *= lower / w[lo]
     raise DataError(
@@ -318,11 +385,12 @@ def fit_recipe(
     weights = base.copy()
     for s in rest:
         if isinstance(s, TrimStep):
-            t, rounds, _ = _trim(s, ops, classes, base, weights)
+            weights_in_trim = weights
+            t, rounds = _trim(s, ops, classes, base, weights)
             base = base * t
             weights = base * (_chain_factors(ops, classes, base)[classes.index] if ops else 1.0)
-            reports.append(StepReport(s.index, "trim", WeightSummary.of(weights), iterations=rounds,
-                                      trimmed=int((t != 1.0).sum())))
+            at_bound = _at_bounds(s, weights_in_trim, weights)
+            reports.append(StepReport(s.index, "trim", WeightSummary.of(weights), iterations=rounds, trimmed=at_bound))
             continue
         op = op_of[s.index]
         ops.append(op)

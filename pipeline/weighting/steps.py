@@ -335,18 +335,7 @@ def parse_steps(raw: tuple[dict, ...], study: Study) -> list[Step]:
 
 
 def code_order(study: Study | None, variables: set[str]) -> dict[str, list[str]]:
-    """Codebook code order (as text) of `variables`; for a scale every integer between its lowest and
-    highest labelled non-excluded code counts as a code."""
-    out: dict[str, list[str]] = {}
+    """Codebook code order (as text) of `variables` (`Variable.valid_codes`); empty without a study."""
     if study is None:
-        return out
-    for name in variables:
-        var = study.variables.get(name)
-        if var is None:
-            continue
-        codes = list(var.values)
-        if var.type == "scale" and codes and all(isinstance(c, int) for c in codes):
-            kept = [c for c in codes if c not in var.exclude_from_mean]
-            codes = sorted(set(range(min(kept), max(kept) + 1)) | set(codes)) if kept else codes
-        out[name] = [str(c) for c in codes]
-    return out
+        return {}
+    return {name: [str(c) for c in study.variables[name].valid_codes] for name in variables if name in study.variables}
