@@ -1,0 +1,141 @@
+"""`wavebook estimate`: output rows and formats, replicate options, exit codes for bad input."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+import pytest
+
+from pipeline.cli import main
+from pipeline.commands.estimate import OUTPUT_COLUMNS
+from pipeline.estimation import estimate
+
+ROOT = Path(__file__).resolve().parents[1]
+LOHR = ROOT.parent / "shared" / "reference" / "lohr_sda3"
+
+
+def invented(seed: int = 1, n: int = 120) -> pl.DataFrame:
+    rng = np.random.default_rng(seed)
+    h = rng.integers(0, 3, n)
+    return pl.DataFrame(
+        {
+            "region": np.array(["north", "south", "west"])[h],
+            "area": h * 10 + rng.integers(0, 4, n),  # unique across regions
+            "local": rng.integers(0, 4, n),  # restarts within each region (nested)
+            "wt": rng.uniform(1, 3, n),
+            "spend": rng.gamma(2, 20, n).round(2),
+            "visits": rng.integers(1, 6, n),
+            "brand": rng.choice(["Alder", "Birch", "Cedar"], n),
+        }
+    )
+
+
+def run_cli(args: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
+    code = main(["estimate", *args])
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def test_csv_rows_match_the_api(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    frame = invented()
+    path = tmp_path / "wave.csv"
+    frame.write_csv(path)
+    code, out, _ = run_cli(
+        [str(path), "--weight", "wt", "--strata", "region", "--psu", "area", "--mean", "spend",
+         "--proportion", "brand", "--ratio", "spend", "visits", "--by", "region", "--level", "0.9"],
+        capsys,
+    )
+    assert code == 0
+    rows = list(csv.DictReader(io.StringIO(out)))
+    assert tuple(rows[0]) == OUTPUT_COLUMNS
+    api = estimate(frame, weight="wt", strata="region", psu="area", mean="spend", proportion="brand",
+                   ratio=("spend", "visits"), by="region", level=0.9)
+    assert len(rows) == api.height == (1 + 3 + 1) * 4
+    for row, expected in zip(rows, api.iter_rows(named=True), strict=True):
+        assert row["domain"] == expected["domain"] and row["category"] == expected["category"]
+        for col in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff"):
+            assert float(row[col]) == pytest.approx(expected[col], rel=1e-12)
+    assert {r["domain"] for r in rows} == {"", "region=north", "region=south", "region=west"}
+    assert {r["category"] for r in rows if r["statistic"] == "proportion"} == {"Alder", "Birch", "Cedar"}
+    assert all(r["category"] == "" for r in rows if r["statistic"] != "proportion")
+
+
+@pytest.mark.skipif(not LOHR.is_dir(), reason=f"reference folder {LOHR} is absent")
+def test_json_output_on_parquet_with_fpc(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    frame = pl.read_csv(LOHR / "agsrs.csv").with_columns(w=pl.lit(3078 / 300), N=pl.lit(3078))
+    path = tmp_path / "agsrs.parquet"
+    frame.write_parquet(path)
+    code, out, _ = run_cli([str(path), "--weight", "w", "--fpc", "N", "--mean", "acres92", "--format", "json"], capsys)
+    assert code == 0
+    (row,) = json.loads(out)
+    # Lohr, Sampling: Design and Analysis, 3rd ed., ch. 2 agsrs example (check_values agsrs_mean_acres92)
+    assert row["estimate"] == pytest.approx(297897.0467, abs=1e-4)
+    assert row["se"] == pytest.approx(18898.4344, abs=1e-4)
+    assert row["df"] == 299 and row["n"] == 300 and row["category"] == "" and row["domain"] == ""
+
+
+def test_supplied_jackknife_weights_equal_generated_jackknife(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    frame = invented(3)
+    psus = frame["area"].unique().sort().to_list()
+    r = len(psus)
+    # delete-one-PSU jackknife weights written out by hand (Wolter 2007 section 4.2, from memory)
+    rep = {f"rw{k + 1}": pl.when(pl.col("area") == p).then(0.0).otherwise(pl.col("wt") * r / (r - 1)) for k, p in enumerate(psus)}
+    path = tmp_path / "wave.csv"
+    frame.with_columns(**rep, rw1x=pl.lit(1.0)).write_csv(path)
+    code, out, _ = run_cli(
+        [str(path), "--weight", "wt", "--mean", "spend", "--variance", "supplied",
+         "--replicate-cols", r"rw\d+", "--replicate-scale", str((r - 1) / r)],
+        capsys,
+    )
+    assert code == 0
+    (row,) = list(csv.DictReader(io.StringIO(out)))
+    generated = estimate(frame, weight="wt", psu="area", mean="spend", variance="jk1").row(0, named=True)
+    # the same replicates: identical variance (identity); rw1x is not matched (whole-name match)
+    assert float(row["se"]) == pytest.approx(generated["se"], rel=1e-10)
+    assert float(row["df"]) == r - 1
+
+
+def test_quantile_and_replicate_method(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = tmp_path / "wave.csv"
+    invented(4).write_csv(path)
+    code, out, _ = run_cli(
+        [str(path), "--weight", "wt", "--strata", "region", "--psu", "area", "--quantile", "spend", "0.5",
+         "--variance", "bootstrap", "--replicates", "50", "--seed", "7"],
+        capsys,
+    )
+    assert code == 0
+    (row,) = list(csv.DictReader(io.StringIO(out)))
+    assert row["statistic"] == "quantile" and row["category"] == "0.5"
+    assert float(row["ci_low"]) <= float(row["estimate"]) <= float(row["ci_high"])
+
+
+def test_bad_input_exits_1_with_every_problem(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = tmp_path / "wave.csv"
+    invented().write_csv(path)
+    code, _, err = run_cli([str(path), "--weight", "weight", "--mean", "nope", "--by", "age"], capsys)
+    assert code == 1
+    assert all(f"column '{c}'" in err for c in ("weight", "nope", "age")) and str(path) in err
+    code, _, err = run_cli([str(tmp_path / "absent.csv"), "--weight", "wt", "--mean", "spend"], capsys)
+    assert code == 1 and "absent.csv" in err
+    other = tmp_path / "wave.xlsx"
+    other.write_text("x")
+    code, _, err = run_cli([str(other), "--weight", "wt", "--mean", "spend"], capsys)
+    assert code == 1 and ".csv or .parquet" in err
+    code, _, err = run_cli([str(path), "--weight", "wt", "--strata", "region", "--mean", "spend", "--psu", "local",
+                            "--psu-ids", "unique"], capsys)
+    assert code == 1 and "psu-in-several-strata" in err and "nested" in err
+    code, _, err = run_cli([str(path), "--weight", "wt", "--quantile", "spend", "half", "--level", "95"], capsys)
+    assert code == 1 and "not a number" in err and "--level" in err
+
+
+def test_command_module_imports_no_heavy_library() -> None:
+    probe = "import sys, pipeline.commands.estimate; print(sorted(m for m in ('polars', 'numpy', 'scipy', 'duckdb') if m in sys.modules))"
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, cwd=ROOT, check=True).stdout
+    assert out.strip() == "[]"
