@@ -237,8 +237,10 @@ class _Context:
             _Rule(
                 "duplicate-id",
                 "error",
-                lambda r: f"{r[4]} respondent id{'s' if r[4] != '1' else ''} appear on more than one row "
-                "(ids must be unique within a wave)",
+                lambda r: (
+                    "1 respondent id appears" if r[4] == "1" else f"{r[4]} respondent ids appear"
+                )
+                + " on more than one row (ids must be unique within a wave)",
             ),
             "check_duplicate_id.sql",
             {"column": id_col},
