@@ -63,7 +63,7 @@ def clustered_sample(seed: int) -> tuple[pl.DataFrame, np.ndarray]:
 
 def test_taylor_residuals_agree_with_reweighted_jackknife() -> None:
     frame, counts = clustered_sample(11)
-    common = {"strata": "h", "psu": "j", "mean": "y", "proportion": "yes", "classes": "cls"}
+    common = {"strata": "h", "psu": "j", "mean": "y", "proportion": "yes", "quantile": ("y", 0.5), "classes": "cls"}
     taylor = estimate(frame, weight="w", calibration_matrix=np.eye(4), **common).sort("statistic", "category")
     # jackknife (E2's stratified delete-one-PSU replicates) replaying the post-stratification in every
     # replicate: f_r(c) = N_c / (replicate base-weight total of c)
@@ -77,4 +77,7 @@ def test_taylor_residuals_agree_with_reweighted_jackknife() -> None:
     # and both differ from Taylor without residuals, which ignores the post-stratification
     plain = estimate(frame, weight="w", **common).sort("statistic", "category")
     assert plain["se"][0] > 1.3 * jackknife["se"][0]
+    # the replayed recipe gives the final weights w0 f(c): the median is that of the final weights (numpy reference)
+    median = np.quantile(frame["y"].to_numpy(), 0.5, weights=frame["w"].to_numpy(), method="inverted_cdf")
+    assert jackknife.filter(pl.col("statistic") == "quantile")["estimate"][0] == pytest.approx(median, rel=1e-12)
     assert (jackknife["df"] == taylor["df"]).all()  # both P - H = 60

@@ -34,6 +34,7 @@ from pipeline.estimation.totals import GroupTotals, group_totals
 
 VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied")
 WEIGHT_QUANTITY = "__weight"
+FINAL_WEIGHT = "__final_weight_for_cdf"
 
 
 @dataclass(frozen=True)
@@ -198,8 +199,12 @@ def estimate_table(
         for num_col, den_col in _parse_ratios(ratio):
             plan.ratio(frame, num_col, den_col, dom, d)
     cdfs = {}
-    for var, prob in _parse_quantiles(quantile):
-        cdfs[var] = cdfs.get(var) or weighted_cdfs(frame, value=var, weight=weight, domains=domains)
+    quantiles = _parse_quantiles(quantile)
+    cdf_frame, cdf_weight = frame, weight
+    if quantiles and reweight is not None and classes is not None:
+        cdf_frame, cdf_weight = frame.with_columns(_final_weights(frame, weight=weight, classes=classes, reweight=reweight)), FINAL_WEIGHT
+    for var, prob in quantiles:
+        cdfs[var] = cdfs.get(var) or weighted_cdfs(cdf_frame, value=var, weight=cdf_weight, domains=domains)
         for dom, d in domains.items():
             point = float(cdfs[var][dom].quantile(prob))
             plan.quantile(frame, var, prob, point, dom, d)
@@ -223,6 +228,17 @@ def estimate_table(
                                     replicates=replicates, seed=seed, reweight=reweight, fractions=fractions, source=source)
         has_fpc = fractions is not None
     return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
+
+
+def _final_weights(
+    frame: pl.DataFrame, *, weight: str, classes: str, reweight: Callable[[np.ndarray], np.ndarray]
+) -> pl.Series:
+    """Per-respondent final weights w0_i f(c_i) (for the weighted CDF of quantiles), classes indexed as in `group_totals`."""
+    cls = frame[classes]
+    idx = (cls if cls.dtype.is_integer() else cls.rank("dense") - 1).to_numpy().astype(np.int64)
+    w0 = frame[weight].cast(pl.Float64).to_numpy()
+    f = np.asarray(reweight(np.bincount(idx, weights=w0, minlength=idx.max() + 1)[None, :]), dtype=np.float64)[0]
+    return pl.Series(FINAL_WEIGHT, w0 * f[idx])
 
 
 def _final_totals(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] | None) -> GroupTotals:
