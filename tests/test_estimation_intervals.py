@@ -100,3 +100,24 @@ def test_estimate_ci_kinds() -> None:
         mean.ci(0.95, "logit")
     with pytest.raises(ValueError, match="between 0 and 1"):
         mean.ci(1.5)
+
+
+def test_estimate_table_rows_and_recomputed_intervals() -> None:
+    import polars as pl
+
+    from pipeline.estimation import estimate_table
+
+    rng = np.random.default_rng(2)
+    frame = pl.DataFrame({"w": rng.uniform(1, 2, 80), "y": rng.normal(size=80), "q": rng.integers(0, 2, 80), "j": np.arange(80) // 4})
+    table = estimate_table(frame, weight="w", psu="j", mean="y", proportion="q")
+    rows = list(table)
+    assert len(table) == 3 and [r.statistic for r in rows] == ["mean", "proportion", "proportion"]
+    prop = rows[2]
+    assert prop.method == "taylor" and prop.df == 19 and prop.n == 80  # n is the base: everyone who answered
+    assert prop.n_eff == pytest.approx(prop.n / prop.deff)
+    kg = table.with_ci(kind="korn-graubard", level=0.9).frame
+    assert np.isnan(kg["ci_low"][0])  # a mean has no Korn-Graubard interval
+    # the table's KG limits are those of the single Estimate (same function, identity)
+    assert (kg["ci_low"][2], kg["ci_high"][2]) == pytest.approx(prop.ci(0.9, "korn-graubard"), rel=1e-12)
+    narrow = table.with_ci(level=0.5).frame
+    assert (narrow["ci_high"] - narrow["ci_low"] < table.frame["ci_high"] - table.frame["ci_low"]).all()
