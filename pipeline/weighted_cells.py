@@ -1,0 +1,207 @@
+"""Weighted, design-based estimates for every row of the topline tables.
+
+`weighted_cells(responses, study, recipes, options)` takes the staged responses of the waves,
+the fitted weighting recipe of each wave and the `[variance]` options, and returns one row per
+(wave, variable, row_order) of the topline layout (`pipeline.topline`) that has an estimate:
+
+  category / net / item / missing rows: a weighted percentage, 100 * p with
+      p = sum_i w_i a_i y_i / sum_i w_i a_i,   y_i = 1 when i's answer is in the row, a_i = 1 when
+      i is in the row's base (answered; for "missing" rows every respondent of the wave);
+  statistic "mean": the weighted mean of the answers (codes excluded from the mean left out);
+  statistic "median": the weighted median with its Woodruff (1952) interval.
+
+Every estimate of a wave comes from ONE call of `pipeline.estimation.estimate_table` on that
+wave's rows: one grouped pass over respondents, the full design kept (rows outside a base get
+a_i = 0, they are never dropped before the variance), the weighting recipe's classes passed in so
+that Taylor linearization uses the calibration residuals (Deville & Sarndal 1992) and replicate
+methods replay the recipe in every replicate. Percentages get the Korn & Graubard (1998)
+interval (Clopper-Pearson on the effective sample size, which behaves near 0% and 100%), means
+the t interval with the design degrees of freedom.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import numpy as np
+import polars as pl
+
+from pipeline.estimation import estimate_table
+from pipeline.estimation.intervals import korn_graubard_interval
+from pipeline.estimation.options import VarianceOptions
+from pipeline.spec import Study, Variable
+from pipeline.weighting import FittedRecipe
+
+ESTIMATE_SCHEMA: dict[str, pl.DataType] = {
+    "wave": pl.String(),
+    "variable": pl.String(),
+    "row_order": pl.Int32(),
+    "estimate": pl.Float64(),
+    "se": pl.Float64(),
+    "ci_low": pl.Float64(),
+    "ci_high": pl.Float64(),
+    "deff": pl.Float64(),
+    "n_eff": pl.Float64(),
+    "df": pl.Float64(),
+    "weighted_base": pl.Float64(),
+}
+_WEIGHT = "__base_weight"
+_CLASS = "__class"
+_FINAL = "__final_weight"
+PERCENT_KINDS = ("category", "net", "item", "missing")
+
+
+def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, str, pl.Expr | None, pl.Expr]]:
+    """(row_order, kind, y, base) per estimable row of one variable's layout.
+
+    y is the 0/1 indicator (percent rows) or the value (mean, median); base is the 0/1 base
+    indicator. y is None for rows estimated from the value column directly (statistics).
+    """
+    out: list[tuple[int, str, pl.Expr | None, pl.Expr]] = []
+    if variable.type == "multi":
+        items = list(variable.items)
+        asked = pl.any_horizontal([pl.col(c).is_not_null() for c in items])
+        for order, kind, code in rows.select("row_order", "row_kind", "code").iter_rows():
+            if kind == "item":
+                out.append((order, kind, pl.col(code).eq(1).fill_null(False), pl.col(code).is_not_null()))
+            elif kind == "net":
+                out.append((order, kind, pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in items]), asked))
+            elif kind == "missing":
+                out.append((order, kind, asked.not_(), pl.lit(True)))
+        return out
+    col = pl.col(variable.name)
+    text = col.cast(pl.String)
+    answered = col.is_not_null()
+    scored = col.is_not_null() & ~col.is_in(list(variable.exclude_from_mean)) if variable.exclude_from_mean else answered
+    for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
+        if kind == "category":
+            out.append((order, kind, text.eq(code).fill_null(False), answered))
+        elif kind == "net":
+            members = [str(c) for c in variable.nets[label]]
+            out.append((order, kind, text.is_in(members).fill_null(False), answered))
+        elif kind == "missing":
+            out.append((order, kind, answered.not_(), pl.lit(True)))
+        elif kind == "statistic" and code in ("mean", "median"):
+            out.append((order, code, None, scored))
+    return out
+
+
+def _wave_frame(
+    responses: pl.DataFrame, study: Study, recipe: FittedRecipe, layout: pl.DataFrame
+) -> tuple[pl.DataFrame, list[str], list[str], dict[str, tuple[str, int, str]]]:
+    """The wave's respondents with one derived column per estimable row, the weight and the class.
+
+    Returns (frame, mean columns, median columns, column -> (variable, row_order, kind)).
+    """
+    weights = pl.DataFrame(
+        {
+            "respondent_id": recipe.ids.cast(pl.String),
+            _WEIGHT: recipe.adjusted_base,
+            _CLASS: recipe.classes.astype(np.int64),
+            _FINAL: recipe.weights,
+        }
+    )
+    frame = responses.join(weights, on="respondent_id", how="inner", validate="1:1")
+    derived: list[pl.Expr] = []
+    means: list[str] = []
+    medians: list[str] = []
+    meaning: dict[str, tuple[str, int, str]] = {}
+    for name, variable in study.variables.items():
+        rows = layout.filter(pl.col("variable") == name)
+        for order, kind, y, base in _row_expressions(variable, rows):
+            column = f"__r{len(meaning)}"
+            meaning[column] = (name, order, kind)
+            if y is None:
+                derived.append(pl.when(base).then(pl.col(name).cast(pl.Float64)).otherwise(None).alias(column))
+                (medians if kind == "median" else means).append(column)
+            else:
+                derived.append(pl.when(base).then(y.cast(pl.Float64)).otherwise(None).alias(column))
+                means.append(column)
+    return frame.with_columns(derived), means, medians, meaning
+
+
+def _fpc(study: Study) -> Mapping[str, float] | None:
+    """Stratum label -> first-stage population count N_h or sampling fraction f_h, from the design."""
+    design = study.design
+    source = design.population or design.sampling_fraction
+    return {str(k): float(v) for k, v in source.items()} if source else None
+
+
+def wave_estimates(
+    responses: pl.DataFrame,
+    study: Study,
+    recipe: FittedRecipe,
+    layout: pl.DataFrame,
+    options: VarianceOptions,
+    *,
+    wave: str,
+) -> pl.DataFrame:
+    """Design-based estimates of every estimable topline row of one wave (module docstring).
+
+    responses: the wave's staged rows; recipe: its fitted weighting; layout: the topline rows of
+    the wave (`pipeline.topline.unweighted_toplines` filtered to the wave).
+    Returns a frame with `ESTIMATE_SCHEMA`; percentages on the 0-100 scale.
+    """
+    frame, means, medians, meaning = _wave_frame(responses, study, recipe, layout)
+    if not meaning:
+        return pl.DataFrame(schema=ESTIMATE_SCHEMA)
+    design = study.design
+    replicate = options.method != "taylor"
+    calibration = recipe.calibration_matrix()
+    table = estimate_table(
+        frame,
+        weight=_WEIGHT,
+        strata=design.strata,
+        psu=design.psu,
+        psu_ids=design.psu_ids,
+        fpc=_fpc(study),
+        single_psu=design.single_psu,
+        collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
+        mean=means,
+        quantile=[(c, 0.5) for c in medians] or None,
+        variance=options.method,
+        fay=options.fay,
+        replicates=options.replicates,
+        seed=options.seed,
+        level=options.level,
+        classes=_CLASS,
+        reweight=recipe.replay,
+        calibration_matrix=None if replicate or calibration.shape[1] == 0 else calibration,
+        source=f"wave {wave}",
+    ).frame
+    weighted_base = _weighted_bases(frame, list(meaning))
+    kinds = [meaning[v][2] for v in table["variable"]]
+    percent = np.array([k in PERCENT_KINDS for k in kinds])
+    est = table["estimate"].to_numpy().astype(float)
+    se = table["se"].to_numpy().astype(float)
+    low = table["ci_low"].to_numpy().astype(float)
+    high = table["ci_high"].to_numpy().astype(float)
+    df = table["df"].to_numpy().astype(float)
+    if percent.any():
+        kg_low, kg_high = korn_graubard_interval(
+            est[percent], se[percent], table["n"].to_numpy()[percent], df[percent], level=options.level
+        )
+        low[percent], high[percent] = kg_low, kg_high
+    scale = np.where(percent, 100.0, 1.0)
+    return pl.DataFrame(
+        {
+            "wave": [wave] * table.height,
+            "variable": [meaning[v][0] for v in table["variable"]],
+            "row_order": [meaning[v][1] for v in table["variable"]],
+            "estimate": est * scale,
+            "se": se * scale,
+            "ci_low": low * scale,
+            "ci_high": high * scale,
+            "deff": table["deff"].to_numpy().astype(float),
+            "n_eff": table["n_eff"].to_numpy().astype(float),
+            "df": df,
+            "weighted_base": [weighted_base[v] for v in table["variable"]],
+        },
+        schema=ESTIMATE_SCHEMA,
+    ).with_columns(pl.col(c).fill_nan(None) for c in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff"))
+
+
+def _weighted_bases(frame: pl.DataFrame, columns: list[str]) -> dict[str, float]:
+    """Sum of final weights over each derived column's base (the rows where it is not null)."""
+    row = frame.select([pl.col(_FINAL).filter(pl.col(c).is_not_null()).sum().alias(c) for c in columns]).row(0)
+    return dict(zip(columns, row, strict=True))
