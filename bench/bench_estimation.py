@@ -1,0 +1,280 @@
+"""Benchmark: Taylor vs replicate variances from group totals vs the dense respondent-by-replicate method.
+
+Data (invented, seeded): n = 1,000,000 respondents in 100 strata x 4 PSUs, base weights, three
+raking margins (age 6 x sex 2 x region 5 = 60 weighting classes), a banner of 10 columns and
+three questions of 10 categories: 300 estimate cells (proportions in domains), K = 311 totals.
+
+What each timing counts:
+  grouped pass   `group_totals`: one polars group_by over the respondents (all 311 quantities).
+  Taylor         grouped pass + raking of the full sample on class totals + calibration-residual
+                 Taylor variances of the 300 cells (`taylor_variance`).
+  jackknife      grouped pass + 400 JKn replicates, raking replayed in every replicate on class
+                 totals (helper W's raking engine `pipeline.weighting.ipf.rake`, all replicates at
+                 once) + replicate totals (`replicate_totals`) + variances.
+  bootstrap      the same with 500 Rao-Wu bootstrap replicates.
+  dense          the plain method on a random subsample of `--dense-rows` respondents, extrapolated
+                 linearly to n (its matrices would not fit in 4 GB at full size: n x R replicate
+                 weights plus n x K indicators, about 5.7 GB for R = 400): build the n x K
+                 indicator matrix, build the n x R replicate weights (base weight x PSU factor x
+                 replayed class factor, the replay itself not counted), then W' Y (numpy).
+Peak memory is the process's maximum resident set size (grouped methods and the dense
+subsample run in separate processes). Prints figures and ratios; asserts nothing.
+
+    python bench/bench_estimation.py [--rows 1000000] [--dense-rows 100000]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from pipeline.estimation.design import PsuLayout  # noqa: E402
+from pipeline.estimation.estimands import Ratios  # noqa: E402
+from pipeline.estimation.replicate_variance import replicate_variance  # noqa: E402
+from pipeline.estimation.replicates import make_replicates, replicate_totals, reweighted_totals  # noqa: E402
+from pipeline.estimation.taylor import Calibration, taylor_variance  # noqa: E402
+from pipeline.estimation.totals import GroupTotals, group_totals  # noqa: E402
+from pipeline.weighting.classes import Margin  # noqa: E402
+from pipeline.weighting.ipf import rake  # noqa: E402
+from pipeline.weighting.recipe import reference_coded  # noqa: E402
+
+STRATA, PSUS, BANNER, QUESTIONS, CATEGORIES = 100, 4, 10, 3, 10
+AGE, SEX, REGION = 6, 2, 5
+JACKKNIFE_REPLICATES, BOOTSTRAP_REPLICATES = STRATA * PSUS, 500
+
+
+def make_data(rows: int, seed: int = 11) -> pl.DataFrame:
+    """Invented respondents: design, weighting variables, banner and three 10-category questions."""
+    rng = np.random.default_rng(seed)
+    psu = rng.integers(0, STRATA * PSUS, rows)
+    age, sex, region = rng.integers(0, AGE, rows), rng.integers(0, SEX, rows), rng.integers(0, REGION, rows)
+    segment = rng.integers(0, BANNER, rows)
+    cols = {
+        "stratum": psu // PSUS,
+        "psu": psu % PSUS,
+        "w0": rng.uniform(50.0, 150.0, rows),
+        "cls": (age * SEX + sex) * REGION + region,
+        "segment": segment,
+    }
+    psu_effect = rng.normal(0.0, 0.4, STRATA * PSUS)[psu]
+    for q in range(QUESTIONS):
+        score = rng.normal(0.0, 1.0, rows) + psu_effect + 0.1 * segment + 0.2 * age
+        cols[f"q{q}"] = np.clip(np.floor(score * 2.0 + 5.0), 0, CATEGORIES - 1).astype(np.int64)
+    return pl.DataFrame(cols)
+
+
+def quantities() -> tuple[dict[str, pl.Expr], Ratios]:
+    """K = 311 quantities (1, 10 banner indicators, 300 category-in-column indicators) and the 300 proportions."""
+    q: dict[str, pl.Expr] = {"one": pl.lit(1.0)}
+    for d in range(BANNER):
+        q[f"col{d}"] = (pl.col("segment") == d).cast(pl.Float64)
+    num, den = [], []
+    for d in range(BANNER):
+        for k in range(QUESTIONS):
+            for a in range(CATEGORIES):
+                num.append(len(q))
+                den.append(1 + d)
+                q[f"q{k}={a}|col{d}"] = ((pl.col(f"q{k}") == a) & (pl.col("segment") == d)).cast(pl.Float64)
+    return q, Ratios(num, den)
+
+
+def margins(population: float) -> list[Margin]:
+    """Raking margins on the 60 classes, with invented population shares."""
+    cls = np.arange(AGE * SEX * REGION)
+    age, sex, region = cls // (SEX * REGION), (cls // REGION) % SEX, cls % REGION
+    shares = {
+        "age": (age, np.array([0.12, 0.17, 0.18, 0.18, 0.17, 0.18])),
+        "sex": (sex, np.array([0.49, 0.51])),
+        "region": (region, np.array([0.22, 0.18, 0.25, 0.15, 0.20])),
+    }
+    return [
+        Margin(name, (name,), tuple(map(str, range(len(s)))), of_class, s * population, "count")
+        for name, (of_class, s) in shares.items()
+    ]
+
+
+def make_reweight(population: float):
+    """The raking replay: (R, C) class totals of base weights -> (R, C) class factors."""
+    ms = margins(population)
+
+    def reweight(b: np.ndarray) -> np.ndarray:
+        fit = rake(b.T, ms, np.full(b.shape[0], population), tolerance=1e-8, max_iterations=200)
+        return fit.factors.T
+
+    return reweight, ms
+
+
+def crosstab_totals(frame: pl.DataFrame, names: tuple[str, ...]) -> GroupTotals:
+    """The same group totals as `group_totals` for this benchmark's categorical cells, by cross-tabulation.
+
+    Every quantity here is an indicator of (banner column d, answer a to question k), so one
+    weighted bincount per question over the integer code (group, d, a) gives all its cells: three
+    narrow aggregations instead of 311 weighted sums. The group key is factorised once through
+    its (dense, integer) code range. The bench's own sketch of a faster grouped pass for
+    categorical cells.
+    """
+    key = ((frame["stratum"] * PSUS + frame["psu"]) * (AGE * SEX * REGION) + frame["cls"]).to_numpy()
+    present = np.flatnonzero(np.bincount(key, minlength=STRATA * PSUS * AGE * SEX * REGION))
+    rank = np.zeros(STRATA * PSUS * AGE * SEX * REGION, dtype=np.int64)
+    rank[present] = np.arange(len(present))
+    g = rank[key]
+    groups = len(present)
+    w = frame["w0"].to_numpy()
+    d = frame["segment"].to_numpy()
+    cells = BANNER * CATEGORIES
+    totals = np.zeros((groups, len(names)))
+    counts = np.zeros((groups, len(names)), dtype=np.int64)
+    column = 1 + BANNER + (np.arange(BANNER)[:, None] * QUESTIONS * CATEGORIES + np.arange(CATEGORIES)[None, :]).ravel()
+    for k in range(QUESTIONS):
+        code = (g * BANNER + d) * CATEGORIES + frame[f"q{k}"].to_numpy()
+        totals[:, column + k * CATEGORIES] = np.bincount(code, weights=w, minlength=groups * cells).reshape(groups, cells)
+        counts[:, column + k * CATEGORIES] = np.bincount(code, minlength=groups * cells).reshape(groups, cells)
+    by_column = (g * BANNER + d)
+    totals[:, 1 : 1 + BANNER] = np.bincount(by_column, weights=w, minlength=groups * BANNER).reshape(groups, BANNER)
+    counts[:, 1 : 1 + BANNER] = np.bincount(by_column, minlength=groups * BANNER).reshape(groups, BANNER)
+    totals[:, 0] = totals[:, 1 : 1 + BANNER].sum(axis=1)
+    counts[:, 0] = counts[:, 1 : 1 + BANNER].sum(axis=1)
+    cls = present % (AGE * SEX * REGION)
+    psu = present // (AGE * SEX * REGION)
+    return GroupTotals(
+        stratum=psu // PSUS,
+        psu=psu,
+        cls=cls,
+        totals=totals,
+        counts=counts,
+        columns=names,
+        psu_stratum=np.repeat(np.arange(STRATA), PSUS),
+        stratum_labels=tuple(map(str, range(STRATA))),
+        psu_labels=tuple(map(str, range(STRATA * PSUS))),
+    )
+
+
+def grouped_phase(rows: int) -> dict:
+    """Both grouped passes, then Taylor, jackknife and bootstrap timings from the group totals."""
+    frame = make_data(rows)
+    q, ratios = quantities()
+    population = float(frame["w0"].sum()) * 1.05
+    reweight, ms = make_reweight(population)
+    out: dict = {"rows": rows, "K": len(q), "cells": len(ratios)}
+
+    start = time.perf_counter()
+    gt = group_totals(frame, q, weight="w0", strata="stratum", psu="psu", classes="cls")
+    out["grouped_pass"] = time.perf_counter() - start
+    out["groups"] = len(gt.psu)
+    out["peak_rss_mb_after_pass"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    start = time.perf_counter()
+    fast = crosstab_totals(frame, tuple(q))
+    out["crosstab_pass"] = time.perf_counter() - start
+    out["crosstab_max_rel_diff"] = float(np.max(np.abs(fast.totals - gt.totals)) / np.max(np.abs(gt.totals)))
+    out["crosstab_counts_equal"] = bool(np.array_equal(fast.counts, gt.counts))
+
+    start = time.perf_counter()
+    t = reweighted_totals(gt, reweight=reweight, base="one")
+    theta = ratios.value(t)
+    f_full = reweight(gt.class_totals(gt.totals[:, [0]]).T)[0]
+    final = replace(gt, totals=gt.totals * f_full[gt.cls][:, None])
+    layout = PsuLayout(gt.psu_stratum, gt.stratum_labels, np.zeros(gt.n_strata), "error")
+    _, v_taylor = taylor_variance(final, ratios, layout, calibration=Calibration(reference_coded(ms)[0], 0))
+    out["taylor_after_pass"] = time.perf_counter() - start
+
+    for name, method, reps in (("jackknife", "jkn", None), ("bootstrap", "bootstrap", BOOTSTRAP_REPLICATES)):
+        start = time.perf_counter()
+        rf = make_replicates(method, gt.psu_stratum, replicates=reps, seed=5)
+        theta_r = ratios.value(replicate_totals(gt, rf, reweight=reweight, base="one"))
+        v = replicate_variance(theta, theta_r, rf)
+        out[f"{name}_after_pass"] = time.perf_counter() - start
+        out[f"{name}_replicates"] = rf.n_replicates
+        out[f"{name}_se_ratio_median"] = float(np.median(np.sqrt(v / v_taylor)))
+    out["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return out
+
+
+def dense_phase(rows: int, sample: int) -> dict:
+    """The plain method on a random subsample: n_s x K indicators, n_s x R replicate weights, W' Y."""
+    frame = make_data(rows)
+    q, ratios = quantities()
+    population = float(frame["w0"].sum()) * 1.05
+    reweight, _ = make_reweight(population)
+    gt = group_totals(frame, {"one": pl.lit(1.0)}, weight="w0", strata="stratum", psu="psu", classes="cls")
+    rf = make_replicates("jkn", gt.psu_stratum)
+    by_psu_class = np.zeros((gt.n_psus, gt.n_classes))
+    np.add.at(by_psu_class, (gt.psu, gt.cls), gt.totals[:, 0])
+    f = reweight(rf.factors @ by_psu_class)  # the replay, shared with the grouped method and not counted here
+    sub = frame.sample(n=sample, seed=3)
+    psu_index = (sub["stratum"] * PSUS + sub["psu"]).to_numpy()
+    start = time.perf_counter()
+    y = sub.select([e.alias(k) for k, e in q.items()]).to_numpy()
+    built_y = time.perf_counter()
+    w = sub["w0"].to_numpy()[:, None] * rf.factors.T[psu_index] * f.T[sub["cls"].to_numpy()]
+    built_w = time.perf_counter()
+    t_r = w.T @ y
+    done = time.perf_counter()
+    ratios.value(t_r)
+    scale = rows / sample
+    return {
+        "dense_rows": sample,
+        "dense_y_seconds": (built_y - start) * scale,
+        "dense_w_seconds": (built_w - built_y) * scale,
+        "dense_product_seconds": (done - built_w) * scale,
+        "dense_seconds_extrapolated": (done - start) * scale,
+        "dense_peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+        "dense_full_matrices_gb": rows * (rf.n_replicates + len(q)) * 8 / 1e9,
+    }
+
+
+def run_phase(args: list[str]) -> dict:
+    done = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True, check=True)
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    """Run both phases in fresh processes and print the figures and ratios."""
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rows", type=int, default=1_000_000)
+    parser.add_argument("--dense-rows", type=int, default=100_000)
+    parser.add_argument("--phase", choices=["grouped", "dense"])
+    args = parser.parse_args()
+    if args.phase == "grouped":
+        print(json.dumps(grouped_phase(args.rows)))
+        return
+    if args.phase == "dense":
+        print(json.dumps(dense_phase(args.rows, args.dense_rows)))
+        return
+    g = run_phase(["--phase", "grouped", "--rows", str(args.rows)])
+    d = run_phase(["--phase", "dense", "--rows", str(args.rows), "--dense-rows", str(args.dense_rows)])
+    dense = d["dense_seconds_extrapolated"]
+    print(f"n = {g['rows']:,} respondents, {STRATA} strata x {PSUS} PSUs, {g['groups']:,} groups, "
+          f"{g['cells']} cells (K = {g['K']} totals), 60 raking classes")
+    print(f"dense method, extrapolated from {d['dense_rows']:,} rows: {dense:.1f} s (indicators {d['dense_y_seconds']:.1f} s, "
+          f"n x R weights {d['dense_w_seconds']:.1f} s, W'Y {d['dense_product_seconds']:.1f} s); its full matrices "
+          f"would need {d['dense_full_matrices_gb']:.1f} GB")
+    print(f"cross-tab pass equals group_totals: max relative difference {g['crosstab_max_rel_diff']:.1e}, "
+          f"counts equal {g['crosstab_counts_equal']}")
+    for label, key in (("group_totals pass", "grouped_pass"), ("cross-tab pass", "crosstab_pass")):
+        taylor = g[key] + g["taylor_after_pass"]
+        print(f"-- with the {label}: {g[key]:.2f} s")
+        print(f"   Taylor (pass + raking + calibrated variance)        {taylor:7.2f} s   {dense / taylor:6.1f} x faster than dense")
+        for name in ("jackknife", "bootstrap"):
+            total = g[key] + g[f"{name}_after_pass"]
+            print(f"   {name:<9} R = {g[f'{name}_replicates']:<4} (pass + replay + variance) {total:7.2f} s   "
+                  f"{dense / total:6.1f} x faster than dense (target >= 20)   {total / taylor:5.2f} x Taylor (target <= 2)")
+    for name in ("jackknife", "bootstrap"):
+        print(f"{name}: after the pass {g[f'{name}_after_pass']:.2f} s; median SE / Taylor SE "
+              f"{g[f'{name}_se_ratio_median']:.3f}")
+    print(f"peak memory: grouped methods {g['peak_rss_mb']:,.0f} MB (after the group_totals pass "
+          f"{g['peak_rss_mb_after_pass']:,.0f} MB; target < 4096 MB); dense subsample {d['dense_peak_rss_mb']:,.0f} MB")
+
+if __name__ == "__main__":
+    main()
