@@ -103,7 +103,7 @@ def add_new_columns(con: duckdb.DuckDBPyConnection, study: Study) -> list[str]:
         raise DataError(f"the study database {study.database_path} does not match the spec", changed)
     added = [name for name in column_types(study) if name not in existing]
     for name in added:
-        con.execute(sql("schema_add_column.sql", name=name, type=column_types(study)[name]))
+        con.execute(sql("schema_add_column.sql", column=name, type=column_types(study)[name]))
     return added
 
 

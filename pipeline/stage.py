@@ -18,7 +18,14 @@ from pathlib import Path
 import duckdb
 
 from pipeline.checks import run_checks
-from pipeline.database import add_new_columns, column_types, open_database, staged_waves, table_columns
+from pipeline.database import (
+    add_new_columns,
+    column_types,
+    create_tables,
+    open_database,
+    staged_waves,
+    table_columns,
+)
 from pipeline.errors import DataError, Problem
 from pipeline.progress import step
 from pipeline.readers import install_macros, read_raw
@@ -85,9 +92,12 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     """
     start = time.perf_counter()
     wave = study.wave(wave_id)
-    con = open_database(study)
+    path = study.database_path
+    created = not path.exists()
+    con = duckdb.connect(str(path))
     try:
-        file_columns, problems = _inspect(con, study, wave, quiet=quiet)
+        install_macros(con)
+        _, problems = _inspect(con, study, wave, quiet=quiet)
         errors = [p for p in problems if p.severity == "error"]
         if errors:
             raise DataError(
@@ -98,10 +108,15 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
         warnings = [p for p in problems if p.severity != "error"]
         with step(f"{wave.id}: hashing {wave.file.name}", quiet=quiet):
             digest = file_sha256(wave.file)
-        with step(f"{wave.id}: writing to {study.database_path.name}", quiet=quiet):
+        with step(f"{wave.id}: writing to {path.name}", quiet=quiet):
             rows, replaced, added = _write(con, study, wave, digest=digest, warnings=warnings)
-    finally:
+    except BaseException:
         con.close()
+        if created:  # the failed first staging leaves no empty database behind
+            for leftover in (path, path.with_name(path.name + ".wal")):
+                leftover.unlink(missing_ok=True)
+        raise
+    con.close()
     return StageReport(
         wave=wave.id,
         rows=rows,
@@ -114,7 +129,9 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     )
 
 
-def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool) -> tuple[list[str], list[Problem]]:
+def _inspect(
+    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool
+) -> tuple[list[str], list[Problem]]:
     """Read the wave's file into the raw temp table and run the checks: (file columns, problems)."""
     try:
         with step(f"{wave.id}: reading {wave.file.name}", quiet=quiet):
@@ -148,6 +165,7 @@ def _write(
     """One transaction: new columns, delete the wave, insert its rows, record it; (rows, replaced, added)."""
     con.begin()
     try:
+        create_tables(con, study)
         added = add_new_columns(con, study)
         params = {"wave": wave.id}
         replaced = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]

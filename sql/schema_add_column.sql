@@ -1,2 +1,2 @@
 -- A column the spec gained since the responses table was created.
-alter table responses add column {{ name|ident }} {{ type }}
+alter table responses add column {{ column|ident }} {{ type }}
