@@ -11,7 +11,6 @@ order, are small functions so later stages slot in between staging and rendering
 
 from __future__ import annotations
 
-import hashlib
 import sys
 from pathlib import Path
 
@@ -20,24 +19,13 @@ from pipeline.book import render_book
 from pipeline.database import open_database, staged_waves
 from pipeline.errors import DataError, Problem
 from pipeline.spec import Study, load_spec
-from pipeline.stage import stage_wave
+from pipeline.stage import file_sha256, stage_wave
 from pipeline.topline import unweighted_toplines
-
-_CHUNK = 1 << 20
 
 
 def default_book_path(study: Study) -> Path:
     """`<spec folder>/book/<spec stem>.html`."""
     return study.path.parent / "book" / f"{study.path.stem}.html"
-
-
-def file_sha256(path: Path) -> str:
-    """The SHA-256 of a file's bytes as lowercase hex (FIPS 180-4, via hashlib), read in 1 MiB chunks."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        while chunk := handle.read(_CHUNK):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
@@ -67,14 +55,16 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
 def run_study(spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
-    Stages the waves `waves_to_stage` selects (staging warnings go to stderr), computes the
-    unweighted toplines of every declared wave and renders the book to `out` (default
-    `default_book_path`). Raises SpecError / DataError with every problem found.
+    Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
+    staging warning, go to stderr), computes the unweighted toplines of every declared wave and
+    renders the book to `out` (default `default_book_path`). Raises SpecError / DataError with
+    every problem found.
     """
     study = load_spec(spec_path)
     for wave_id in waves_to_stage(study, restage=restage):
-        with progress.step(f"staging wave {wave_id}", quiet=quiet):
-            report = stage_wave(study, wave_id, quiet=quiet)
+        report = stage_wave(study, wave_id, quiet=quiet)
+        if not quiet:
+            print(report.summary(), file=sys.stderr)
         for warning in report.warnings:
             print(warning.render(), file=sys.stderr)
     with progress.step("computing toplines", quiet=quiet):
