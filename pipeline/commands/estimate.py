@@ -46,7 +46,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     design.add_argument(
         "--fpc",
         metavar="COL",
-        help="stratum population count N_h for the finite population correction (a value <= 1 is read as the sampling fraction)",
+        help="stratum population count N_h for the finite population correction "
+        "(a value <= 1 is read as the sampling fraction)",
     )
     design.add_argument(
         "--single-psu",
@@ -59,7 +60,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     what.add_argument("--total", action="append", default=[], metavar="COL")
     what.add_argument("--proportion", action="append", default=[], metavar="COL", help="proportion of each category")
     what.add_argument("--ratio", action="append", default=[], nargs=2, metavar=("NUM_COL", "DEN_COL"))
-    what.add_argument("--quantile", action="append", default=[], nargs=2, metavar=("COL", "Q"), help="e.g. --quantile income 0.5")
+    what.add_argument(
+        "--quantile", action="append", default=[], nargs=2, metavar=("COL", "Q"), help="e.g. --quantile income 0.5"
+    )
     what.add_argument("--by", metavar="COL", help="also estimate in each domain COL=VALUE (full design kept)")
     var = parser.add_argument_group("variance")
     var.add_argument(
@@ -68,7 +71,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         default="taylor",
         help="Taylor linearization (default) or a replicate method",
     )
-    var.add_argument("--replicate-cols", metavar="PATTERN", help="regular expression matching whole replicate-weight column names")
+    var.add_argument(
+        "--replicate-cols", metavar="PATTERN", help="regular expression matching whole replicate-weight column names"
+    )
     var.add_argument("--replicate-scale", type=float, metavar="X", help="variance multiplier of the replicate weights")
     var.add_argument("--fay", type=float, default=0.0, metavar="RHO", help="Fay coefficient for BRR (default 0)")
     var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
@@ -92,7 +97,8 @@ def run(args: argparse.Namespace) -> int:
         try:
             quantiles.append((col, float(q)))
         except ValueError:
-            problems.append(Problem(rule="bad-quantile", message="the quantile probability is not a number", column=col, value=q))
+            message = "the quantile probability is not a number"
+            problems.append(Problem(rule="bad-quantile", message=message, column=col, value=q))
     if not 0.0 < args.level < 1.0:
         problems.append(Problem(rule="bad-option", message="--level must be between 0 and 1", value=str(args.level)))
     if problems:
@@ -146,8 +152,13 @@ def _read(path: Path) -> pl.DataFrame:
         try:
             return pl.read_csv(path, infer_schema_length=None)
         except pl.exceptions.PolarsError as exc:
-            raise DataError("cannot read the data file", [Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))]) from None
+            problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
+            raise DataError("cannot read the data file", [problem]) from None
     raise DataError(
         "unsupported data file",
-        [Problem(rule="file-format", message="DATA must be a .csv or .parquet file", file=str(path), value=path.suffix)],
+        [
+            Problem(
+                rule="file-format", message="DATA must be a .csv or .parquet file", file=str(path), value=path.suffix
+            )
+        ],
     )

@@ -139,7 +139,9 @@ def _parse_quantiles(quantile: object) -> list[tuple[str, float]]:
     for item in items:
         col, prob = item
         if not 0.0 < float(prob) < 1.0:
-            raise SpecError("bad quantile", [Problem(rule="bad-quantile", message="quantile probability must be strictly between 0 and 1", column=col, value=str(prob))])
+            message = "quantile probability must be strictly between 0 and 1"
+            problem = Problem(rule="bad-quantile", message=message, column=col, value=str(prob))
+            raise SpecError("bad quantile", [problem])
         out.append((col, float(prob)))
     return out
 
@@ -186,7 +188,8 @@ def estimate_table(
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
     )
     _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
-                   by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source)
+                   by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
+                   reweight=reweight, calibration_matrix=calibration_matrix)
     domains = _domains(frame, by)
     plan = _Plan()
     for dom, d in domains.items():
@@ -202,7 +205,8 @@ def estimate_table(
     quantiles = _parse_quantiles(quantile)
     cdf_frame, cdf_weight = frame, weight
     if quantiles and reweight is not None and classes is not None:
-        cdf_frame, cdf_weight = frame.with_columns(_final_weights(frame, weight=weight, classes=classes, reweight=reweight)), FINAL_WEIGHT
+        final_weights = _final_weights(frame, weight=weight, classes=classes, reweight=reweight)
+        cdf_frame, cdf_weight = frame.with_columns(final_weights), FINAL_WEIGHT
     for var, prob in quantiles:
         cdfs[var] = cdfs.get(var) or weighted_cdfs(cdf_frame, value=var, weight=cdf_weight, domains=domains)
         for dom, d in domains.items():
@@ -223,9 +227,11 @@ def estimate_table(
     else:
         fractions = sampling_fractions(gt, fpc_values, fpc_name=design.fpc)
         theta = ratios.value(t)
-        v, df = _replicate_variance(frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
-                                    replicate_scale=replicate_scale, replicate_method=replicate_method, fay=fay,
-                                    replicates=replicates, seed=seed, reweight=reweight, fractions=fractions, source=source)
+        v, df = _replicate_variance(
+            frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
+            replicate_scale=replicate_scale, replicate_method=replicate_method, fay=fay, replicates=replicates,
+            seed=seed, reweight=reweight, fractions=fractions, source=source,
+        )
         has_fpc = fractions is not None
     return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
 
@@ -233,7 +239,7 @@ def estimate_table(
 def _final_weights(
     frame: pl.DataFrame, *, weight: str, classes: str, reweight: Callable[[np.ndarray], np.ndarray]
 ) -> pl.Series:
-    """Per-respondent final weights w0_i f(c_i) (for the weighted CDF of quantiles), classes indexed as in `group_totals`."""
+    """Per-respondent final weights w0_i f(c_i) for the weighted CDF of quantiles (classes as in `group_totals`)."""
     cls = frame[classes]
     idx = (cls if cls.dtype.is_integer() else cls.rank("dense") - 1).to_numpy().astype(np.int64)
     w0 = frame[weight].cast(pl.Float64).to_numpy()
@@ -292,7 +298,8 @@ def estimate(
       list of names; replicate_method: how they were made, default "sdr"; replicate_scale: the
       variance multiplier, default that of the method); fay, replicates, seed for the
       replicate methods; level: interval level (t intervals with the design df; quantiles: the
-      Woodruff interval); source: the file name used in error messages; single_psu: "error", "certainty", "centre" or "collapse" (collapse_with);
+      Woodruff interval); source: the file name used in error messages; single_psu: "error",
+      "certainty", "centre" or "collapse" (collapse_with);
       classes + calibration_matrix: calibration residuals in Taylor (see `taylor`); classes +
       reweight: `weight` then holds the adjusted base weights and reweight maps (R, C) class
       weight totals to (R, C) class factors (the weighting recipe's replay): final weights are
@@ -327,17 +334,22 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
     for col in dict.fromkeys(wanted):
         if col not in frame.columns:
             problems.append(Problem(rule="missing-column", message="column not in the data", file=source, column=col))
+    options = []
     if not any(_as_list(req[k]) for k in ("mean", "total", "proportion", "ratio", "quantile")):
-        problems.append(Problem(rule="nothing-to-estimate", message="ask for at least one mean, total, proportion, ratio or quantile"))
+        options.append(("ask for at least one mean, total, proportion, ratio or quantile", None))
     if req["variance"] not in VARIANCE_METHODS:
-        problems.append(Problem(rule="bad-option", message=f"variance must be one of {', '.join(VARIANCE_METHODS)}", value=str(req["variance"])))
+        options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))
     if req["variance"] == "supplied" and not req["replicate_cols"]:
-        problems.append(Problem(rule="bad-option", message="supplied replicate weights need replicate_cols (a pattern or a list)"))
+        options.append(("supplied replicate weights need replicate_cols (a pattern or a list)", None))
     if req["variance"] == "supplied" and design.fpc is not None:
-        problems.append(Problem(rule="bad-option", message="supplied replicate weights carry their own variance recipe; drop the FPC"))
+        options.append(("supplied replicate weights carry their own variance recipe; drop the FPC", None))
+    if (req["reweight"] is not None or req["calibration_matrix"] is not None) and req["classes"] is None:
+        options.append(("a weighting replay or calibration matrix needs the weighting-class column (classes)", None))
+    problems += [Problem(rule="bad-option", message=m, value=v) for m, v in options]
     weight = design.weight
     if weight in frame.columns and not frame.schema[weight].is_numeric():
-        problems.append(Problem(rule="bad-weight", message=f"the weight column is not numeric ({frame.schema[weight]})", file=source, column=weight))
+        message = f"the weight column is not numeric ({frame.schema[weight]})"
+        problems.append(Problem(rule="bad-weight", message=message, file=source, column=weight))
     if problems:
         raise SpecError("the estimation request is invalid", problems)
 
@@ -401,7 +413,9 @@ def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] 
     else:
         cols = list(replicate_cols or [])
     if not cols:
-        raise SpecError("no replicate weight columns", [Problem(rule="no-replicates", message="the replicate-column pattern matches no column", value=str(replicate_cols))])
+        message = "the replicate-column pattern matches no column"
+        problem = Problem(rule="no-replicates", message=message, value=str(replicate_cols))
+        raise SpecError("no replicate weight columns", [problem])
     return cols
 
 
@@ -469,4 +483,5 @@ def _table(
             "method": [method] * len(cells),
         }
     ).select(*COLUMNS, "method")
-    return EstimateTable(frame.with_columns(pl.col(c).fill_nan(None) for c in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff")))
+    numeric = ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff")
+    return EstimateTable(frame.with_columns(pl.col(c).fill_nan(None) for c in numeric))

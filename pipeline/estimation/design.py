@@ -70,9 +70,11 @@ class SampleDesign:
                 )
             )
         if self.psu_ids not in ("nested", "unique"):
-            problems.append(Problem(rule="bad-option", message="psu_ids must be 'nested' or 'unique'", value=str(self.psu_ids)))
+            message = "psu_ids must be 'nested' or 'unique'"
+            problems.append(Problem(rule="bad-option", message=message, value=str(self.psu_ids)))
         if self.single_psu == "collapse" and not self.collapse_with:
-            problems.append(Problem(rule="bad-option", message="single-PSU policy 'collapse' needs partner strata (collapse_with)"))
+            message = "single-PSU policy 'collapse' needs partner strata (collapse_with)"
+            problems.append(Problem(rule="bad-option", message=message))
         if problems:
             raise SpecError("the sample design is invalid", problems)
 
@@ -89,7 +91,8 @@ class SampleDesign:
         if not isinstance(self.fpc, str):
             return {str(k): float(v) for k, v in self.fpc.items()}
         if self.fpc not in frame.columns:
-            raise DataError("the data lack the FPC column", [Problem(rule="missing-column", message="FPC column not found", column=self.fpc)])
+            problem = Problem(rule="missing-column", message="FPC column not found", column=self.fpc)
+            raise DataError("the data lack the FPC column", [problem])
         stratum = pl.col(self.strata) if self.strata else pl.lit("all")
         per = (
             frame.select(stratum.cast(pl.String).alias("s"), pl.col(self.fpc).cast(pl.Float64).alias("v"))
@@ -144,7 +147,9 @@ class SampleDesign:
         )
 
 
-def sampling_fractions(gt: GroupTotals, fpc_values: Mapping[str, float] | None, *, fpc_name: object = None) -> np.ndarray | None:
+def sampling_fractions(
+    gt: GroupTotals, fpc_values: Mapping[str, float] | None, *, fpc_name: object = None
+) -> np.ndarray | None:
     """(H,) first-stage sampling fractions f_h = n_h / N_h of the strata of `gt` (None without an FPC)."""
     n_h = np.bincount(gt.psu_stratum, minlength=gt.n_strata)
     population = _population_counts(gt.stratum_labels, n_h, fpc_values, fpc_name=fpc_name)
@@ -161,10 +166,20 @@ def _population_counts(
     missing = [s for s in labels if s not in values]
     problems = []
     if missing:
-        problems.append(Problem(rule="fpc-missing", message="no FPC for these strata", column=column, count=len(missing), examples=tuple(missing[:20])))
+        problems.append(
+            Problem(
+                rule="fpc-missing",
+                message="no FPC for these strata",
+                column=column,
+                count=len(missing),
+                examples=tuple(missing[:20]),
+            )
+        )
     pop = np.array([values.get(s, np.nan) for s in labels], dtype=np.float64)
     as_count = np.where((pop > 0) & (pop <= 1), n_h / np.where(pop > 0, pop, 1.0), pop)
-    bad = [s for s, v, n in zip(labels, as_count, n_h, strict=True) if s not in missing and not (v >= n and np.isfinite(v))]
+    bad = [
+        s for s, v, n in zip(labels, as_count, n_h, strict=True) if s not in missing and not (v >= n and np.isfinite(v))
+    ]
     if bad:
         problems.append(
             Problem(
@@ -189,7 +204,14 @@ def _collapse(
     if unknown:
         raise DataError(
             "collapse partners name strata not in the data",
-            [Problem(rule="collapse-unknown", message="unknown strata in collapse pairs", count=len(unknown), examples=tuple(unknown[:20]))],
+            [
+                Problem(
+                    rule="collapse-unknown",
+                    message="unknown strata in collapse pairs",
+                    count=len(unknown),
+                    examples=tuple(unknown[:20]),
+                )
+            ],
         )
     target = np.arange(len(labels))
     for a, b in partners.items():
@@ -220,7 +242,7 @@ class PsuLayout:
 
     @property
     def df(self) -> int:
-        """Design degrees of freedom: number of PSUs minus number of strata (Lohr 3rd ed. section 9.6? from memory)."""
+        """Design degrees of freedom: PSUs minus strata (Korn & Graubard 1999 section 5.2, from memory)."""
         return len(self.psu_stratum) - self.n_strata
 
     @property
@@ -247,7 +269,10 @@ class PsuLayout:
         return dev, factor[h]
 
     def variance(self, z: np.ndarray) -> np.ndarray:
-        """(P, m) PSU totals of linearized variables -> (m,) variances, sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2."""
+        """(P, m) PSU totals of linearized variables -> (m,) variances.
+
+        v = sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2 (module docstring, with the single-PSU policy).
+        """
         dev, factor = self._deviations(np.asarray(z, dtype=np.float64))
         return (factor[:, None] * dev**2).sum(axis=0)
 

@@ -87,7 +87,7 @@ def interval(
     kind: IntervalKind,
     proportion: bool | np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Dispatch to the interval functions; "logit" and "korn-graubard" only where `proportion` is true (NaN elsewhere)."""
+    """Dispatch to the interval functions ("logit" and "korn-graubard" for proportions only)."""
     if kind == "t":
         return intervals.t_interval(estimate, se, df, level=level)
     if kind not in ("logit", "korn-graubard"):
@@ -136,7 +136,8 @@ class EstimateTable:
         else:
             low, high = np.full(len(f), np.nan), np.full(len(f), np.nan)
             if prop.any():
-                lo, hi = interval(est[prop], se[prop], f["n"].to_numpy()[prop], df[prop], level=level, kind=kind, proportion=True)
+                n = f["n"].to_numpy()[prop]
+                lo, hi = interval(est[prop], se[prop], n, df[prop], level=level, kind=kind, proportion=True)
                 low[prop], high[prop] = lo, hi
         return EstimateTable(f.with_columns(ci_low=pl.Series(low), ci_high=pl.Series(high)))
 

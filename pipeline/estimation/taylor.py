@@ -50,7 +50,9 @@ class Calibration:
     weight_column: int
 
 
-def linearized_group_totals(gt: GroupTotals, estimand: Estimand, *, calibration: Calibration | None = None) -> np.ndarray:
+def linearized_group_totals(
+    gt: GroupTotals, estimand: Estimand, *, calibration: Calibration | None = None
+) -> np.ndarray:
     """(G, m) weighted totals of the linearized variables (or of their calibration residuals) by group."""
     t = gt.totals.sum(axis=0)
     z = gt.totals @ np.nan_to_num(estimand.linearize(t))

@@ -132,7 +132,8 @@ def group_totals(
     )
     if psu_ids == "unique" and psu is not None:
         _check_unique_psus(grouped, psu=psu)
-    return _from_grouped(grouped, names, qcols, classes_are_indices=classes is not None and rows.schema[_C].is_integer())
+    as_indices = classes is not None and rows.schema[_C].is_integer()
+    return _from_grouped(grouped, names, qcols, classes_are_indices=as_indices)
 
 
 def _row_problems(
@@ -211,15 +212,17 @@ def _from_grouped(
     if classes_are_indices:
         cls = grouped[_C].to_numpy().astype(np.int64)
         if len(cls) and cls.min() < 0:
-            raise DataError("negative weighting-class index", [Problem(rule="bad-class", message="class indices must be 0..C-1")])
+            problem = Problem(rule="bad-class", message="weighting-class indices must be 0..C-1", value=str(cls.min()))
+            raise DataError("negative weighting-class index", [problem])
     else:
         cls = (grouped[_C].rank("dense") - 1).to_numpy().astype(np.int64)
+    shape = (grouped.height, len(qcols))
     return GroupTotals(
         stratum=stratum.astype(np.int64),
         psu=psu_idx.astype(np.int64),
         cls=cls,
-        totals=grouped.select(qcols).to_numpy().astype(np.float64).reshape(grouped.height, len(qcols)),
-        counts=grouped.select([q + "_n" for q in qcols]).to_numpy().astype(np.int64).reshape(grouped.height, len(qcols)),
+        totals=grouped.select(qcols).to_numpy().astype(np.float64).reshape(shape),
+        counts=grouped.select([q + "_n" for q in qcols]).to_numpy().astype(np.int64).reshape(shape),
         columns=names,
         psu_stratum=stratum[p_new].astype(np.int64),
         stratum_labels=tuple(str(v) for v in grouped[_S].filter(pl.Series(s_new)).to_list()),
