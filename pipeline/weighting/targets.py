@@ -8,12 +8,14 @@ the codes with " x ". Targets of one margin are proportions (they sum to 1) or c
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.errors import Problem
 
 CROSS = " x "
+_CROSS_RE = re.compile(r"\s+x\s+")
 PROPORTION_TOLERANCE = 1e-6  # proportions must sum to 1 within this (rounding of published shares)
 
 
@@ -24,12 +26,12 @@ def margin_name(variables: tuple[str, ...]) -> str:
 
 def split_margin(name: str) -> tuple[str, ...]:
     """The variables of a margin name ("age_band x sex" -> ("age_band", "sex"))."""
-    return tuple(part.strip() for part in name.split(CROSS.strip()) if part.strip())
+    return tuple(part.strip() for part in _CROSS_RE.split(name.strip()) if part.strip())
 
 
 def split_category(label: str) -> tuple[str, ...]:
     """The codes of a category label ("3 x 2" -> ("3", "2"))."""
-    return tuple(part.strip() for part in str(label).split(CROSS.strip()))
+    return tuple(part.strip() for part in _CROSS_RE.split(str(label).strip()))
 
 
 @dataclass(frozen=True)

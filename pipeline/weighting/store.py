@@ -1,0 +1,157 @@
+"""Weigh a staged wave of a study and store its weights and diagnostics in the study database.
+
+Tables (sql/weighting_schema_*.sql): `weights(wave, respondent_id, weight)` and the diagnostics
+`weighting_steps`, `weighting_margins`, `weighting_largest`, `weighting_response`,
+`weighting_notes`. A wave's rows in all of them are replaced in ONE transaction.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+import polars as pl
+
+from pipeline.errors import WavebookError
+from pipeline.sqlfiles import sql
+from pipeline.weighting.base import design_base_weights
+from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
+from pipeline.weighting.recipe import FittedRecipe, fit_recipe, largest
+from pipeline.weighting.steps import code_order, parse_steps
+
+if TYPE_CHECKING:
+    import duckdb
+
+    from pipeline.spec import Study
+
+TABLES = ("weights", "weighting_steps", "weighting_margins", "weighting_largest", "weighting_response", "weighting_notes")
+ID = "respondent_id"
+
+
+def build_report(recipe: FittedRecipe, *, wave: str, n_input: int) -> WeightingReport:
+    """The WeightingReport of a fitted recipe (summaries, per-step reports, 10 largest weights)."""
+    return WeightingReport(
+        wave=wave, n_input=n_input, n_weighted=int(recipe.weights.size), dropped=dict(recipe.dropped),
+        base=recipe.base_summary, final=WeightSummary.of(recipe.weights), steps=tuple(recipe.reports),
+        largest=largest(recipe), warnings=tuple(recipe.warnings),
+    )
+
+
+def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> tuple[FittedRecipe, WeightingReport]:
+    """Fit the study's weighting on one staged wave (nothing written); the recipe and its report."""
+    from pipeline.database import load_responses
+
+    steps = parse_steps(study.weighting, study)
+    data = load_responses(con, study, [wave_id])
+    base, _ = design_base_weights(data, study, id_column=ID)
+    recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=code_order(study, set(study.variables)))
+    return recipe, build_report(recipe, wave=wave_id, n_input=data.height)
+
+
+def _summary_row(wave: str, position: int, stage: str, s: WeightSummary, step: StepReport | None = None) -> dict:
+    return {
+        "wave": wave, "position": position, "stage": stage, "n": s.n, "total": s.total, "minimum": s.minimum,
+        "maximum": s.maximum, "mean": s.mean, "cv": s.cv, "deff": s.deff, "n_eff": s.n_eff,
+        "efficiency_pct": s.efficiency_pct, "iterations": step.iterations if step else None,
+        "converged": step.converged if step else None, "trimmed": step.trimmed if step else None,
+    }
+
+
+def _frames(recipe: FittedRecipe, report: WeightingReport) -> dict[str, pl.DataFrame]:
+    wave = report.wave
+    steps = [_summary_row(wave, 0, "base", report.base)]
+    steps += [_summary_row(wave, i + 1, s.kind, s.summary, s) for i, s in enumerate(report.steps)]
+    steps.append(_summary_row(wave, len(report.steps) + 1, "final", report.final))
+    margins = [
+        {"wave": wave, "position": i + 1, **m.__dict__} for i, s in enumerate(report.steps) for m in s.margins
+    ]
+    response = [{"wave": wave, **r.__dict__} for s in report.steps for r in s.response]
+    notes = [{"wave": wave, "position": i + 1, "severity": "note", "message": n}
+             for i, s in enumerate(report.steps) for n in s.collapsed]
+    notes += [{"wave": wave, "position": None, "severity": p.severity, "message": p.render()} for p in report.warnings]
+    notes += [{"wave": wave, "position": None, "severity": "note", "message": f"{n} {reason} not weighted"}
+              for reason, n in report.dropped.items() if n]
+    largest_rows = [
+        {"wave": wave, "rank": w.rank, "weight": w.weight, "ratio_to_mean": w.ratio_to_mean,
+         "profile": ", ".join(f"{k}={v}" for k, v in w.profile.items())}
+        for w in report.largest
+    ]
+    weights = pl.DataFrame({"wave": pl.Series([wave] * recipe.weights.size, dtype=pl.String),
+                            "respondent_id": recipe.ids.cast(pl.String), "weight": recipe.weights})
+    return {
+        "weights": weights,
+        "weighting_steps": pl.DataFrame(steps, infer_schema_length=None),
+        "weighting_margins": pl.DataFrame(margins, infer_schema_length=None),
+        "weighting_largest": pl.DataFrame(largest_rows, infer_schema_length=None),
+        "weighting_response": pl.DataFrame(response, infer_schema_length=None),
+        "weighting_notes": pl.DataFrame(notes, schema={"wave": pl.String, "position": pl.Int64, "severity": pl.String,
+                                                       "message": pl.String}),
+    }
+
+
+def create_weighting_tables(con: duckdb.DuckDBPyConnection) -> None:
+    """Create `weights` and the `weighting_*` tables when absent."""
+    for name in ("weights", "steps", "margins", "largest", "response", "notes"):
+        con.execute(sql(f"weighting_schema_{name}.sql"))
+
+
+def store(con: duckdb.DuckDBPyConnection, recipe: FittedRecipe, report: WeightingReport) -> None:
+    """Replace the wave's rows of every weighting table in one transaction (rolled back on any error)."""
+    frames = _frames(recipe, report)
+    create_weighting_tables(con)
+    con.begin()
+    try:
+        for table in TABLES:
+            con.execute(sql("weighting_delete_wave.sql", table=table), {"wave": report.wave})
+            frame = frames[table]
+            if frame.height:
+                view = f"__wavebook_{table}"
+                con.register(view, frame)
+                try:
+                    con.execute(sql("weighting_insert_frame.sql", table=table, frame=view))
+                finally:
+                    con.unregister(view)
+        con.commit()
+    except BaseException:
+        con.rollback()
+        raise
+
+
+def weigh_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> WeightingReport:
+    """Fit the study's `[[weighting]]` steps on a staged wave and store its weights and diagnostics.
+
+    Base weights come from the design (pipeline.weighting.base); with no steps the final weights are
+    the base weights (still stored, with diagnostics). The wave's rows are replaced atomically.
+    """
+    recipe, report = fit_wave(study, wave_id, con=con)
+    store(con, recipe, report)
+    return report
+
+
+def export_weights(con: duckdb.DuckDBPyConnection, wave_ids: list[str], path: Path) -> int:
+    """Write `respondent_id, wave, weight` of the waves to CSV or Parquet (by extension), atomically; returns rows."""
+    frame = con.sql(sql("weighting_export.sql"), params={"waves": wave_ids}).pl()
+    write_frame(frame, path)
+    return frame.height
+
+
+def write_frame(frame: pl.DataFrame, path: Path) -> None:
+    """Write a frame to `path` (.csv or .parquet) through a temporary file renamed into place."""
+    suffix = path.suffix.lower()
+    if suffix not in (".csv", ".parquet"):
+        raise WavebookError(f"cannot write {path}: the file name must end in .csv or .parquet")
+    tmp = path.with_name(f".{path.name}.tmp")
+    try:
+        if suffix == ".csv":
+            frame.write_csv(tmp)
+        else:
+            frame.write_parquet(tmp)
+        tmp.replace(path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def weights_array(frame: pl.DataFrame, column: str) -> np.ndarray:
+    """A weight column as float64 (missing as NaN, so base-weight checks report it)."""
+    return frame[column].cast(pl.Float64, strict=False).fill_null(float("nan")).to_numpy().astype(float)
