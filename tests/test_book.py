@@ -8,6 +8,7 @@ HTML structure with the standard library's html.parser.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import os
 from html.parser import HTMLParser
@@ -239,9 +240,10 @@ def test_undeclared_waves_are_left_out(con: duckdb.DuckDBPyConnection, tmp_path:
 @given(st.lists(st.one_of(st.none(), st.sampled_from([1, 2, 3])), min_size=1, max_size=60))
 def test_categories_and_no_answer_add_up_to_the_wave(answers: list[int | None]) -> None:
     """Identity: category counts sum to the base, base + no answer = respondents, percents sum to 100."""
-    con = duckdb.connect()
-    frame = pl.DataFrame({"respondent_id": [f"r{i}" for i in range(len(answers))], "wave": "W1", "region": answers}, schema_overrides={"region": pl.Int64})
-    con.execute("create table responses as select * from frame")
+    frame = pl.DataFrame(
+        {"respondent_id": [f"r{i}" for i in range(len(answers))], "wave": "W1", "region": answers},
+        schema_overrides={"region": pl.Int64},
+    )
     study = Study(
         path=Path("study.toml"),
         title="t",
@@ -250,7 +252,9 @@ def test_categories_and_no_answer_add_up_to_the_wave(answers: list[int | None]) 
         design=Design(),
         variables={"region": Variable("region", "single", "Region", values={1: "a", 2: "b", 3: "c"})},
     )
-    cells = unweighted_toplines(con, study)
+    with duckdb.connect() as con:
+        con.execute("create table responses as select * from frame")
+        cells = unweighted_toplines(con, study)
     categories = cells.filter(pl.col("row_kind") == "category")
     base = cells.filter(pl.col("row_kind") == "base")["count"].item()
     missing = cells.filter(pl.col("row_kind") == "missing")["count"].item()
@@ -405,6 +409,15 @@ def test_methodology_says_unweighted_and_lists_waves(book_path: Path) -> None:
     assert "UNWEIGHTED" in method.text
     assert "Fieldwork 2 Mar 2026 to 21 Mar 2026" in method.text
     assert f"{W1_SIZE} respondents" in method.text and f"{W2_SIZE} respondents" in method.text
+
+
+def test_a_declared_wave_not_yet_staged_shows_dashes(tmp_path: Path, cells: pl.DataFrame) -> None:
+    study = _study(tmp_path)
+    later = dataclasses.replace(study, waves=(*study.waves, Wave("W3", "Wave 3 (autumn)", tmp_path / "w3.csv")))
+    tree = _parse(render_book(later, cells, out_path=tmp_path / "three.html"))
+    assert _table_cell(_section(tree, "Region"), "Northmoor", 2).text == "–"
+    (method,) = [s for s in tree.root.find_all("section") if s.attrs.get("id") == "methodology"]
+    assert "Not staged: no figures." in method.text
 
 
 def test_footer_gives_time_and_version(tmp_path: Path, cells: pl.DataFrame) -> None:
