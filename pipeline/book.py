@@ -38,7 +38,9 @@ TYPE_LABELS = {
     "scale": "Rating scale",
     "numeric": "Number",
 }
-REQUIRED_COLUMNS = ("wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note")
+REQUIRED_COLUMNS = (
+    "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
+)
 
 
 @dataclass(frozen=True)
@@ -279,11 +281,11 @@ def _design_lines(design: Design) -> tuple[str, ...]:
     else:
         lines = ["Probability sample."]
     lines.append(f"Strata: column '{design.strata}'." if design.strata else "No stratification declared.")
-    lines.append(
-        f"Primary sampling units: column '{design.psu}' (ids {'restart within each stratum' if design.psu_ids == 'nested' else 'unique across strata'})."
-        if design.psu
-        else "Each respondent is their own primary sampling unit."
-    )
+    if design.psu:
+        ids = "restart within each stratum" if design.psu_ids == "nested" else "unique across strata"
+        lines.append(f"Primary sampling units: column '{design.psu}' (ids {ids}).")
+    else:
+        lines.append("Each respondent is their own primary sampling unit.")
     if design.base_weight:
         lines.append(f"Base weights: column '{design.base_weight}'.")
     elif design.selection_probability:

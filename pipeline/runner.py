@@ -52,7 +52,9 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     return [w.id for w in study.waves if recorded.get(w.id) != file_sha256(w.file)]
 
 
-def run_study(spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False) -> Path:
+def run_study(
+    spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False
+) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every

@@ -60,7 +60,9 @@ def _study(tmp_path: Path, *, kind: str = "probability") -> Study:
                 exclude_from_mean=(99,),
                 nets={"Top two box (9-10)": (9, 10)},
             ),
-            "aware": Variable("aware", "multi", "Aided awareness", items={"aware_a": "Amberline", "aware_b": "Brightwell"}),
+            "aware": Variable(
+                "aware", "multi", "Aided awareness", items={"aware_a": "Amberline", "aware_b": "Brightwell"}
+            ),
             "spend": Variable("spend", "numeric", "Monthly spend (credits)", minimum=0, maximum=5000),
         },
         notes=("Invented data for tests.",),
@@ -129,10 +131,27 @@ def cells(con: duckdb.DuckDBPyConnection, tmp_path: Path) -> pl.DataFrame:
     return unweighted_toplines(con, _study(tmp_path))
 
 
+def _rows(cells: pl.DataFrame, wave: str, variable: str, kind: str) -> pl.DataFrame:
+    return cells.filter((pl.col("wave") == wave) & (pl.col("variable") == variable) & (pl.col("row_kind") == kind))
+
+
+def _statistics(cells: pl.DataFrame, wave: str, variable: str) -> dict[str, float]:
+    return dict(_rows(cells, wave, variable, "statistic").select("code", "value").iter_rows())
+
+
+def _summary(values: pl.Series) -> dict[str, float]:
+    """Outside reference: polars Series.count / mean / median / min / max on the kept answers."""
+    return {
+        "n": values.count(),
+        "mean": values.mean(),
+        "median": values.median(),
+        "min": values.min(),
+        "max": values.max(),
+    }
+
+
 def _cell(cells: pl.DataFrame, wave: str, variable: str, kind: str, label: str) -> dict:
-    rows = cells.filter(
-        (pl.col("wave") == wave) & (pl.col("variable") == variable) & (pl.col("row_kind") == kind) & (pl.col("row_label") == label)
-    )
+    rows = _rows(cells, wave, variable, kind).filter(pl.col("row_label") == label)
     assert rows.height == 1, (wave, variable, kind, label)
     return rows.row(0, named=True)
 
@@ -170,13 +189,7 @@ def test_text_codes_are_counted(cells: pl.DataFrame, data: pl.DataFrame) -> None
 def test_scale_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, data: pl.DataFrame, wave: str) -> None:
     answered = data.filter(pl.col("wave") == wave)["satisfaction"].drop_nulls()
     scored = answered.filter(answered != 99).cast(pl.Float64)
-    # outside reference: polars Series.mean / median / min / max on the kept answers
-    expected = {"n": scored.len(), "mean": scored.mean(), "median": scored.median(), "min": scored.min(), "max": scored.max()}
-    got = {
-        r["code"]: r["value"]
-        for r in cells.filter((pl.col("wave") == wave) & (pl.col("variable") == "satisfaction") & (pl.col("row_kind") == "statistic")).iter_rows(named=True)
-    }
-    assert got == pytest.approx(expected, rel=1e-12)
+    assert _statistics(cells, wave, "satisfaction") == pytest.approx(_summary(scored), rel=1e-12)
     assert _cell(cells, wave, "satisfaction", "base", "Base: answered")["count"] == answered.len()
     assert _cell(cells, wave, "satisfaction", "category", "Don't know")["count"] == (answered == 99).sum()
     top_two = _cell(cells, wave, "satisfaction", "net", "Top two box (9-10)")
@@ -186,7 +199,7 @@ def test_scale_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, dat
 
 def test_scale_lists_every_code_of_its_range(cells: pl.DataFrame) -> None:
     labels = (
-        cells.filter((pl.col("wave") == "W1") & (pl.col("variable") == "satisfaction") & (pl.col("row_kind") == "category"))
+        _rows(cells, "W1", "satisfaction", "category")
         .sort("row_order")["row_label"]
         .to_list()
     )
@@ -211,13 +224,7 @@ def test_multi_set_percentages_of_those_asked_match_polars(cells: pl.DataFrame, 
 @pytest.mark.parametrize("wave", ["W1", "W2"])
 def test_numeric_statistics_match_polars(cells: pl.DataFrame, data: pl.DataFrame, wave: str) -> None:
     values = data.filter(pl.col("wave") == wave)["spend"]
-    # outside reference: polars Series statistics
-    expected = {"n": values.count(), "mean": values.mean(), "median": values.median(), "min": values.min(), "max": values.max()}
-    got = {
-        r["code"]: r["value"]
-        for r in cells.filter((pl.col("wave") == wave) & (pl.col("variable") == "spend") & (pl.col("row_kind") == "statistic")).iter_rows(named=True)
-    }
-    assert got == pytest.approx(expected, rel=1e-12)
+    assert _statistics(cells, wave, "spend") == pytest.approx(_summary(values), rel=1e-12)
     assert _cell(cells, wave, "spend", "missing", "No answer")["count"] == values.null_count()
 
 
@@ -226,7 +233,7 @@ def test_codes_outside_the_codebook_are_shown_not_dropped(con: duckdb.DuckDBPyCo
     cells = unweighted_toplines(con, _study(tmp_path))
     stray = _cell(cells, "W1", "region", "category", "Code 7 (not in the codebook)")
     assert stray["count"] == 1
-    categories = cells.filter((pl.col("wave") == "W1") & (pl.col("variable") == "region") & (pl.col("row_kind") == "category"))
+    categories = _rows(cells, "W1", "region", "category")
     assert categories["count"].sum() == _cell(cells, "W1", "region", "base", "Base: answered")["count"]
 
 

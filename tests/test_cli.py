@@ -134,7 +134,9 @@ def test_second_run_restages_nothing_until_a_file_changes(demo_run: tuple[Path, 
     assert waves_to_stage(study) == []
 
 
-def test_demo_again_into_a_demo_folder_is_allowed(demo_run: tuple[Path, Path], capsys: pytest.CaptureFixture[str]) -> None:
+def test_demo_again_into_a_demo_folder_is_allowed(
+    demo_run: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
     folder, book = demo_run
     assert main(["demo", str(folder), "--quiet"]) == 0
     assert capsys.readouterr().out.strip() == str(book)

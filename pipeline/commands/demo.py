@@ -52,13 +52,20 @@ def copy_demo(folder: str | Path, *, force: bool = False) -> Path:
     if target.is_dir() and any(target.iterdir()) and not (target / MARKER).is_file() and not force:
         raise WavebookError(
             f"{target} is not empty and does not hold an earlier wavebook demo",
-            [Problem("demo-folder-not-empty", "choose an empty or new folder, or add --force to copy into it anyway", file=str(target))],
+            [
+                Problem(
+                    "demo-folder-not-empty",
+                    "choose an empty or new folder, or add --force to copy into it anyway",
+                    file=str(target),
+                )
+            ],
         )
     source = resource_dir("sample_data")
     if not (source / DEMO_SPEC).is_file():
         raise WavebookError(f"the demo study is incomplete: {source / DEMO_SPEC} is missing; reinstall wavebook")
     shutil.copytree(source, target, ignore=shutil.ignore_patterns(*_NOT_COPIED), dirs_exist_ok=True)
-    (target / MARKER).write_text("Copied by `wavebook demo`; `wavebook demo` may copy over this folder.\n", encoding="utf-8")
+    note = "Copied by `wavebook demo`; `wavebook demo` may copy over this folder.\n"
+    (target / MARKER).write_text(note, encoding="utf-8")
     return target
 
 
