@@ -138,6 +138,7 @@ def build_margins(
     }
     grouping = _Grouping(codes)
     wanted: dict[tuple[str, ...], dict[tuple[str, ...], float]] = {}
+    unknown: set[tuple[tuple[str, ...], tuple[str, ...]]] = set()
     for m in margin_vars:
         table = targets.get(m)
         if table is None:
@@ -146,14 +147,15 @@ def build_margins(
         for key in table:
             for v, c in zip(m, key):
                 if c not in codes[v]:
+                    unknown.add((m, key))
                     problems.append(
                         Problem("target-unknown-category",
                                 f"{where}: target category '{' x '.join(key)}' of margin '{margin_name(m)}': code '{c}' "
                                 f"of '{v}' is neither in the codebook nor in the data",
                                 column=v, value=c)
                     )
-        wanted[m] = table
-    if problems:
+        wanted[m] = {k: t for k, t in table.items() if (m, k) not in unknown}
+    if any(p.rule == "target-missing" for p in problems):
         return [], notes, problems
     used: dict[str, int] = {}
     threshold = collapse.min_count if collapse is not None else 0
@@ -168,7 +170,7 @@ def build_margins(
                     break
             if small:
                 break
-        if small is None or collapse is None:
+        if small is None or collapse is None or problems:
             break
         merge = _next_merge(small[0], small[1], collapse, grouping, used, classes)
         if merge is None:

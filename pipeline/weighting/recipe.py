@@ -51,6 +51,23 @@ def reference_coded(margins: Sequence[Margin]) -> tuple[np.ndarray, list[tuple[M
     return np.hstack(blocks) if blocks else np.zeros((0, 0)), kept
 
 
+def _population_now(op: _RakeOp | _CalibrateOp, current: np.ndarray) -> np.ndarray:
+    """(R,) population total that proportion targets are scaled to.
+
+    Declared (`total`, or the step's count margins): that number. Otherwise it is estimated by the
+    sum of the weights entering the step: at the first fit that sum P0 is recorded and held while
+    later steps (trimming) refit; once the recipe is frozen with the full-sample entering sum S,
+    a replicate entering with sum S_r is scaled to P0 * S_r / S (so the full sample gets P0 exactly)."""
+    r = current.shape[1]
+    if op.population is not None:
+        return np.full(r, op.population)
+    if op.estimated is None:
+        op.estimated = float(current.sum())
+    if op.reference is None:
+        return np.full(r, op.estimated)
+    return current.sum(axis=0) * (op.estimated / op.reference)
+
+
 @dataclass
 class _RakeOp:
     """A raking (or post-stratification: one margin) step on class totals."""
@@ -64,9 +81,11 @@ class _RakeOp:
     allow_nonconvergence: bool
     start: np.ndarray | None = None
     last: dict = field(default_factory=dict)
+    estimated: float | None = None
+    reference: float | None = None
 
     def apply(self, current: np.ndarray) -> np.ndarray:
-        pop = np.full(current.shape[1], self.population) if self.population is not None else current.sum(axis=0)
+        pop = _population_now(self, current)
         fit = rake(current, self.margins, pop, tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
@@ -103,6 +122,8 @@ class _CalibrateOp:
     max_iterations: int
     start: np.ndarray | None = None
     last: dict = field(default_factory=dict)
+    estimated: float | None = None
+    reference: float | None = None
 
     def aux(self) -> np.ndarray:
         x, _ = reference_coded(self.margins)
@@ -115,7 +136,7 @@ class _CalibrateOp:
         return np.vstack(rows)
 
     def apply(self, current: np.ndarray) -> np.ndarray:
-        pop = np.full(current.shape[1], self.population) if self.population is not None else current.sum(axis=0)
+        pop = _population_now(self, current)
         try:
             fit = calibrate(current, self.aux(), self.targets(pop), distance=self.distance, bounds=self.bounds,
                             tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
@@ -281,7 +302,7 @@ def _bounded_rake(op: _RakeOp, classes: ClassIndex, w: np.ndarray, lower: float,
     """Per-respondent raking with bounds: each margin's category factor f_k solves
     sum_{i in k} clip(w_i f_k, L, U) = T_k (capped weights stay at their bound, the rest share
     what is left), cycling over the margins until margins and bounds hold together."""
-    population = op.population if op.population is not None else float(w.sum())
+    population = op.population if op.population is not None else float(op.estimated if op.estimated is not None else w.sum())
     cats = [m.of_class[classes.index] for m in op.margins]
     targets = [absolute_targets(m, np.array([population]))[:, 0] for m in op.margins]
     w = np.clip(w, lower, upper)
@@ -325,7 +346,7 @@ def _trim(step: TrimStep, ops: list, classes: ClassIndex, base: np.ndarray, weig
     t = np.ones_like(base)
     if ops and isinstance(ops[-1], _RakeOp):
         op = ops[-1]
-        pop = op.population if op.population is not None else float(weights_in.sum())
+        pop = op.population if op.population is not None else float(op.estimated if op.estimated is not None else weights_in.sum())
         for m in op.margins:
             counts = m.sums(classes.counts.astype(float))
             need = absolute_targets(m, np.array([pop]))[:, 0] / counts
@@ -413,6 +434,10 @@ def fit_recipe(
         dropped=dropped, warnings=warnings,
     )
     if ops:
+        current = recipe.class_totals()[:, None]
+        for op in ops:  # freeze: record each step's full-sample entering total (see _population_now)
+            op.reference = float(current.sum())
+            current = current * op.apply(current)
         recipe.weights = base * recipe.replay(recipe.class_totals()[None, :])[0, classes.index]
     return recipe
 
