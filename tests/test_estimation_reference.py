@@ -154,3 +154,28 @@ def test_cluster_mean_se_equals_statsmodels_cluster_robust_se() -> None:
     # statsmodels' default small-sample correction is G/(G-1) * (N-1)/(N-K) (factor from memory;
     # its docs only say "small sample correction"): so ours = corrected * (N-K)/(N-1)
     assert ours["se"] ** 2 == pytest.approx(corrected.cov_params()[0, 0] * (n - k) / (n - 1), rel=1e-10)
+
+
+def test_design_effects_follow_the_srs_variance_definition() -> None:
+    sizes = {"NC": 1054, "NE": 220, "S": 1382, "W": 422}
+    frame = pl.read_csv(LOHR / "agstrat.csv").with_columns(
+        N=pl.col("region").replace_strict(sizes).cast(pl.Float64), big=(pl.col("acres92") > 500_000).cast(pl.Int64)
+    )
+    out = estimate(frame, weight="strwt", strata="region", fpc="N", mean="acres92", total="acres92", proportion="big")
+    w, y = frame["strwt"].to_numpy(), frame["acres92"].to_numpy()
+    n, big_n = len(y), w.sum()
+    ybar = (w * y).sum() / big_n
+    # Kish 1965 section 8.2 / Lohr 3rd ed. section 7.5 (from memory): v_srs of a mean = (1 - n/N) s_w^2 / n,
+    # s_w^2 = n/(n-1) sum w (y - ybar)^2 / sum w; of a total N^2 times that; deff = v_design / v_srs
+    s2 = n / (n - 1) * (w * (y - ybar) ** 2).sum() / big_n
+    v_srs = (1 - n / big_n) * s2 / n
+    mean, total = one(out, statistic="mean"), one(out, statistic="total")
+    assert mean["deff"] == pytest.approx(mean["se"] ** 2 / v_srs, rel=1e-10)
+    assert total["deff"] == pytest.approx(total["se"] ** 2 / (big_n**2 * v_srs), rel=1e-10)
+    assert mean["n_eff"] == pytest.approx(n / mean["deff"], rel=1e-12)
+    # a proportion: v_srs = (1 - n/N) p(1-p) n/(n-1) / n
+    prop = one(out, statistic="proportion", category="1")
+    p = prop["estimate"]
+    assert prop["deff"] == pytest.approx(prop["se"] ** 2 / ((1 - n / big_n) * p * (1 - p) / (n - 1)), rel=1e-10)
+    # proportional allocation with a stratifier related to y: stratification helps (deff < 1; Lohr ch. 3)
+    assert mean["deff"] < 1
