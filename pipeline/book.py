@@ -5,6 +5,11 @@ columns) into a `BookContext` (the documented object every template receives), r
 `templates/book.html.j2` with autoescaping forced on and strict undefined variables, and writes
 the page atomically (a temporary file in the same folder, then `os.replace`).
 
+When the cells carry weighted estimates (the columns `estimate`, `ci_low`, `ci_high` added to
+the same rows by the estimation stage), percentages, means and medians show the weighted
+estimate with its confidence interval, and the counts beneath stay unweighted; otherwise the
+book shows unweighted figures and says so.
+
 The book holds aggregates only: counts, percentages and statistics per wave. It never receives
 respondent-level rows, so it cannot show them.
 """
@@ -26,7 +31,7 @@ import polars as pl
 from pipeline import __version__
 from pipeline.errors import WavebookError
 from pipeline.resources import resource_dir
-from pipeline.spec import Design, Study, Wave
+from pipeline.spec import Design, Study, Variable, Wave
 
 # Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
 LOW_BASE = 50
@@ -41,6 +46,9 @@ TYPE_LABELS = {
 REQUIRED_COLUMNS = (
     "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
 )
+ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
+PERCENT_KINDS = ("category", "net", "item", "missing")
+ESTIMATED_STATISTICS = ("mean", "median")
 
 
 @dataclass(frozen=True)
@@ -55,12 +63,14 @@ class WaveColumn:
 
 @dataclass(frozen=True)
 class Cell:
-    """One table cell: the main figure as text, an optional secondary figure (the count under a
-    percentage) and the base flag: None, "low" (base < LOW_BASE) or "very-low" (< VERY_LOW_BASE)."""
+    """One table cell: the main figure as text, its confidence interval as text (weighted books),
+    an optional secondary figure (the unweighted count under a percentage) and the base flag:
+    None, "low" (base < LOW_BASE) or "very-low" (< VERY_LOW_BASE)."""
 
     text: str
     detail: str | None = None
     base_flag: str | None = None
+    interval: str | None = None
 
 
 @dataclass(frozen=True)
@@ -105,7 +115,8 @@ class Caution:
 class BookContext:
     """Everything `templates/book.html.j2` receives (as `book`).
 
-    title, notes: from the spec. waves: every declared wave in spec order. design: one line per
+    title, notes: from the spec. weighted: whether percentages, means and medians are weighted
+    estimates with intervals. waves: every declared wave in spec order. design: one line per
     design fact. methodology: paragraphs on how the figures were produced. cautions: what the
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
@@ -114,6 +125,7 @@ class BookContext:
 
     title: str
     notes: tuple[str, ...]
+    weighted: bool
     waves: tuple[WaveColumn, ...]
     design: tuple[str, ...]
     methodology: tuple[str, ...]
@@ -145,22 +157,24 @@ def build_context(study: Study, cells: pl.DataFrame, *, now: dt.datetime | None 
     missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]
     if missing:
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
+    weighted = all(c in cells.columns for c in ESTIMATE_COLUMNS) and cells["estimate"].is_not_null().any()
     respondents = dict(
         cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
     sections = tuple(
-        _section(index, variable.name, variable.label, variable.type, waves, cells.filter(pl.col("variable") == name))
+        _section(index, variable, waves, cells.filter(pl.col("variable") == name), weighted=weighted)
         for index, (name, variable) in enumerate(study.variables.items())
     )
     generated = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
     return BookContext(
         title=study.title,
         notes=tuple(study.notes),
+        weighted=weighted,
         waves=waves,
         design=_design_lines(study.design),
-        methodology=_methodology(study),
-        cautions=_cautions(study, sections),
+        methodology=_methodology(weighted=weighted),
+        cautions=_cautions(study, sections, weighted=weighted),
         sections=sections,
         low_base=LOW_BASE,
         very_low_base=VERY_LOW_BASE,
@@ -216,35 +230,44 @@ def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:
 
 
 def _section(
-    index: int, name: str, label: str, type_: str, waves: tuple[WaveColumn, ...], cells: pl.DataFrame
+    index: int, variable: Variable, waves: tuple[WaveColumn, ...], cells: pl.DataFrame, *, weighted: bool
 ) -> Section:
     """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no data)."""
     by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
     layout = cells.unique("row_order", keep="first").sort("row_order").select("row_order", "row_kind", "row_label")
     rows = []
     for order, kind, row_label in layout.iter_rows():
-        row_cells = tuple(_cell(by_key.get((order, w.id))) for w in waves)
+        row_cells = tuple(_cell(by_key.get((order, w.id)), weighted=weighted) for w in waves)
         rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
     notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
-    slug = re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-")
+    slug = re.sub(r"[^a-z0-9]+", "-", variable.name.lower()).strip("-")
     return Section(
         anchor=f"v{index + 1}-{slug}" if slug else f"v{index + 1}",
-        name=name,
-        label=label,
-        type_label=TYPE_LABELS.get(type_, type_),
+        name=variable.name,
+        label=variable.label,
+        type_label=TYPE_LABELS.get(variable.type, variable.type),
         table=Table(columns=waves, rows=tuple(rows), notes=notes),
         has_low_base=any(c.base_flag for r in rows for c in r.cells),
     )
 
 
-def _cell(row: dict | None) -> Cell:
-    """Format one cell: percentages as whole numbers with the count beside, statistics to 2 decimals."""
+def _cell(row: dict | None, *, weighted: bool) -> Cell:
+    """Format one cell: percentages as whole numbers with the unweighted count beneath, statistics
+    to 2 decimals; in a weighted book the weighted estimate and its interval where the row has one."""
     if row is None:
         return Cell(text="–")
     flag = _base_flag(row["base"])
     kind = row["row_kind"]
     if kind == "base":
         return Cell(text=f"{row['count']:,}")
+    if weighted and row.get("estimate") is not None:
+        if kind in PERCENT_KINDS:
+            interval = f"{_whole(row['ci_low'])}–{_whole(row['ci_high'])}" if row["ci_low"] is not None else None
+            text = _percent_text(row["estimate"])
+            return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=interval)
+        if kind == "statistic" and row.get("code") in ESTIMATED_STATISTICS:
+            interval = f"{row['ci_low']:,.2f}–{row['ci_high']:,.2f}" if row["ci_low"] is not None else None
+            return Cell(text=f"{row['estimate']:,.2f}", base_flag=flag, interval=interval)
     if kind == "statistic":
         value = row["value"]
         if value is None:
@@ -260,7 +283,12 @@ def _percent_text(percent: float) -> str:
     """A percentage rounded half up to a whole number; "<1%" for a non-zero share below 0.5%."""
     if 0 < percent < 0.5:
         return "<1%"
-    return f"{math.floor(percent + 0.5)}%"
+    return f"{_whole(percent)}%"
+
+
+def _whole(number: float) -> int:
+    """`number` rounded half up to a whole number (12.5 -> 13; Python's round() would give 12)."""
+    return math.floor(number + 0.5)
 
 
 def _base_flag(base: int | None) -> str | None:
@@ -301,12 +329,23 @@ def _design_lines(design: Design) -> tuple[str, ...]:
     return tuple(lines)
 
 
-def _methodology(study: Study) -> tuple[str, ...]:
-    """How the figures in this version of the book were produced."""
+def _methodology(*, weighted: bool) -> tuple[str, ...]:
+    """How the figures in the book were produced."""
+    if weighted:
+        first = (
+            "Percentages, means and medians are WEIGHTED estimates of the population, with their "
+            "confidence interval (lowest to highest) beneath each figure. Bases, the counts beneath "
+            "percentages, the number of answers, minimum and maximum are UNWEIGHTED: they count "
+            "respondents."
+        )
+    else:
+        first = (
+            "All figures in this book are UNWEIGHTED: every respondent counts once, whatever weights "
+            "the design declares. Weighted estimates, standard errors and design effects are not "
+            "shown in this version."
+        )
     paragraphs = [
-        "All figures in this book are UNWEIGHTED: every respondent counts once, whatever weights the "
-        "design declares. Weighted estimates, standard errors and design effects are not shown in "
-        "this version.",
+        first,
         "Base: the respondents of the wave who gave a valid answer to the question. Percentages of "
         "categories and nets are of that base. The 'No answer' row counts the wave's other respondents; "
         "its percentage is of all respondents of the wave.",
@@ -320,17 +359,19 @@ def _methodology(study: Study) -> tuple[str, ...]:
     return tuple(paragraphs)
 
 
-def _cautions(study: Study, sections: tuple[Section, ...]) -> tuple[Caution, ...]:
-    """The reader's cautions: sample type, low bases, what a confidence interval says."""
-    cautions = [
-        Caution(
-            "Unweighted figures",
-            (
-                "These figures describe the people who answered, not the population: no weights "
-                "correct for the sample design or for who chose to respond.",
-            ),
+def _cautions(study: Study, sections: tuple[Section, ...], *, weighted: bool) -> tuple[Caution, ...]:
+    """The reader's cautions: unweighted figures, sample type, low bases, what a confidence interval says."""
+    cautions = []
+    if not weighted:
+        cautions.append(
+            Caution(
+                "Unweighted figures",
+                (
+                    "These figures describe the people who answered, not the population: no weights "
+                    "correct for the sample design or for who chose to respond.",
+                ),
+            )
         )
-    ]
     if study.design.kind == "nonprobability":
         cautions.append(
             Caution(

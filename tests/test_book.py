@@ -466,3 +466,46 @@ def test_book_file_is_readable_like_a_normal_file(book_path: Path) -> None:
     mask = os.umask(0o022)
     os.umask(mask)
     assert book_path.stat().st_mode & 0o777 == 0o666 & ~mask
+
+
+def _with_estimates(cells: pl.DataFrame) -> pl.DataFrame:
+    """Cells with made-up weighted columns (a rendering fixture: the values are not estimates of anything)."""
+    percent_row = pl.col("row_kind").is_in(["category", "net", "item", "missing"])
+    mean_row = pl.col("code").is_in(["mean", "median"])
+    estimate = pl.when(percent_row).then(pl.col("percent") + 0.7).when(mean_row).then(pl.col("value") * 1.1)
+    return cells.with_columns(estimate.alias("estimate")).with_columns(
+        (pl.col("estimate") - 2.25).alias("ci_low"), (pl.col("estimate") + 3.5).alias("ci_high")
+    )
+
+
+def test_weighted_cells_show_estimate_interval_and_unweighted_count(tmp_path: Path, cells: pl.DataFrame) -> None:
+    weighted = _with_estimates(cells)
+    tree = _parse(render_book(_study(tmp_path), weighted, out_path=tmp_path / "weighted.html"))
+    row = _cell(weighted, "W1", "region", "category", "Eastvale")
+    cell = _table_cell(_section(tree, "Region"), "Eastvale", 0)
+    spans = {s.attrs.get("class"): s.text for s in cell.find_all("span")}
+    estimate = row["percent"] + 0.7
+    assert spans["figure"] == f"{int(estimate + 0.5)}%"
+    assert spans["interval"] == f"{int(estimate - 2.25 + 0.5)}–{int(estimate + 3.5 + 0.5)}"
+    assert spans["count"] == str(row["count"])
+    mean = _cell(weighted, "W1", "spend", "statistic", "Mean")["value"] * 1.1
+    mean_cell = _table_cell(_section(tree, "Monthly spend (credits)"), "Mean", 0)
+    assert [s.text for s in mean_cell.find_all("span") if s.attrs.get("class") == "figure"] == [f"{mean:,.2f}"]
+    n_cell = _table_cell(_section(tree, "Monthly spend (credits)"), "Number of answers", 0)
+    n = _cell(weighted, "W1", "spend", "statistic", "Number of answers")["value"]
+    assert n_cell.text == f"{n:,.0f}"  # counts stay unweighted
+
+
+def test_weighted_book_says_so_and_drops_the_unweighted_caution(tmp_path: Path, cells: pl.DataFrame) -> None:
+    path = render_book(_study(tmp_path), _with_estimates(cells), out_path=tmp_path / "weighted.html")
+    tree = _parse(path)
+    (method,) = [s for s in tree.root.find_all("section") if s.attrs.get("id") == "methodology"]
+    assert "WEIGHTED estimates" in method.text
+    assert "Unweighted figures" not in _caution_titles(path)
+    assert "Unweighted figures" in _caution_titles(render_book(_study(tmp_path), cells, out_path=tmp_path / "u.html"))
+
+
+@pytest.mark.parametrize(("percent", "shown"), [(12.5, "13%"), (12.49, "12%"), (0.3, "<1%"), (0.0, "0%"), (99.5, "100%")])
+def test_percentages_round_half_up(percent: float, shown: str) -> None:
+    # the book's display convention: round half up (Python's round() would round half to even)
+    assert book_module._percent_text(percent) == shown
