@@ -34,7 +34,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.errors import DataError, Problem, SpecError
-from pipeline.estimation.totals import GroupTotals
+from pipeline.estimation.totals import GroupTotals, sum_by
 
 SinglePsu = Literal["error", "certainty", "centre", "collapse"]
 SINGLE_PSU_POLICIES: tuple[str, ...] = ("error", "certainty", "centre", "collapse")
@@ -254,8 +254,7 @@ class PsuLayout:
         """(P, m) PSU totals -> deviations from the stratum (or grand) mean and the per-PSU multiplier."""
         h = self.psu_stratum
         n_h = np.bincount(h, minlength=self.n_strata).astype(np.float64)
-        sums = np.zeros((self.n_strata, z.shape[1]))
-        np.add.at(sums, h, z)
+        sums = sum_by(h, z, self.n_strata)
         centre = sums / np.maximum(n_h, 1)[:, None]
         lone = n_h == 1
         if self.single_psu == "centre" and lone.any():

@@ -26,7 +26,7 @@ from typing import Protocol
 import numpy as np
 
 from pipeline.estimation.design import PsuLayout
-from pipeline.estimation.totals import GroupTotals
+from pipeline.estimation.totals import GroupTotals, sum_by
 
 
 class Estimand(Protocol):
@@ -63,10 +63,9 @@ def linearized_group_totals(
         raise ValueError(f"calibration matrix has {x.shape[0]} classes but the data have {gt.n_classes}")
     w_g = gt.totals[:, calibration.weight_column]
     w_c = np.bincount(gt.cls, weights=w_g, minlength=x.shape[0])
-    z_c = np.zeros((x.shape[0], z.shape[1]))
-    np.add.at(z_c, gt.cls, z)
+    z_c = sum_by(gt.cls, z, x.shape[0])
     b = np.linalg.pinv((x * w_c[:, None]).T @ x) @ (x.T @ z_c)
-    return z - w_g[:, None] * (x[gt.cls] @ b)
+    return z - w_g[:, None] * (x @ b)[gt.cls]
 
 
 def taylor_variance(

@@ -66,17 +66,24 @@ class GroupTotals:
 
     def psu_totals(self, values: np.ndarray | None = None) -> np.ndarray:
         """Sum group rows within PSU: (G, m) -> (P, m); default `values` = `totals`."""
-        values = self.totals if values is None else values
-        out = np.zeros((self.n_psus, values.shape[1]))
-        np.add.at(out, self.psu, values)
-        return out
+        return sum_by(self.psu, self.totals if values is None else values, self.n_psus)
 
     def class_totals(self, values: np.ndarray | None = None) -> np.ndarray:
         """Sum group rows within weighting class: (G, m) -> (C, m); default `values` = `totals`."""
-        values = self.totals if values is None else values
-        out = np.zeros((self.n_classes, values.shape[1]))
-        np.add.at(out, self.cls, values)
+        return sum_by(self.cls, self.totals if values is None else values, self.n_classes)
+
+
+def sum_by(index: np.ndarray, values: np.ndarray, size: int) -> np.ndarray:
+    """out[k] = sum of values[g] over g with index[g] == k: (G, m) -> (size, m), by one sort and `np.add.reduceat`."""
+    values = np.asarray(values, dtype=np.float64)
+    out = np.zeros((size, values.shape[1]))
+    if len(index) == 0:
         return out
+    order = np.argsort(index, kind="stable")
+    ordered = index[order]
+    starts = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]])
+    out[ordered[starts]] = np.add.reduceat(values[order], starts, axis=0)
+    return out
 
 
 def group_totals(
