@@ -134,3 +134,15 @@ def test_group_total_path_equals_naive_per_respondent_computation() -> None:
         row = out.filter(pl.col("domain") == domain).row(0, named=True)
         assert row["estimate"] == pytest.approx(r, rel=1e-12)
         assert row["se"] ** 2 == pytest.approx(v, rel=1e-10)
+
+
+@settings(max_examples=30, deadline=None)
+@given(index=st.lists(st.integers(0, 6), min_size=0, max_size=40), seed=st.integers(0, 1000))
+def test_sum_by_equals_unbuffered_add(index: list[int], seed: int) -> None:
+    from pipeline.estimation.totals import sum_by
+
+    idx = np.array(index, dtype=np.int64)
+    values = np.random.default_rng(seed).normal(size=(len(idx), 3))
+    expected = np.zeros((8, 3))
+    np.add.at(expected, idx, values)  # numpy's unbuffered scatter-add as the reference
+    assert sum_by(idx, values, 8) == pytest.approx(expected, abs=1e-12)
