@@ -54,7 +54,7 @@ def build_parser() -> argparse.ArgumentParser:
             epilog=f"example:\n  {module.EXAMPLE}",
             formatter_class=argparse.RawDescriptionHelpFormatter,
         )
-        cmd.add_argument("--quiet", action="store_true", help="no progress display")
+        cmd.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS, help="no progress display")
         module.add_arguments(cmd)
         cmd.set_defaults(_run=module.run)
     return parser
