@@ -440,10 +440,11 @@ def _table(
     n = gt.counts.sum(axis=0)[base_idx]
     base_w = t[base_idx]
     t0 = np.append(t, 0.0)  # index len(t) stands for an absent moment (0)
-    pick = lambda name: col(name) if name is not None else len(t)  # noqa: E731
-    s_nn = t0[[pick(c.s_nn) for c in cells]]
-    s_nd = t0[[pick(c.s_nd) for c in cells]]
-    s_dd = t0[[pick(c.s_dd) for c in cells]]
+
+    def moments(names: list[str | None]) -> np.ndarray:
+        return t0[[col(name) if name is not None else len(t) for name in names]]
+
+    s_nn, s_nd, s_dd = (moments([getattr(c, k) for c in cells]) for k in ("s_nn", "s_nd", "s_dd"))
     sum_wz2 = deff_mod.second_moment(ratios, t, s_nn=s_nn, s_nd=s_nd, s_dd=s_dd)
     sum_wz = np.where(ratios.is_total, t[ratios.num], 0.0)
     v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=base_w, base_n=n, fpc=has_fpc)
