@@ -17,7 +17,7 @@ import polars as pl
 
 from pipeline.errors import DataError, Problem
 
-ROW_KEY = "__row__"
+DENSE_KEY_LIMIT = 50_000_000  # mixed-radix class keys up to this span use a bincount, beyond it a sort
 
 
 @dataclass(frozen=True)
@@ -65,18 +65,47 @@ def build_classes(data: pl.DataFrame, variables: Sequence[str], *, per_responden
     ]
     if problems:
         raise DataError("cannot form weighting classes", problems)
-    text = data.select([pl.col(v).cast(pl.String) for v in variables])
     n = data.height
     if per_respondent:
-        frame = text.with_row_index(ROW_KEY)
-        return ClassIndex(variables, frame.drop(ROW_KEY), np.arange(n, dtype=np.int64), np.ones(n, dtype=np.int64), True)
+        frame = data.select([pl.col(v).cast(pl.String) for v in variables])
+        return ClassIndex(variables, frame, np.arange(n, dtype=np.int64), np.ones(n, dtype=np.int64), True)
     if not variables:
         return ClassIndex((), pl.DataFrame(), np.zeros(n, dtype=np.int64), np.array([n], dtype=np.int64))
-    frame = text.unique().sort(list(variables)).with_row_index("__class__")
-    index = text.join(frame, on=list(variables), how="left", maintain_order="left")["__class__"].to_numpy()
+    key = np.zeros(n, dtype=np.int64)
+    levels: list[pl.Series] = []
+    for v in variables:
+        codes, values = _dense_codes(data[v])
+        key = key * len(values) + codes
+        levels.append(values)
+    span = int(np.prod([len(lv) for lv in levels], dtype=np.float64))
+    if span <= DENSE_KEY_LIMIT:
+        present = np.bincount(key, minlength=span) > 0
+        keys = np.flatnonzero(present)
+        index = (np.cumsum(present) - 1)[key]
+    else:
+        keys, index = np.unique(key, return_inverse=True)
+    columns = {}
+    rest = keys
+    for v, values in zip(reversed(variables), reversed(levels)):
+        rest, digit = np.divmod(rest, len(values))
+        columns[v] = values.gather(digit).cast(pl.String)
+    frame = pl.DataFrame({v: columns[v] for v in variables})
     index = index.astype(np.int64)
-    counts = np.bincount(index, minlength=frame.height)
-    return ClassIndex(variables, frame.drop("__class__"), index, counts)
+    return ClassIndex(variables, frame, index, np.bincount(index, minlength=frame.height))
+
+
+def _dense_codes(series: pl.Series) -> tuple[np.ndarray, pl.Series]:
+    """(n,) index of each value among the sorted distinct values, and those values."""
+    if series.dtype.is_integer():
+        values = series.to_numpy()
+        low = int(values.min())
+        if int(values.max()) - low < DENSE_KEY_LIMIT:
+            present = np.bincount(values - low) > 0
+            return (np.cumsum(present) - 1)[values - low], pl.Series(np.flatnonzero(present) + low)
+    distinct = series.unique().sort()
+    codes = series.to_frame("v").join(distinct.to_frame("v").with_row_index("i"), on="v", how="left",
+                                       maintain_order="left")["i"]
+    return codes.to_numpy().astype(np.int64), distinct
 
 
 @dataclass(frozen=True)

@@ -68,8 +68,7 @@ def rake(
     same margins leaves the fixed point unchanged (it is a reparametrisation of lambda), so the
     full-sample factors are a valid warm start for replicates.
     """
-    factors = np.ones_like(totals) if start is None else np.repeat(start[:, None], totals.shape[1], axis=1)
-    current = totals * factors
+    current = totals.copy() if start is None else totals * start[:, None]
     indicators = [_indicator(m) for m in margins]
     targets = [absolute_targets(m, population) for m in margins]
     per_column = np.zeros((len(margins), totals.shape[1]))
@@ -86,14 +85,18 @@ def rake(
         return per_column.max(axis=0, initial=0.0) > tolerance
 
     active = check()
+    step = np.empty_like(current)
     while iterations < max_iterations and active.any():
         iterations += 1
         for m, g, t in zip(margins, indicators, targets):
             sums = g @ current
             ratio = np.divide(t, sums, out=np.ones_like(sums), where=(sums > 0) & active[None, :])
-            step = ratio[m.of_class]
+            np.take(ratio, m.of_class, axis=0, out=step)
             current *= step
-            factors *= step
         active = check()
     discrepancy = per_column.max(axis=1, initial=0.0)
+    # factor of each class = raked / incoming total; a class with no incoming weight keeps its
+    # starting factor (it carries no weight, so any finite factor gives the same replicate weights)
+    first = np.ones_like(totals) if start is None else np.repeat(start[:, None], totals.shape[1], axis=1)
+    factors = np.divide(current, totals, out=first, where=totals > 0)
     return RakeFit(factors, iterations, discrepancy, bool(discrepancy.max(initial=0.0) <= tolerance), empty.copy())

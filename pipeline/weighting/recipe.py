@@ -30,6 +30,7 @@ from pipeline.weighting.steps import CalibrateStep, NonresponseStep, Poststratif
 TRIM_SLACK = 1e-6  # a weight within this relative distance of its bound counts as within it
 POSTSTRATIFY_TOLERANCE = 1e-10
 WATER_FILLING_STEPS = 50
+REPLAY_BLOCK_BYTES = 2 * 2**20
 
 
 def _population(margins: Sequence[Margin], fixed: float | None) -> float | None:
@@ -192,15 +193,21 @@ class FittedRecipe:
 
         Replicate weight_i = adjusted_base_i * a_r(psu_i) * f_r[classes_i]; replay of the full-sample
         totals returns the full-sample factors, so weights == adjusted_base * replay(T)[0, classes].
+        Replicates are processed in blocks of (C, block) arrays of about REPLAY_BLOCK_BYTES, so
+        the working set stays in cache; each replicate's result does not depend on its block.
         """
         totals = np.asarray(class_totals, dtype=float)
-        current = totals.T.copy()
-        factors = np.ones_like(current)
-        for op in self.ops:
-            f = op.apply(current)
-            current *= f
-            factors *= f
-        return factors.T
+        out = np.empty_like(totals)
+        block = max(1, REPLAY_BLOCK_BYTES // (8 * max(totals.shape[1], 1)))
+        for first in range(0, totals.shape[0], block):
+            current = totals[first:first + block].T.copy()
+            factors = np.ones_like(current)
+            for op in self.ops:
+                f = op.apply(current)
+                current *= f
+                factors *= f
+            out[first:first + block] = factors.T
+        return out
 
     def calibration_matrix(self) -> np.ndarray:
         """(C, p) auxiliary vector x of each class for the last class-level step (full column rank:
@@ -324,7 +331,8 @@ def _bounded_rake(op: _RakeOp, classes: ClassIndex, w: np.ndarray, lower: float,
 
 def _bounds(step: TrimStep, weights_in: np.ndarray) -> tuple[float, float]:
     """(lower, upper) absolute bounds: relative to the mean or median of the incoming weights, or absolute."""
-    ref = {"mean": float(weights_in.mean()), "median": float(np.median(weights_in)), "absolute": 1.0}[step.relative_to]
+    ref = 1.0 if step.relative_to == "absolute" else float(
+        weights_in.mean() if step.relative_to == "mean" else np.median(weights_in))
     return (step.lower * ref if step.lower is not None else 0.0, step.upper * ref if step.upper is not None else np.inf)
 
 
