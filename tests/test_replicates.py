@@ -237,6 +237,15 @@ def test_bad_options_are_all_reported():
     with pytest.raises(SpecError) as err:
         make_replicates("halfsample", np.array([0, 0]), fay=1.2, replicates=1)
     assert len(err.value.problems) == 3
+    with pytest.raises(SpecError, match="sampling fractions"):
+        make_replicates("jkn", np.array([0, 0, 1, 1]), sampling_fraction=np.array([0.1]))
+
+
+def test_jackknife_over_too_many_psus_is_refused_with_advice():
+    # a jackknife over 20,000 respondent-level PSUs would need a 20,000 x 20,000 factor matrix (3 GiB)
+    with pytest.raises(DataError) as err:
+        make_replicates("jk1", np.zeros(20_000, dtype=np.int64))
+    assert "bootstrap" in err.value.render()
 
 
 def test_supplied_replicate_totals_and_problems():

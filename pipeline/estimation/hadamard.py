@@ -125,11 +125,11 @@ def _paley_two(q: int) -> np.ndarray:
 
 @cache
 def _recipe(n: int) -> tuple | None:
-    """How to build order n: ("unit",), ("paley1", q), ("paley2", q), ("kron", a, b), or None."""
+    """How to build order n: ("unit",), ("two",), ("paley1", q), ("paley2", q), ("kron", a, b), or None."""
     if n == 1:
         return ("unit",)
     if n == 2:
-        return ("kron", 2, 1)
+        return ("two",)
     if n % 4:
         return None
     if _prime_power(n - 1) and (n - 1) % 4 == 3:
@@ -152,7 +152,7 @@ def _build(n: int) -> np.ndarray:
         return _paley_one(recipe[1])
     if recipe[0] == "paley2":
         return _paley_two(recipe[1])
-    if recipe[1:] == (2, 1):
+    if recipe[0] == "two":
         return np.array([[1, 1], [1, -1]], dtype=np.int8)
     return np.kron(_build(recipe[1]), _build(recipe[2]))
 

@@ -49,6 +49,8 @@ from pipeline.estimation.totals import GroupTotals
 METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap")
 SUPPLIED_METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap", "sdr")
 DEFAULT_BOOTSTRAP_REPLICATES = 500  # common practice, no source
+MAX_FACTOR_BYTES = 2 * 2**30  # largest (R, P) factor matrix built
+SPARSE_SHARE = 0.1  # replay through the sparse correction when at most this share of factors differ from 1
 
 
 @dataclass(frozen=True)
@@ -114,6 +116,12 @@ def make_replicates(
     n_h = np.bincount(psu_stratum, minlength=n_strata)
     labels = tuple(stratum_labels) if stratum_labels is not None else tuple(str(h) for h in range(n_strata))
     f_h = np.zeros(n_strata) if sampling_fraction is None else np.asarray(sampling_fraction, dtype=np.float64)
+    if f_h.shape != (n_strata,) or np.any((f_h < 0) | (f_h >= 1)):
+        raise SpecError(
+            "invalid sampling fractions",
+            [Problem(rule="bad-option", message=f"need {n_strata} sampling fractions in [0, 1), one per stratum")],
+        )
+    _check_size(method, len(psu_stratum), replicates)
     if method == "jk1":
         _require_psus(n_h.sum(keepdims=True), labels=("all strata",), at_least=2, method=method)
         return _jk1(psu_stratum, f_h, centre=centre, n_strata=n_strata)
@@ -150,6 +158,23 @@ def _check_options(method: str, *, fay: float, replicates: int | None) -> None:
         problems.append(Problem(rule="bad-option", message=f"at least 2 replicates are needed, not {replicates}"))
     if problems:
         raise SpecError("the replicate options are invalid", problems)
+
+
+def _check_size(method: str, n_psus: int, replicates: int | None) -> None:
+    """Refuse factor matrices above MAX_FACTOR_BYTES (a jackknife over respondent-level PSUs)."""
+    n_rep = {"jk1": n_psus, "jkn": n_psus, "bootstrap": replicates or DEFAULT_BOOTSTRAP_REPLICATES}.get(method, 0)
+    if n_rep * n_psus * 8 > MAX_FACTOR_BYTES:
+        raise DataError(
+            f"too many PSUs for the '{method}' replicates",
+            [
+                Problem(
+                    rule="too-many-replicates",
+                    message=f"{n_psus} PSUs and {n_rep} replicates would need {n_rep * n_psus * 8 / 2**30:.1f} GiB "
+                    "of replicate factors; declare the design's PSU column, or use the bootstrap with fewer replicates",
+                    count=n_psus,
+                )
+            ],
+        )
 
 
 def _require_psus(n_h: np.ndarray, *, labels: Sequence[str], at_least: int, method: str) -> None:
@@ -435,7 +460,7 @@ def replicate_totals(
     if f.shape != b.shape:
         raise ValueError(f"reweight returned shape {f.shape}, expected {b.shape}")
     delta = rf.factors - 1.0
-    if np.count_nonzero(delta) <= 0.1 * delta.size:
+    if np.count_nonzero(delta) <= SPARSE_SHARE * delta.size:
         return f @ gt.class_totals() + _sparse_correction(gt, delta, f)
     rows = max(1, chunk_bytes // (8 * max(len(gt.psu), 1)))
     return np.concatenate(
