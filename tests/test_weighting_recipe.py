@@ -154,3 +154,18 @@ def test_targets_vs_sample_vs_weighted_diagnostics() -> None:
     assert a3.target_share == pytest.approx(0.3)
     assert a3.sample_count == int((data["a"] == 3).sum())
     assert a3.achieved_share == pytest.approx(0.3, rel=1e-9)
+
+
+def test_replicates_with_proportion_targets_rescale_the_estimated_population() -> None:
+    data, base, psu = _data()
+    steps = [RakeStep(0, (("a",), ("c",)), TARGETS, tolerance=1e-11, max_iterations=500)]  # proportions, no total
+    recipe = fit_recipe(data, steps, base_weights=base)
+    assert recipe.weights.sum() == pytest.approx(base.sum(), rel=1e-12)  # population estimated by the base weights
+    a = _jackknife_factors(psu, 40)
+    totals = np.stack([recipe.class_totals(recipe.adjusted_base * a[r]) for r in (3, 21)])
+    factors = recipe.replay(totals)
+    for row, r in enumerate((3, 21)):
+        kept = a[r] > 0
+        refit = fit_recipe(data.filter(pl.Series(kept)), steps, base_weights=(base * a[r])[kept]).weights
+        # naive path: the replicate's own population estimate sum(d a_r) scales its proportion targets
+        np.testing.assert_allclose((recipe.adjusted_base * a[r] * factors[row, recipe.classes])[kept], refit, rtol=1e-8)

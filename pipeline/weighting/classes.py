@@ -46,8 +46,8 @@ class ClassIndex:
         """A readable label per class, e.g. 'age_band=3, sex=1' ('all' when there is no variable)."""
         if not self.variables:
             return ("all",) * self.size
-        cols = [self.frame[v].to_list() for v in self.variables]
-        return tuple(", ".join(f"{v}={c}" for v, c in zip(self.variables, row)) for row in zip(*cols))
+        parts = [pl.lit(f"{v}=") + pl.col(v) for v in self.variables]
+        return tuple(self.frame.select(pl.concat_str(parts, separator=", ").alias("label"))["label"].to_list())
 
     def totals(self, weights: np.ndarray) -> np.ndarray:
         """(C,) sum of `weights` within each class (one grouped pass)."""

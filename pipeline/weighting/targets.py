@@ -123,8 +123,3 @@ def inline_targets(raw: object, *, where: str) -> tuple[TargetTable | None, list
         for category, target in cells.items():
             _add(margins, problems, where=where, margin=str(margin), category=str(category), raw_target=target)
     return TargetTable(margins, source=where), problems
-
-
-def proportion_or_count(values: list[float]) -> str:
-    """'proportion' when the targets sum to 1 (within PROPORTION_TOLERANCE), else 'count'."""
-    return "proportion" if abs(sum(values) - 1.0) <= PROPORTION_TOLERANCE else "count"
