@@ -2,7 +2,7 @@
 
 For estimates theta (m,) and replicate estimates theta_r (R, m):
 
-    v(theta) = scale * sum_r rscales_r (theta_r - c_r)^2                     (Wolter 2007, eq. 4.5.4 / 3.3.x)
+    v(theta) = scale * sum_r rscales_r (theta_r - c_r)^2          (Wolter 2007, sections 3.3 and 4.5)
     cov(theta_a, theta_b) = scale * sum_r rscales_r (theta_ra - c_ra)(theta_rb - c_rb)
 
 c_r is the full-sample estimate (centre "full") or the mean of the replicates that share the
@@ -48,7 +48,7 @@ def replicate_variance(
     """v = scale * sum_r rscales_r (theta_r - c_r)^2, vectorised over the trailing axes of theta_r.
 
     theta (m,) or scalar, theta_r (R, m); centre overrides rf.centre ("full" or "mean").
-    Formulas: jackknife Wolter 2007 eq. 4.2.3 / 4.5.4; BRR and Fay Wolter section 3.3 and Fay 1989;
+    Formulas: jackknife Wolter 2007 sections 4.2 and 4.5; BRR and Fay Wolter section 3.3 and Fay 1989;
     bootstrap Rao & Wu 1988; successive differences Fay & Train 1995 (multipliers in `rf`).
     """
     d = _deviations(theta, theta_r, rf, centre)
