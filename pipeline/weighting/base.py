@@ -96,9 +96,9 @@ def adjust_nonresponse(data: pl.DataFrame, base: np.ndarray, step: NonresponseSt
     """Weighting-class nonresponse adjustment (see module docstring); all status problems in one DataError."""
     where = f"weighting[{step.index}]"
     status = data[step.status].cast(pl.String)
-    responded = status.is_in(list(step.responded)).to_numpy()
-    nonresp = status.is_in(list(step.nonrespondent)).to_numpy()
-    inelig = status.is_in(list(step.ineligible)).to_numpy()
+    responded = status.is_in(list(step.responded)).fill_null(False).to_numpy()
+    nonresp = status.is_in(list(step.nonrespondent)).fill_null(False).to_numpy()
+    inelig = status.is_in(list(step.ineligible)).fill_null(False).to_numpy()
     unknown = ~(responded | nonresp | inelig)
     problems: list[Problem] = []
     if unknown.any():
