@@ -92,6 +92,7 @@ class StepReport:
     converged: bool | None = None
     discrepancy: dict[str, float] = field(default_factory=dict)  # margin -> max |achieved/target - 1|
     trimmed: int = 0
+    bounds: tuple[float, float] | None = None  # trimming: absolute (lower, upper) bounds applied
     margins: tuple[MarginCheck, ...] = ()
     collapsed: tuple[str, ...] = ()
     response: tuple[ClassResponse, ...] = ()
@@ -121,8 +122,8 @@ class WeightingReport:
             head = f"step {step.index + 1} ({step.kind})"
             if step.iterations is not None:
                 head += f": {step.iterations} iteration(s), {'converged' if step.converged else 'NOT converged'}"
-            if step.trimmed:
-                head += f", {step.trimmed} weight(s) trimmed"
+            if step.bounds is not None:
+                head += f", bounds [{step.bounds[0]:.4g}, {step.bounds[1]:.4g}], {step.trimmed} weight(s) at a bound"
             lines.append(_summary_line(head, step.summary))
             lines += [f"    {note}" for note in step.collapsed]
             lines += [f"    margin {m}: max relative discrepancy {d:.2e}" for m, d in step.discrepancy.items()]

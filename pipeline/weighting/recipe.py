@@ -419,7 +419,8 @@ def fit_recipe(
             base = base * t
             weights = base * (_chain_factors(ops, classes, base)[classes.index] if ops else 1.0)
             at_bound = _at_bounds(s, weights_in_trim, weights)
-            reports.append(StepReport(s.index, "trim", WeightSummary.of(weights), iterations=rounds, trimmed=at_bound))
+            reports.append(StepReport(s.index, "trim", WeightSummary.of(weights), iterations=rounds, converged=True,
+                                      trimmed=at_bound, bounds=_bounds(s, weights_in_trim)))
             continue
         op = op_of[s.index]
         ops.append(op)
