@@ -169,3 +169,13 @@ def test_replicates_with_proportion_targets_rescale_the_estimated_population() -
         refit = fit_recipe(data.filter(pl.Series(kept)), steps, base_weights=(base * a[r])[kept]).weights
         # naive path: the replicate's own population estimate sum(d a_r) scales its proportion targets
         np.testing.assert_allclose((recipe.adjusted_base * a[r] * factors[row, recipe.classes])[kept], refit, rtol=1e-8)
+
+
+def test_replicate_with_an_empty_category_is_flagged_not_silent() -> None:
+    data = pl.DataFrame({"respondent_id": [str(i) for i in range(6)], "a": [1, 1, 2, 2, 3, 3]})
+    targets = TargetTable({"a": {("1",): 10.0, ("2",): 10.0, ("3",): 10.0}}, "test")
+    recipe = fit_recipe(data, [RakeStep(0, (("a",),), targets)], base_weights=np.ones(6))
+    assert recipe.warnings == []
+    factors = recipe.replay(np.array([[1.0, 1.0, 0.0], [2.0, 2.0, 2.0]]))
+    np.testing.assert_allclose(factors[:, :2], [[10.0, 10.0], [5.0, 5.0]])  # hand computed: target / class total
+    assert [(w.rule, w.column) for w in recipe.warnings] == [("replicate-empty-category", "a")]

@@ -90,7 +90,8 @@ class _RakeOp:
         fit = rake(current, self.margins, pop, tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
-                     "population": float(pop[0]) if pop.size else 0.0}
+                     "population": float(pop[0]) if pop.size else 0.0,
+                     "empty": {m.name: int(e) for m, e in zip(self.margins, fit.empty) if e}}
         if not fit.converged and not self.allow_nonconvergence:
             raise DataError(
                 f"weighting[{self.index}] ({self.kind}) did not converge in {fit.iterations} iteration(s) "
@@ -207,7 +208,18 @@ class FittedRecipe:
                 current *= f
                 factors *= f
             out[first:first + block] = factors.T
+            self._note_empty()
         return out
+
+    def _note_empty(self) -> None:
+        """Record (once per margin) a warning when a replicate left a margin category without weight."""
+        for op in self.ops:
+            for name, count in op.last.get("empty", {}).items():
+                message = (f"weighting[{op.index}]: in some replicates category(ies) of margin '{name}' had no weight "
+                           "and were left unadjusted; collapse categories so each spans several PSUs")
+                if all(p.message != message for p in self.warnings):
+                    self.warnings.append(Problem("replicate-empty-category", message, severity="warning", column=name,
+                                                 count=count))
 
     def calibration_matrix(self) -> np.ndarray:
         """(C, p) auxiliary vector x of each class for the last class-level step (full column rank:
