@@ -64,13 +64,15 @@ class WaveColumn:
 @dataclass(frozen=True)
 class Cell:
     """One table cell: the main figure as text, its confidence interval as text (weighted books),
-    an optional secondary figure (the unweighted count under a percentage) and the base flag:
-    None, "low" (base < LOW_BASE) or "very-low" (< VERY_LOW_BASE)."""
+    an optional secondary figure (the unweighted count under a percentage), the base flag:
+    None, "low" (base < LOW_BASE) or "very-low" (< VERY_LOW_BASE), and the estimate's design
+    effect as text (weighted books)."""
 
     text: str
     detail: str | None = None
     base_flag: str | None = None
     interval: str | None = None
+    deff: str | None = None
 
 
 @dataclass(frozen=True)
@@ -120,7 +122,8 @@ class BookContext:
     design fact. methodology: paragraphs on how the figures were produced. cautions: what the
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
-    version: for the footer.
+    version: for the footer. weighting: the weights in summary per wave and the margins they
+    meet (`pipeline.book_weighting`), None for an unweighted book.
     """
 
     title: str
@@ -135,16 +138,24 @@ class BookContext:
     very_low_base: int
     generated_at: str
     version: str
+    weighting: WeightingSection | None = None
 
 
-def render_book(study: Study, cells: pl.DataFrame, *, out_path: Path) -> Path:
+def render_book(
+    study: Study,
+    cells: pl.DataFrame,
+    *,
+    out_path: Path,
+    weighting: WeightingSection | None = None,
+    variance: tuple[str, ...] = (),
+) -> Path:
     """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
 
     The page is rendered completely in memory first; only then is it written to a temporary
     file in the destination folder and moved over `out_path` with `os.replace` (atomic on one
     file system), so a failure never leaves a half-written or missing book. Returns `out_path`.
     """
-    context = build_context(study, cells)
+    context = build_context(study, cells, weighting=weighting, variance=variance)
     html = _environment().get_template("book.html.j2").render(book=context)
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
@@ -152,8 +163,17 @@ def render_book(study: Study, cells: pl.DataFrame, *, out_path: Path) -> Path:
     return out_path
 
 
-def build_context(study: Study, cells: pl.DataFrame, *, now: dt.datetime | None = None) -> BookContext:
-    """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.topline`)."""
+def build_context(
+    study: Study,
+    cells: pl.DataFrame,
+    *,
+    weighting: WeightingSection | None = None,
+    variance: tuple[str, ...] = (),
+    now: dt.datetime | None = None,
+) -> BookContext:
+    """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.topline`, plus
+    the estimate columns of `pipeline.weighted_cells` in a weighted book); `weighting` and
+    `variance` (sentences on how standard errors were computed) feed the methodology."""
     missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]
     if missing:
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
@@ -173,13 +193,14 @@ def build_context(study: Study, cells: pl.DataFrame, *, now: dt.datetime | None 
         weighted=weighted,
         waves=waves,
         design=_design_lines(study.design),
-        methodology=_methodology(weighted=weighted),
+        methodology=_methodology(weighted=weighted) + (variance if weighted else ()),
         cautions=_cautions(study, sections, weighted=weighted),
         sections=sections,
         low_base=LOW_BASE,
         very_low_base=VERY_LOW_BASE,
         generated_at=generated.strftime("%Y-%m-%d %H:%M UTC"),
         version=__version__,
+        weighting=weighting if weighted else None,
     )
 
 
@@ -264,10 +285,10 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
         if kind in PERCENT_KINDS:
             interval = f"{_whole(row['ci_low'])}–{_whole(row['ci_high'])}" if row["ci_low"] is not None else None
             text = _percent_text(row["estimate"])
-            return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=interval)
+            return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=interval, deff=_deff_text(row))
         if kind == "statistic" and row.get("code") in ESTIMATED_STATISTICS:
             interval = f"{row['ci_low']:,.2f}–{row['ci_high']:,.2f}" if row["ci_low"] is not None else None
-            return Cell(text=f"{row['estimate']:,.2f}", base_flag=flag, interval=interval)
+            return Cell(text=f"{row['estimate']:,.2f}", base_flag=flag, interval=interval, deff=_deff_text(row))
     if kind == "statistic":
         value = row["value"]
         if value is None:
@@ -277,6 +298,12 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if row["percent"] is None:
         return Cell(text="–", detail=f"{row['count']:,}", base_flag=flag)
     return Cell(text=_percent_text(row["percent"]), detail=f"{row['count']:,}", base_flag=flag)
+
+
+def _deff_text(row: dict) -> str | None:
+    """The design effect to 2 decimals, or None where it is undefined (e.g. a 0% or 100% cell)."""
+    deff = row.get("deff")
+    return f"{deff:.2f}" if deff is not None and math.isfinite(deff) else None
 
 
 def _percent_text(percent: float) -> str:

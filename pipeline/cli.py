@@ -41,12 +41,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--quiet", action="store_true", help="no progress display")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
     for name, module_name in COMMANDS.items():
-        try:
-            module = importlib.import_module(f"pipeline.commands.{module_name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"pipeline.commands.{module_name}":
-                continue  # command not built yet in this checkout
-            raise
+        module = importlib.import_module(f"pipeline.commands.{module_name}")
         cmd = sub.add_parser(
             name,
             help=module.HELP,

@@ -5,8 +5,11 @@ order, are small functions so later stages slot in between staging and rendering
 
   1. `load_spec`                        the validated Study
   2. `waves_to_stage` + `stage_wave`     each wave whose raw file changed (SHA-256) or all with restage
-  3. `unweighted_toplines`               the tidy long cell frame (weighting and estimation go here)
-  4. `render_book`                       the HTML book, written atomically
+  3. `unweighted_toplines`               the tidy long cell frame (counts and bases)
+  4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
+  5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
+                                         effects joined onto the same cells
+  6. `render_book`                       the HTML book, written atomically
 """
 
 from __future__ import annotations
@@ -14,13 +17,20 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+import polars as pl
+
 from pipeline import progress
 from pipeline.book import render_book
-from pipeline.database import open_database, staged_waves
-from pipeline.errors import DataError, Problem
+from pipeline.book_weighting import variance_lines, weighting_section
+from pipeline.database import load_responses, open_database, staged_waves
+from pipeline.errors import DataError, Problem, SpecError
+from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.spec import Study, load_spec
 from pipeline.stage import file_sha256, stage_wave
 from pipeline.topline import unweighted_toplines
+from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
+from pipeline.weighting import WeightingReport
+from pipeline.weighting.store import fit_wave, store
 
 
 def default_book_path(study: Study) -> Path:
@@ -52,17 +62,58 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     return [w.id for w in study.waves if recorded.get(w.id) != file_sha256(w.file)]
 
 
+def variance_options(study: Study) -> VarianceOptions:
+    """The study's `[variance]` options, validated (SpecError naming every bad key)."""
+    options, problems = parse_variance(study.variance)
+    if problems:
+        raise SpecError(f"{study.path}: the [variance] table has {len(problems)} problem(s)", problems)
+    return options
+
+
+def weigh_and_estimate(
+    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False
+) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
+    """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
+
+    Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
+    (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
+    stderr. Each wave's estimates come from one grouped pass over that wave's respondents.
+    """
+    wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
+    reports: dict[str, WeightingReport] = {}
+    estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
+    con = open_database(study)
+    try:
+        for wave_id in wave_ids:
+            with progress.step(f"weighting wave {wave_id}", quiet=quiet):
+                recipe, report = fit_wave(study, wave_id, con=con)
+                store(con, recipe, report)
+            for warning in report.warnings:
+                print(warning.render(), file=sys.stderr)
+            reports[wave_id] = report
+            with progress.step(f"estimating wave {wave_id}", quiet=quiet):
+                responses = load_responses(con, study, [wave_id])
+                layout = cells.filter(pl.col("wave") == wave_id)
+                estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
+    finally:
+        con.close()
+    joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")
+    return joined, reports
+
+
 def run_study(
     spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
-    staging warning, go to stderr), computes the unweighted toplines of every declared wave and
-    renders the book to `out` (default `default_book_path`). Raises SpecError / DataError with
-    every problem found.
+    staging warning, go to stderr), computes the toplines of every staged wave, weights each
+    wave and estimates every cell with its standard error, interval and design effect
+    (`weigh_and_estimate`), and renders the book to `out` (default `default_book_path`).
+    Raises SpecError / DataError with every problem found.
     """
     study = load_spec(spec_path)
+    options = variance_options(study)
     for wave_id in waves_to_stage(study, restage=restage):
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
@@ -75,6 +126,14 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
+    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet)
+    calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):
-        return render_book(study, cells, out_path=out_path)
+        return render_book(
+            study,
+            cells,
+            out_path=out_path,
+            weighting=weighting_section(study, reports),
+            variance=variance_lines(options, study, calibrated=calibrated),
+        )

@@ -1,0 +1,209 @@
+"""The book's weighting and standard-error pages: what the weights did, per wave, in aggregate.
+
+`weighting_section(study, reports)` turns the weighting reports of the waves
+(`pipeline.weighting.WeightingReport`) into a `WeightingSection` for `templates/_weighting.html.j2`:
+one summary row per wave (respondents weighted, steps, smallest and largest weight, the Kish
+design effect due to weighting and the effective sample size) and one table of margins
+(population target, unweighted sample and weighted share per wave). `variance_lines(options,
+study)` says how standard errors and intervals were computed. No respondent-level figure
+(no single weight, no id) reaches the book.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+from pipeline.estimation.options import VarianceOptions
+from pipeline.spec import Study
+from pipeline.weighting import WeightingReport
+from pipeline.weighting.targets import split_category, split_margin
+
+STEP_NAMES = {
+    "nonresponse": "nonresponse adjustment by weighting classes",
+    "poststratify": "post-stratification",
+    "rake": "raking",
+    "trim": "trimming",
+    "calibrate": "calibration",
+}
+
+
+@dataclass(frozen=True)
+class WaveWeighting:
+    """One wave's weights in summary: counts, steps, range, Kish deff due to weighting, n_eff, efficiency."""
+
+    wave: str
+    label: str
+    weighted: int
+    not_weighted: str | None
+    steps: str
+    smallest: str
+    largest: str
+    ratio: str
+    deff: str
+    n_eff: str
+    efficiency: str
+    trimmed: int
+    converged: bool
+
+
+@dataclass(frozen=True)
+class MarginRow:
+    """One margin category: its label, the population target share and, per wave, sample and weighted shares (text)."""
+
+    margin: str
+    category: str
+    target: str
+    shares: tuple[tuple[str, str], ...]
+
+
+@dataclass(frozen=True)
+class WeightingSection:
+    """What `templates/_weighting.html.j2` receives as `book.weighting`."""
+
+    waves: tuple[WaveWeighting, ...]
+    wave_labels: tuple[str, ...]
+    margins: tuple[MarginRow, ...]
+    notes: tuple[str, ...]
+
+
+def _pct(share: float) -> str:
+    return f"{100 * share:.1f}%"
+
+
+def _weight_text(weight: float) -> str:
+    """A weight for reading: whole numbers from 100 up, else three significant figures."""
+    return f"{weight:,.0f}" if weight >= 100 else f"{weight:.3g}"
+
+
+def _category_label(study: Study, margin: str, category: str) -> str:
+    """Codes of a (possibly crossed or merged) margin category shown with the codebook's labels."""
+    names, codes = split_margin(margin), split_category(category)
+    if len(names) != len(codes):
+        return category
+    parts = []
+    for name, code in zip(names, codes, strict=True):
+        variable = study.variables.get(name)
+        labels = {str(k): v for k, v in variable.values.items()} if variable else {}
+        members = code.split("+")  # a merged category joins its codes with "+" (weighting.classes.group_label)
+        parts.append(" or ".join(labels.get(c, c) for c in members))
+    return " × ".join(parts)
+
+
+def _margin_label(study: Study, margin: str) -> str:
+    return " × ".join(study.variables[n].label if n in study.variables else n for n in split_margin(margin))
+
+
+def weighting_section(study: Study, reports: Mapping[str, WeightingReport]) -> WeightingSection:
+    """The book's weighting summary from the waves' reports (spec wave order).
+
+    Kish's design effect due to weighting is 1 + CV^2 of the final weights and the effective
+    sample size (sum w)^2 / sum w^2 (Kish, Survey Sampling, 1965, section 11.7, from memory);
+    both come from `WeightSummary`.
+    """
+    waves = [w for w in study.waves if w.id in reports]
+    rows = []
+    notes: list[str] = []
+    for wave in waves:
+        report = reports[wave.id]
+        final = report.final
+        steps = ", then ".join(STEP_NAMES.get(s.kind, s.kind) for s in report.steps) or "base weights only"
+        dropped = ", ".join(f"{n:,} {reason}" for reason, n in report.dropped.items() if n) or None
+        rows.append(
+            WaveWeighting(
+                wave=wave.id,
+                label=wave.label,
+                weighted=report.n_weighted,
+                not_weighted=dropped,
+                steps=steps,
+                smallest=_weight_text(final.minimum),
+                largest=_weight_text(final.maximum),
+                ratio=f"{final.maximum / final.minimum:,.1f}" if final.minimum > 0 else "–",
+                deff=f"{final.deff:.2f}",
+                n_eff=f"{final.n_eff:,.0f}",
+                efficiency=f"{final.efficiency_pct:.0f}%",
+                trimmed=sum(s.trimmed for s in report.steps),
+                converged=all(s.converged is not False for s in report.steps),
+            )
+        )
+        notes += [f"{wave.label}: {n}" for s in report.steps for n in s.collapsed]
+        notes += [f"{wave.label}: {p.message}" for p in report.warnings]
+    margins = _margin_rows(study, [w.id for w in waves], reports)
+    return WeightingSection(
+        waves=tuple(rows), wave_labels=tuple(w.label for w in waves), margins=margins, notes=tuple(notes)
+    )
+
+
+def _margin_rows(study: Study, wave_ids: Sequence[str], reports: Mapping[str, WeightingReport]) -> tuple[MarginRow, ...]:
+    """Margins of each wave's last step that has margins, aligned by (margin, category) across waves."""
+    checks: dict[str, dict[tuple[str, str], object]] = {}
+    order: list[tuple[str, str]] = []
+    for wave_id in wave_ids:
+        steps = [s for s in reports[wave_id].steps if s.margins]
+        if not steps:
+            continue
+        checks[wave_id] = {}
+        for m in steps[-1].margins:
+            key = (m.margin, m.category)
+            checks[wave_id][key] = m
+            if key not in order:
+                order.append(key)
+    rows = []
+    for margin, category in order:
+        found = [checks[w][(margin, category)] for w in wave_ids if (margin, category) in checks.get(w, {})]
+        shares = tuple(
+            (_pct(checks[w][(margin, category)].sample_share), _pct(checks[w][(margin, category)].achieved_share))
+            if (margin, category) in checks.get(w, {})
+            else ("–", "–")
+            for w in wave_ids
+        )
+        rows.append(
+            MarginRow(
+                margin=_margin_label(study, margin),
+                category=_category_label(study, margin, category),
+                target=_pct(found[0].target_share),
+                shares=shares,
+            )
+        )
+    return tuple(rows)
+
+
+def variance_lines(options: VarianceOptions, study: Study, *, calibrated: bool) -> tuple[str, ...]:
+    """How standard errors, design effects and intervals were computed, in plain sentences."""
+    level = f"{100 * options.level:g}%"
+    if options.method == "taylor":
+        first = (
+            "Standard errors: Taylor linearization of each estimate, with the first-stage "
+            "with-replacement (ultimate cluster) variance between primary sampling units within strata"
+            + (" and the declared finite population correction" if study.design.population or study.design.sampling_fraction else "")
+            + "."
+        )
+        if calibrated:
+            first += (
+                " Because the weights were calibrated to population figures, the linearization uses the "
+                "residuals of the calibration (Deville and Särndal), so the gain from weighting is counted."
+            )
+        df = "Degrees of freedom: primary sampling units minus strata."
+    else:
+        names = {
+            "jk1": "delete-one-unit jackknife",
+            "jkn": "stratified delete-one-unit jackknife",
+            "brr": "balanced repeated replication",
+            "fay": f"balanced repeated replication with Fay's coefficient {options.fay:g}",
+            "bootstrap": f"Rao-Wu rescaling bootstrap ({options.replicates or 500} replicates, seed {options.seed or 0})",
+        }
+        first = (
+            f"Standard errors: replicate weights ({names[options.method]}). Every replicate repeats the "
+            "whole weighting, so the variance includes the effect of weighting."
+        )
+        df = "Degrees of freedom: from the replicate design."
+    return (
+        first,
+        df,
+        f"Intervals: {level} confidence intervals. Percentages use the Korn-Graubard interval "
+        "(exact binomial limits on the effective sample size), which stays inside 0-100% and behaves "
+        "well near the ends; means use the t distribution; medians use the Woodruff interval.",
+        "Design effect (deff): the variance of an estimate under this design and weighting divided by "
+        "its variance under a simple random sample of the same size. Effective base: the unweighted "
+        "base divided by the design effect.",
+    )
