@@ -13,6 +13,7 @@ earlier staged waves: code-gone, code-new, share-shift (warnings).
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
@@ -45,8 +46,9 @@ class _Columns:
     weights: list[str]  # base weight and selection probability
 
     @property
-    def must_be_numbers(self) -> list[str]:
-        return _unique([*self.numbers, *self.int_codes, *self.weights])
+    def valued(self) -> list[str]:
+        """The columns whose value frequencies feed the code rules and the drift rules."""
+        return _unique([*self.codes, *self.items])
 
 
 def expected_columns(study: Study) -> dict[str, str]:
@@ -107,7 +109,7 @@ def run_checks(
     if study.respondent_id not in present:
         return problems
     columns = _present_columns(study, present)
-    _setup_tables(con, study, columns)
+    _setup_tables(con, study, raw, columns)
     context = _Context(con, study, file, raw, columns)
     problems += context.rule_problems()
     if previous:
@@ -137,31 +139,18 @@ def _present_columns(study: Study, present: set[str]) -> _Columns:
     )
 
 
-def _setup_tables(con: duckdb.DuckDBPyConnection, study: Study, columns: _Columns) -> None:
-    """Temp tables the check queries join: column roles, valid codes, strata with population sizes."""
+def _setup_tables(con: duckdb.DuckDBPyConnection, study: Study, raw: str, columns: _Columns) -> None:
+    """Temp tables the check queries join: column roles, valid codes, strata sizes, value counts."""
     design = study.design
     variables = {c: v for v in study.variables.values() for c in v.columns}
-    names = _unique([*columns.codes, *columns.items, *columns.numbers, *columns.weights])
+    names = columns.valued
     roles = pl.DataFrame(
         {
             "col": names,
             "int_coded": [c in columns.int_codes or c in columns.items for c in names],
             "is_item": [c in columns.items for c in names],
-            "weight_role": [
-                "weight" if c == design.base_weight else "probability" if c == design.selection_probability else None
-                for c in names
-            ],
-            "minimum": [variables[c].minimum if c in variables else None for c in names],
-            "maximum": [variables[c].maximum if c in variables else None for c in names],
         },
-        schema={
-            "col": pl.String,
-            "int_coded": pl.Boolean,
-            "is_item": pl.Boolean,
-            "weight_role": pl.String,
-            "minimum": pl.Float64,
-            "maximum": pl.Float64,
-        },
+        schema={"col": pl.String, "int_coded": pl.Boolean, "is_item": pl.Boolean},
     )
     allowed = [(c, str(code)) for c in columns.codes for code in variables[c].valid_codes]
     allowed += [(c, code) for c in columns.items for code in ("0", "1")]
@@ -175,11 +164,18 @@ def _setup_tables(con: duckdb.DuckDBPyConnection, study: Study, columns: _Column
         ),
     }
     for name, frame in frames.items():
-        con.register("__wavebook_frame", frame)
-        try:
-            con.execute(sql(name, frame="__wavebook_frame"))
-        finally:
-            con.unregister("__wavebook_frame")
+        _register_table(con, name, frame)
+    if names:
+        con.execute(sql("check_values.sql", raw=raw, columns=names), {"names": names})
+
+
+def _register_table(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> None:
+    """Run a `create temp table ... as select * from <frame>` file with `frame` registered."""
+    con.register("__wavebook_frame", frame)
+    try:
+        con.execute(sql(name, frame="__wavebook_frame"))
+    finally:
+        con.unregister("__wavebook_frame")
 
 
 Row = tuple[str, str | None, int, list, str | None]
@@ -205,9 +201,29 @@ class _Context:
         self.owner: dict[str, Variable] = {c: v for v in study.variables.values() for c in v.columns}
 
     def run(self, rule: _Rule, name: str, params: dict | None = None, **context: object) -> list[Problem]:
-        """Run `sql/<name>` (identifiers in `context`, values in `params`) and word its rows."""
+        """Run `sql/<name>` (identifiers in `context`, values in `params`) and word its rows.
+
+        Queries over the value counts return a sixth column, the raw spellings of each bad value;
+        their example ids are then looked up in one more query (only when there are problems).
+        """
         rows = self.con.execute(sql(name, raw=self.raw, **context), params or {}).fetchall()
+        if rows and len(rows[0]) == 6:
+            rows = self.with_examples(rows)
         return _capped([self.problem(rule, row) for row in rows])
+
+    def with_examples(self, rows: list[tuple]) -> list[Row]:
+        """Fill the examples of value-count rows (col, value, n, [], detail, spellings)."""
+        bad = [(key, row[0], val) for key, row in enumerate(rows) for val in row[5]]
+        frame = pl.DataFrame(bad, schema={"key": pl.Int64, "col": pl.String, "val": pl.String}, orient="row")
+        _register_table(self.con, "check_setup_bad.sql", frame)
+        columns = _unique([row[0] for row in rows])
+        found = dict(
+            self.con.execute(
+                sql("check_examples.sql", raw=self.raw, id=self.study.respondent_id, columns=columns),
+                {"names": columns},
+            ).fetchall()
+        )
+        return [(col, value, n, sorted(found.get(key, []))[:5], detail) for key, (col, value, n, _, detail, _) in enumerate(rows)]
 
     def problem(self, rule: _Rule, row: Row) -> Problem:
         col, value, n, examples, _ = row
@@ -255,16 +271,13 @@ class _Context:
                     f"add it to variables.{self.owner[r[0]].name}.values or fix the data",
                 ),
                 "check_codes.sql",
-                id=id_col,
-                columns=cols.codes,
             )
-        if cols.must_be_numbers:
-            found += self.run(
-                _Rule("not-a-number", "error", lambda r: f"'{r[1]}' is not a number; {self.role(r[0])} holds numbers"),
-                "check_not_numeric.sql",
-                id=id_col,
-                columns=cols.must_be_numbers,
-            )
+        not_a_number = _Rule("not-a-number", "error", lambda r: f"'{r[1]}' is not a number; {self.role(r[0])} holds numbers")
+        if cols.int_codes:
+            found += self.run(not_a_number, "check_codes_not_numeric.sql")
+        numbers = _unique([*cols.numbers, *cols.weights])
+        if numbers:
+            found += self.run(not_a_number, "check_not_numeric.sql", {"names": numbers}, id=id_col, columns=numbers)
         if cols.items:
             found += self.run(
                 _Rule(
@@ -274,13 +287,17 @@ class _Context:
                     "items hold 1 (selected), 0 (not selected) or nothing (not asked)",
                 ),
                 "check_multi_binary.sql",
-                id=id_col,
-                columns=cols.items,
             )
         if cols.bounded:
+            bounds = [self.owner[c] for c in cols.bounded]
             found += self.run(
                 _Rule("out-of-bounds", "error", self.bounds_message),
                 "check_bounds.sql",
+                {
+                    "names": cols.bounded,
+                    "minimum": [v.minimum if v.minimum is not None else -math.inf for v in bounds],
+                    "maximum": [v.maximum if v.maximum is not None else math.inf for v in bounds],
+                },
                 id=id_col,
                 columns=cols.bounded,
             )
@@ -292,6 +309,7 @@ class _Context:
                     lambda r: f"{r[2]} rows have no {self.design_key(r[0])} value; every respondent needs one",
                 ),
                 "check_design_missing.sql",
+                {"names": cols.design},
                 id=id_col,
                 columns=cols.design,
             )
@@ -308,8 +326,9 @@ class _Context:
                     + f" ({r[4]})",
                 ),
                 "check_weights.sql",
+                {"names": cols.weights},
                 id=id_col,
-                columns=cols.weights,
+                columns=[{"name": c, "probability": c == design.selection_probability} for c in cols.weights],
             )
         found += self.strata_problems()
         return found
@@ -370,11 +389,11 @@ class _Context:
     def drift_problems(self, previous: list[str]) -> list[Problem]:
         """Warnings where this wave's codes differ from the earlier staged waves (`previous`, spec order)."""
         staged = set(_table_columns(self.con, "responses"))
-        columns = [c for c in (*self.columns.codes, *self.columns.items) if c in staged]
+        columns = [c for c in self.columns.valued if c in staged]
         if not columns:
             return []
-        self.con.execute(sql("check_drift_current.sql", raw=self.raw, columns=columns))
-        self.con.execute(sql("check_drift_previous.sql", columns=columns), {"waves": previous})
+        self.con.execute(sql("check_drift_current.sql"))
+        self.con.execute(sql("check_drift_previous.sql", columns=columns), {"names": columns, "waves": previous})
         threshold = DRIFT_SHARE_THRESHOLD
         return [
             *self.run(

@@ -13,7 +13,7 @@ import duckdb
 import polars as pl
 
 from pipeline.errors import DataError, Problem
-from pipeline.readers import install_macros
+from pipeline.readers import prepare_connection
 from pipeline.spec import Study
 from pipeline.sqlfiles import sql
 
@@ -62,7 +62,7 @@ def open_database(study: Study, *, read_only: bool = False) -> duckdb.DuckDBPyCo
     if read_only and not path.is_file():
         raise FileNotFoundError(f"no study database at {path}; stage a wave first (wavebook stage {study.path})")
     con = duckdb.connect(str(path), read_only=read_only)
-    install_macros(con)
+    prepare_connection(con)
     if not read_only:
         create_tables(con, study)
     return con

@@ -21,7 +21,7 @@ from pathlib import Path
 import duckdb
 
 from pipeline.errors import DataError, Problem
-from pipeline.readers import ROW_COLUMN, file_format, read_raw, read_sav
+from pipeline.readers import file_format, read_raw, read_sav
 from pipeline.sqlfiles import sql
 
 MAX_SINGLE_CODES = 20  # a column with more distinct values is drafted as numeric (or left out if text)
@@ -133,7 +133,7 @@ class _Writer:
     ) -> None:
         self.data = data
         self.folder = folder
-        self.columns = [c for c in columns if c != ROW_COLUMN]
+        self.columns = columns
         self.profiles = profiles
         self.respondent_id = respondent_id
         self.column_labels = column_labels

@@ -1,9 +1,10 @@
 """Read a raw wave file (CSV, Parquet or SPSS .sav) into a DuckDB temp table of text columns.
 
-Every column arrives as trimmed text with empty strings as NULL, so the staging checks see what
-the file holds (a '3,5' in a numeric column is reported, not silently turned into NULL). Whole
-floats from typed formats are written as integer text ('3.0' -> '3'), so the three formats stage
-identical rows. A column `__wavebook_row` numbers the data rows from 1 in file order.
+Every column arrives as text, exactly as the file holds it, so the staging checks see what was
+written (a '3,5' in a numeric column is reported, not silently turned into NULL); the SQL reads
+it through the `wb_text` (trimmed, empty -> NULL), `wb_number` and `wb_code` macros. Whole floats
+from typed formats are written as integer text ('3.0' -> '3'), so the three formats stage
+identical rows. The table's rowid + 1 is the data row number (rows keep the file's order).
 """
 
 from __future__ import annotations
@@ -16,7 +17,6 @@ import duckdb
 from pipeline.errors import DataError, Problem
 from pipeline.sqlfiles import sql
 
-ROW_COLUMN = "__wavebook_row"
 FORMATS = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet", ".sav": "sav", ".zsav": "sav"}
 _FLOAT_TYPES = ("DOUBLE", "FLOAT", "REAL")
 
@@ -46,8 +46,11 @@ def file_format(path: Path) -> str:
     return fmt
 
 
-def install_macros(con: duckdb.DuckDBPyConnection) -> None:
-    """Define the text-to-number macros the load, check and stage SQL use (`wb_number`, `wb_code`)."""
+def prepare_connection(con: duckdb.DuckDBPyConnection) -> None:
+    """Set a connection up for wavebook: no progress bar on the terminal (wavebook shows its own),
+    and the text macros the load, check and stage SQL use (`wb_text`, `wb_number`, `wb_code`)."""
+    con.execute(sql("load_settings.sql"))
+    con.execute(sql("load_macro_text.sql"))
     con.execute(sql("load_macro_number.sql"))
     con.execute(sql("load_macro_code.sql"))
 
@@ -64,7 +67,7 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
             [Problem("missing-file", "the wave file does not exist (paths are relative to the spec's folder)", file=str(path))],
         )
     fmt = file_format(path)
-    install_macros(con)
+    prepare_connection(con)
     try:
         if fmt == "sav":
             frame, _ = read_sav(path)
@@ -74,10 +77,13 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
                 con.execute(sql("load_frame.sql", table=table, columns=columns, frame="__wavebook_frame"))
             finally:
                 con.unregister("__wavebook_frame")
-        else:
+        elif fmt == "parquet":
             params = {"path": str(path)}
-            columns = _columns(con.execute(sql(f"load_describe_{fmt}.sql"), params).fetchall())
-            con.execute(sql(f"load_{fmt}.sql", table=table, columns=columns), params)
+            columns = _columns(con.execute(sql("load_describe_parquet.sql"), params).fetchall())
+            con.execute(sql("load_parquet.sql", table=table, columns=columns), params)
+        else:
+            con.execute(sql("load_csv.sql", table=table), {"path": str(path)})
+            columns = _columns(con.execute(sql("load_describe_table.sql", table=table)).fetchall())
     except duckdb.Error as exc:
         raise DataError(
             f"cannot read {path}",

@@ -28,7 +28,7 @@ from pipeline.database import (
 )
 from pipeline.errors import DataError, Problem
 from pipeline.progress import step
-from pipeline.readers import install_macros, read_raw
+from pipeline.readers import prepare_connection, read_raw
 from pipeline.spec import Study, Wave
 from pipeline.sqlfiles import sql
 
@@ -77,7 +77,7 @@ def check_wave(study: Study, wave_id: str) -> list[Problem]:
         con = open_database(study, read_only=True)
     else:
         con = duckdb.connect()
-        install_macros(con)
+        prepare_connection(con)
     try:
         return _inspect(con, study, wave, quiet=True)[1]
     finally:
@@ -96,7 +96,7 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     created = not path.exists()
     con = duckdb.connect(str(path))
     try:
-        install_macros(con)
+        prepare_connection(con)
         _, problems = _inspect(con, study, wave, quiet=quiet)
         errors = [p for p in problems if p.severity == "error"]
         if errors:

@@ -1,23 +1,27 @@
--- out-of-bounds: numeric values below the declared minimum or above the declared maximum;
--- value is 'below' or 'above', detail the most extreme value found.
-with long as (
-    from (
-        select {{ id|ident }} as "__wavebook_id"{% for c in columns %}, {{ c|ident }}{% endfor %}
-        from {{ raw|ident }}
-    ) unpivot (val for col in ({% for c in columns %}{{ c|ident }}{% if not loop.last %}, {% endif %}{% endfor %}))
-),
-judged as (
-    select l."__wavebook_id" as id, l.col, wb_number(l.val) as x, k.minimum, k.maximum
-    from long as l
-    join wb_columns as k on k.col = l.col
-)
-select col, 'below' as value, count(*) as n, min(id, 5) as examples, cast(min(x) as varchar) as detail
-from judged
-where x < minimum
-group by col
+-- out-of-bounds: numeric values below the declared minimum ($minimum[i]) or above the declared
+-- maximum ($maximum[i]); value is 'below' or 'above', detail the most extreme value found.
+-- A missing bound is passed as -inf / +inf.
+{% for c in columns -%}
+select
+    $names[{{ loop.index }}] as col,
+    'below' as value,
+    count(*) as n,
+    min(wb_text({{ id|ident }}), 5) as examples,
+    cast(min(wb_number({{ c|ident }})) as varchar) as detail
+from {{ raw|ident }}
+where wb_number({{ c|ident }}) < $minimum[{{ loop.index }}]
+having count(*) > 0
 union all
-select col, 'above' as value, count(*) as n, min(id, 5) as examples, cast(max(x) as varchar) as detail
-from judged
-where x > maximum
-group by col
+select
+    $names[{{ loop.index }}] as col,
+    'above' as value,
+    count(*) as n,
+    min(wb_text({{ id|ident }}), 5) as examples,
+    cast(max(wb_number({{ c|ident }})) as varchar) as detail
+from {{ raw|ident }}
+where wb_number({{ c|ident }}) > $maximum[{{ loop.index }}]
+having count(*) > 0
+{% if not loop.last %}union all
+{% endif %}
+{%- endfor %}
 order by col, value

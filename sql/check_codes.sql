@@ -1,21 +1,17 @@
--- code-outside-codebook: single/scale values that are not valid codes (integer-coded columns
--- compare in integer form, '3.0' = '3'; their non-numbers are left to check_not_numeric).
-with long as (
-    from (
-        select {{ id|ident }} as "__wavebook_id"{% for c in columns %}, {{ c|ident }}{% endfor %}
-        from {{ raw|ident }}
-    ) unpivot (val for col in ({% for c in columns %}{{ c|ident }}{% if not loop.last %}, {% endif %}{% endfor %}))
-),
-coded as (
+-- code-outside-codebook: single/scale values that are not valid codes. Integer-coded columns
+-- compare in integer form ('3.0' = '3'; their non-numbers are check_codes_not_numeric's);
+-- string codes compare trimmed. spellings: the raw values behind each code, to find examples.
+with coded as (
     select
-        l."__wavebook_id" as id,
-        l.col,
-        case when k.int_coded then wb_code(l.val) else l.val end as code
-    from long as l
-    join wb_columns as k on k.col = l.col
-    where not (k.int_coded and wb_number(l.val) is null)
+        v.col,
+        case when k.int_coded then wb_code(v.val) else wb_text(v.val) end as code,
+        v.val,
+        v.n
+    from wb_values as v
+    join wb_columns as k on k.col = v.col
+    where not k.is_item and not (k.int_coded and wb_number(v.val) is null) and wb_text(v.val) is not null
 )
-select c.col, c.code as value, count(*) as n, min(c.id, 5) as examples, null as detail
+select c.col, c.code as value, cast(sum(c.n) as bigint) as n, [] as examples, null as detail, list(c.val) as spellings
 from coded as c
 anti join wb_allowed as a on a.col = c.col and a.code = c.code
 group by c.col, c.code

@@ -1,12 +1,15 @@
 -- missing-design-value: empty strata, PSU, base weight or selection probability.
-with long as (
-    from (
-        select {{ id|ident }} as "__wavebook_id"{% for c in columns %}, {{ c|ident }}{% endfor %}
-        from {{ raw|ident }}
-    ) unpivot include nulls (val for col in ({% for c in columns %}{{ c|ident }}{% if not loop.last %}, {% endif %}{% endfor %}))
-)
-select col, null as value, count(*) as n, min("__wavebook_id", 5) as examples, null as detail
-from long
-where val is null
-group by col
+{% for c in columns -%}
+select
+    $names[{{ loop.index }}] as col,
+    null as value,
+    count(*) as n,
+    min(wb_text({{ id|ident }}), 5) as examples,
+    null as detail
+from {{ raw|ident }}
+where wb_text({{ c|ident }}) is null
+having count(*) > 0
+{% if not loop.last %}union all
+{% endif %}
+{%- endfor %}
 order by col

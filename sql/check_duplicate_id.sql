@@ -1,8 +1,8 @@
 -- duplicate-id: respondent ids on more than one row; n counts the rows, detail the distinct ids.
 with repeated as (
-    select {{ id|ident }} as id, count(*) as n
+    select wb_text({{ id|ident }}) as id, count(*) as n
     from {{ raw|ident }}
-    where {{ id|ident }} is not null
+    where wb_text({{ id|ident }}) is not null
     group by all
     having count(*) > 1
 )

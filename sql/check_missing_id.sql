@@ -3,8 +3,8 @@ select
     $column as col,
     null as value,
     count(*) as n,
-    min("__wavebook_row", 5) as examples,
+    min(rowid + 1, 5) as examples,
     null as detail
 from {{ raw|ident }}
-where {{ id|ident }} is null
+where wb_text({{ id|ident }}) is null
 having count(*) > 0

@@ -2,8 +2,8 @@
 -- than design.population says it holds. value = stratum code, n = units sampled, detail = population.
 with sampled as (
     select
-        {% if not strata %}null{% elif int_keys %}wb_code({{ strata|ident }}){% else %}{{ strata|ident }}{% endif %} as stratum,
-        count(distinct {{ unit|ident }}) as units
+        {% if not strata %}null{% elif int_keys %}wb_code(wb_text({{ strata|ident }})){% else %}wb_text({{ strata|ident }}){% endif %} as stratum,
+        count(distinct wb_text({{ unit|ident }})) as units
     from {{ raw|ident }}
     group by all
 )

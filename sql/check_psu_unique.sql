@@ -1,17 +1,17 @@
 -- psu-in-several-strata: with psu_ids = "unique", a PSU id must belong to one stratum only.
 with spread as (
-    select {{ psu|ident }} as psu
+    select wb_text({{ psu|ident }}) as psu
     from {{ raw|ident }}
-    where {{ psu|ident }} is not null and {{ strata|ident }} is not null
+    where wb_text({{ psu|ident }}) is not null and wb_text({{ strata|ident }}) is not null
     group by all
-    having count(distinct {{ strata|ident }}) > 1
+    having count(distinct wb_text({{ strata|ident }})) > 1
 )
 select
     $column as col,
     min(s.psu) as value,
     count(*) as n,
-    min(r.{{ id|ident }}, 5) as examples,
+    min(wb_text(r.{{ id|ident }}), 5) as examples,
     cast(count(distinct s.psu) as varchar) as detail
 from {{ raw|ident }} as r
-join spread as s on s.psu = r.{{ psu|ident }}
+join spread as s on s.psu = wb_text(r.{{ psu|ident }})
 having count(*) > 0

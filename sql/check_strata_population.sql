@@ -6,9 +6,11 @@ select
     min(r.id, 5) as examples,
     null as detail
 from (
-    select {% if int_keys %}wb_code({{ strata|ident }}){% else %}{{ strata|ident }}{% endif %} as stratum, {{ id|ident }} as id
+    select
+        {% if int_keys %}wb_code(wb_text({{ strata|ident }})){% else %}wb_text({{ strata|ident }}){% endif %} as stratum,
+        wb_text({{ id|ident }}) as id
     from {{ raw|ident }}
-    where {{ strata|ident }} is not null
+    where wb_text({{ strata|ident }}) is not null
 ) as r
 anti join wb_strata as p on p.code = r.stratum
 group by r.stratum

@@ -1,10 +1,12 @@
 -- One row per non-empty column of a raw table, for drafting a spec: counts, numeric shape and,
--- when there are at most $max_codes distinct values, the distinct values as found.
+-- when there are at most $max_codes distinct values, the distinct (trimmed) values.
 with long as (
+    select col, wb_text(val) as val
     from (
         select {% for c in columns %}{{ c|ident }}{% if not loop.last %}, {% endif %}{% endfor %}
         from {{ raw|ident }}
     ) unpivot (val for col in ({% for c in columns %}{{ c|ident }}{% if not loop.last %}, {% endif %}{% endfor %}))
+    where wb_text(val) is not null
 )
 select
     col,

@@ -1,11 +1,10 @@
-{#- Macro shared by the load_* files: every source column as trimmed text, empty -> NULL.
-    Whole floats become integer text ('3.0' -> '3') so CSV, Parquet and SPSS stage the same codes.
+{#- Macro shared by the load_* files for typed sources: every column as text. Whole floats become
+    integer text ('3.0' -> '3') so CSV, Parquet and SPSS stage the same codes; NaN becomes NULL.
     columns: list of {name, kind} with kind "text", "float" or "other". -#}
 {% macro text_columns(columns) -%}
-    row_number() over () as "__wavebook_row"
-    {%- for c in columns %},
+    {%- for c in columns %}
     {% if c.kind == "text" -%}
-    nullif(trim({{ c.name|ident }}), '')
+    {{ c.name|ident }}
     {%- elif c.kind == "float" -%}
     case
         when {{ c.name|ident }} is null or isnan({{ c.name|ident }}) then null
@@ -15,6 +14,6 @@
     end
     {%- else -%}
     cast({{ c.name|ident }} as varchar)
-    {%- endif %} as {{ c.name|ident }}
+    {%- endif %} as {{ c.name|ident }}{% if not loop.last %},{% endif %}
     {%- endfor %}
 {%- endmacro %}

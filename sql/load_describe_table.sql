@@ -1,0 +1,2 @@
+-- Column names and types of a (temp) table.
+describe {{ table|ident }}
