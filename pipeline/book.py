@@ -49,6 +49,11 @@ REQUIRED_COLUMNS = (
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
 PERCENT_KINDS = ("category", "net", "item", "missing")
 ESTIMATED_STATISTICS = ("mean", "median")
+SET_BY_WEIGHTING = "set by weighting"
+SET_BY_WEIGHTING_NOTE = (
+    "Percentages marked 'set by weighting' equal the population figures the weights were "
+    "calibrated to; they carry no sampling error of their own."
+)
 
 
 @dataclass(frozen=True)
@@ -261,6 +266,8 @@ def _section(
         row_cells = tuple(_cell(by_key.get((order, w.id)), weighted=weighted) for w in waves)
         rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
     notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
+    if any(c.interval == SET_BY_WEIGHTING for r in rows for c in r.cells):
+        notes += (SET_BY_WEIGHTING_NOTE,)
     slug = re.sub(r"[^a-z0-9]+", "-", variable.name.lower()).strip("-")
     return Section(
         anchor=f"v{index + 1}-{slug}" if slug else f"v{index + 1}",
@@ -282,6 +289,11 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if kind == "base":
         return Cell(text=f"{row['count']:,}")
     if weighted and row.get("estimate") is not None:
+        if kind == "missing":
+            return Cell(text=_percent_text(row["estimate"]), detail=f"{row['count']:,}", base_flag=flag)
+        if kind in PERCENT_KINDS and row.get("set_by_weighting"):
+            text = _percent_text(row["estimate"])
+            return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=SET_BY_WEIGHTING)
         if kind in PERCENT_KINDS:
             interval = f"{_whole(row['ci_low'])}–{_whole(row['ci_high'])}" if row["ci_low"] is not None else None
             text = _percent_text(row["estimate"])

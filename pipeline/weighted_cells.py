@@ -10,6 +10,11 @@ the fitted weighting recipe of each wave and the `[variance]` options, and retur
   statistic "mean": the weighted mean of the answers (codes excluded from the mean left out);
   statistic "median": the weighted median with its Woodruff (1952) interval.
 
+A percentage of a variable the weighting calibrates to population figures (a raking margin, a
+post-stratification cell) is set by the weighting: its standard error is 0 up to the raking
+tolerance. Such rows are flagged `set_by_weighting` (no interval, no design effect) rather than
+shown with a spurious zero-width interval.
+
 Every estimate of a wave comes from ONE call of `pipeline.estimation.estimate_table` on that
 wave's rows: one grouped pass over respondents, the full design kept (rows outside a base get
 a_i = 0, they are never dropped before the variance), the weighting recipe's classes passed in so
@@ -44,11 +49,17 @@ ESTIMATE_SCHEMA: dict[str, pl.DataType] = {
     "n_eff": pl.Float64(),
     "df": pl.Float64(),
     "weighted_base": pl.Float64(),
+    "set_by_weighting": pl.Boolean(),
 }
 _WEIGHT = "__base_weight"
 _CLASS = "__class"
 _FINAL = "__final_weight"
 PERCENT_KINDS = ("category", "net", "item", "missing")
+# A percentage of a weighting variable whose standard error (on the 0-1 scale) is below this is
+# a figure the weighting sets to its population target: calibration residuals are then exactly 0
+# (Taylor) or replicate raking meets the target to its tolerance (1e-6 by default), while any
+# sampling error of a real percentage is orders of magnitude larger.
+SET_BY_WEIGHTING_SE = 1e-5
 
 
 def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, str, pl.Expr | None, pl.Expr]]:
@@ -182,6 +193,13 @@ def wave_estimates(
             est[percent], se[percent], table["n"].to_numpy()[percent], df[percent], level=options.level
         )
         low[percent], high[percent] = kg_low, kg_high
+    weighting_vars = set(recipe.class_frame.columns)
+    in_margin = np.array([meaning[v][0] in weighting_vars for v in table["variable"]])
+    with np.errstate(invalid="ignore"):
+        fixed = percent & in_margin & (se < SET_BY_WEIGHTING_SE) & (est > 0) & (est < 1)
+    se[fixed], low[fixed], high[fixed] = 0.0, est[fixed], est[fixed]
+    deff = table["deff"].to_numpy().astype(float)
+    deff[fixed] = np.nan
     scale = np.where(percent, 100.0, 1.0)
     return pl.DataFrame(
         {
@@ -192,10 +210,11 @@ def wave_estimates(
             "se": se * scale,
             "ci_low": low * scale,
             "ci_high": high * scale,
-            "deff": table["deff"].to_numpy().astype(float),
+            "deff": deff,
             "n_eff": table["n_eff"].to_numpy().astype(float),
             "df": df,
             "weighted_base": [weighted_base[v] for v in table["variable"]],
+            "set_by_weighting": fixed,
         },
         schema=ESTIMATE_SCHEMA,
     ).with_columns(pl.col(c).fill_nan(None) for c in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff"))

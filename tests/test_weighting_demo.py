@@ -1,12 +1,11 @@
 """The demo study's weighting: base weights from the design, raking, trimming; estimates move towards the truth.
 
-The [[weighting]] steps below are the ones proposed for sample_data/study.toml; the test parses
-them with `parse_steps` against the demo spec and reads the wave files with polars.
+The test parses the [[weighting]] steps of sample_data/study.toml with `parse_steps` and reads
+the wave files with polars.
 """
 
 from __future__ import annotations
 
-import tomllib
 from pathlib import Path
 
 import numpy as np
@@ -20,20 +19,6 @@ from pipeline.weighting.steps import code_order, parse_steps
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_data"
 
-DEMO_WEIGHTING = """
-[[weighting]]
-step = "rake"
-margins = ["age_band x sex", "region", "education", "urban_rural"]
-targets = "population_margins.csv"
-tolerance = 1e-8
-max_iterations = 200
-
-[[weighting]]
-step = "trim"
-upper = 4.0
-lower = 0.25
-relative_to = "mean"
-"""
 
 # measures whose answers the generator makes depend on age and education (see generate_demo.py docstring)
 AGE_EDUCATION_ITEMS = ("aware_tarnwick", "aware_quendle", "aware_halvorn")
@@ -50,7 +35,8 @@ def weighted() -> dict[str, tuple[pl.DataFrame, np.ndarray]]:
     if not (SAMPLE / "study.toml").is_file():
         pytest.skip("sample_data/study.toml is absent")
     study = load_spec(SAMPLE / "study.toml")
-    steps = parse_steps(tuple(tomllib.loads(DEMO_WEIGHTING)["weighting"]), study)
+    assert study.weighting, "the demo spec declares its weighting"
+    steps = parse_steps(study.weighting, study)
     out = {}
     for wave in study.waves:
         data = _wave(study, wave.id)
