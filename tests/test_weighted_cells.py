@@ -11,7 +11,7 @@ from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.stage import stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import wave_estimates
-from pipeline.weighting import fit_recipe
+from pipeline.weighting import fit_recipe, parse_steps
 from pipeline.weighting.base import design_base_weights
 
 
@@ -138,3 +138,69 @@ def test_variance_table_problems_name_the_key():
     assert "variance.replicates" in messages
     assert "variance.colour: unknown key" in messages
     assert "variance.level" in messages
+
+
+def test_percentages_of_a_raking_margin_are_flagged_as_set_by_weighting(wave):
+    """Raking to region shares makes the region percentages equal their targets exactly (the
+    calibration equations), so they carry no sampling error; other variables keep theirs."""
+    study, responses, layout, _ = wave
+    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study)
+    base, _ = design_base_weights(responses, study)
+    recipe = fit_recipe(responses, steps, base_weights=base)
+    est = wave_estimates(responses, study, recipe, layout, VarianceOptions(), wave="W1")
+    cells = layout.join(est, on=["wave", "variable", "row_order"], how="left")
+    region = _row(cells, "region", "Northmoor")
+    assert region["estimate"] == pytest.approx(55.0, rel=1e-6)  # the target (calibration identity)
+    assert region["set_by_weighting"] is True
+    assert region["se"] == 0.0 and region["deff"] is None
+    channel = _row(cells, "channel", "In a shop")
+    assert channel["set_by_weighting"] is False
+    assert channel["se"] > 0.5  # percentage points: a real sampling error with 120 respondents
+
+
+def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
+    from html.parser import HTMLParser
+
+    from pipeline.book import build_context, render_book
+    from pipeline.book_weighting import variance_lines, weighting_section
+    from pipeline.weighting.store import build_report
+
+    study, responses, layout, _ = wave
+    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study)
+    base, _ = design_base_weights(responses, study)
+    recipe = fit_recipe(responses, steps, base_weights=base)
+    report = build_report(recipe, wave="W1", n_input=responses.height)
+    cells = layout.join(
+        wave_estimates(responses, study, recipe, layout, VarianceOptions(), wave="W1"),
+        on=["wave", "variable", "row_order"],
+        how="left",
+    )
+    section = weighting_section(study, {"W1": report})
+    assert [m.category for m in section.margins] == ["Northmoor", "Eastvale"]  # codebook labels, not codes
+    assert section.margins[0].target == "55.0%"
+    assert section.waves[0].deff == f"{report.final.deff:.2f}"
+    lines = variance_lines(VarianceOptions(), study, calibrated=True)
+    context = build_context(study, cells, weighting=section, variance=lines)
+    assert context.weighting is section
+    assert any("residuals of the calibration" in p for p in context.methodology)
+    book = render_book(study, cells, out_path=tmp_path / "book.html", weighting=section, variance=lines)
+
+    class Collect(HTMLParser):
+        def __init__(self) -> None:
+            super().__init__()
+            self.ids: list[str] = []
+            self.text: list[str] = []
+
+        def handle_starttag(self, tag, attrs):
+            if dict(attrs).get("id"):
+                self.ids.append(dict(attrs)["id"])
+
+        def handle_data(self, data):
+            self.text.append(data)
+
+    parser = Collect()
+    parser.feed(book.read_text(encoding="utf-8"))
+    assert "weighting" in parser.ids
+    text = " ".join(parser.text)
+    assert "set by weighting" in text
+    assert not any(rid in text for rid in responses["respondent_id"].to_list())  # no respondent ids
