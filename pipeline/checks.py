@@ -1,8 +1,13 @@
 """Staging checks: every rule a raw wave file must pass, run in SQL, every problem collected.
 
-Each rule is one query in `sql/check_<rule>.sql` over the raw text table (see pipeline.readers)
-returning rows of (col, value, n, examples, detail); this module turns them into `Problem`s
-with readable messages. Errors stop staging; warnings are printed and recorded.
+Each rule is one query in `sql/check_*.sql` returning rows of (col, value, n, examples, detail);
+this module turns them into `Problem`s with readable messages. Errors stop staging; warnings are
+printed and recorded. Speed: the per-respondent work is a few grouped passes over the raw text
+table (see pipeline.readers). The coded columns are counted once per distinct value
+(`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items, integer codes) and the
+drift rules then work on that small table, and example ids are looked up in one more pass
+(`check_examples.sql`) only when a rule found something. Numeric and design columns are checked
+with one filtered pass per column, all in one query per rule.
 
 Rules (severity): missing-column (error), extra-column (warning), empty-file (error),
 missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
@@ -20,6 +25,7 @@ from dataclasses import dataclass, replace
 import duckdb
 import polars as pl
 
+from pipeline.database import table_columns
 from pipeline.errors import Problem
 from pipeline.spec import Study, Variable
 from pipeline.sqlfiles import sql
@@ -223,7 +229,10 @@ class _Context:
                 {"names": columns},
             ).fetchall()
         )
-        return [(col, value, n, sorted(found.get(key, []))[:5], detail) for key, (col, value, n, _, detail, _) in enumerate(rows)]
+        return [
+            (col, value, n, sorted(found.get(key, []))[:5], detail)
+            for key, (col, value, n, _, detail, _) in enumerate(rows)
+        ]
 
     def problem(self, rule: _Rule, row: Row) -> Problem:
         col, value, n, examples, _ = row
@@ -272,7 +281,9 @@ class _Context:
                 ),
                 "check_codes.sql",
             )
-        not_a_number = _Rule("not-a-number", "error", lambda r: f"'{r[1]}' is not a number; {self.role(r[0])} holds numbers")
+        not_a_number = _Rule(
+            "not-a-number", "error", lambda r: f"'{r[1]}' is not a number; {self.role(r[0])} holds numbers"
+        )
         if cols.int_codes:
             found += self.run(not_a_number, "check_codes_not_numeric.sql")
         numbers = _unique([*cols.numbers, *cols.weights])
@@ -388,7 +399,7 @@ class _Context:
 
     def drift_problems(self, previous: list[str]) -> list[Problem]:
         """Warnings where this wave's codes differ from the earlier staged waves (`previous`, spec order)."""
-        staged = set(_table_columns(self.con, "responses"))
+        staged = set(table_columns(self.con, "responses"))
         columns = [c for c in self.columns.valued if c in staged]
         if not columns:
             return []
@@ -400,8 +411,8 @@ class _Context:
                 _Rule(
                     "code-gone",
                     "warning",
-                    lambda r: f"code '{r[1]}' was answered in earlier waves ({r[2]} row{'s' if r[2] != 1 else ''}, last in {r[4]}) "
-                    "but by nobody in this wave; check the questionnaire routing or the coding",
+                    lambda r: f"code '{r[1]}' was answered in earlier waves ({r[2]} row{'s' if r[2] != 1 else ''}, "
+                    f"last in {r[4]}) but by nobody in this wave; check the questionnaire routing or the coding",
                     counts_rows=False,
                 ),
                 "check_drift_gone.sql",
@@ -456,12 +467,9 @@ class _Context:
         return col
 
 
-def _table_columns(con: duckdb.DuckDBPyConnection, table: str) -> list[str]:
-    return [r[0] for r in con.execute(sql("schema_columns.sql"), {"table": table}).fetchall()]
-
-
 def _capped(problems: list[Problem]) -> list[Problem]:
-    """At most MAX_PROBLEMS_PER_COLUMN problems per (rule, column), the most frequent first; one summary for the rest."""
+    """At most MAX_PROBLEMS_PER_COLUMN problems per (rule, column), the most frequent first,
+    and one summary problem for the rest."""
     by_column: dict[tuple[str, str | None], list[Problem]] = {}
     for p in problems:
         by_column.setdefault((p.rule, p.column), []).append(p)

@@ -61,11 +61,23 @@ def open_database(study: Study, *, read_only: bool = False) -> duckdb.DuckDBPyCo
     path = study.database_path
     if read_only and not path.is_file():
         raise FileNotFoundError(f"no study database at {path}; stage a wave first (wavebook stage {study.path})")
-    con = duckdb.connect(str(path), read_only=read_only)
+    con = connect(path, read_only=read_only)
     prepare_connection(con)
     if not read_only:
         create_tables(con, study)
     return con
+
+
+def connect(path: Path, *, read_only: bool = False) -> duckdb.DuckDBPyConnection:
+    """A DuckDB connection to the study database file; DataError (rule database-busy) when another
+    process holds it (DuckDB allows one writing process per file)."""
+    try:
+        return duckdb.connect(str(path), read_only=read_only)
+    except duckdb.IOException as exc:
+        raise DataError(
+            f"cannot open the study database {path}",
+            [Problem("database-busy", f"another program is using the database ({exc}); close it and retry", file=str(path))],
+        ) from None
 
 
 def create_tables(con: duckdb.DuckDBPyConnection, study: Study) -> None:

@@ -21,6 +21,7 @@ from pipeline.checks import run_checks
 from pipeline.database import (
     add_new_columns,
     column_types,
+    connect,
     create_tables,
     open_database,
     staged_waves,
@@ -94,7 +95,7 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     wave = study.wave(wave_id)
     path = study.database_path
     created = not path.exists()
-    con = duckdb.connect(str(path))
+    con = connect(path)
     try:
         prepare_connection(con)
         _, problems = _inspect(con, study, wave, quiet=quiet)
