@@ -233,10 +233,29 @@ def test_jackknife_and_bootstrap_refuse_single_psu_strata():
         assert err.value.problems[0].examples == ("B", "D")
 
 
+@pytest.mark.parametrize("method", ["jkn", "bootstrap"])
+def test_certainty_policy_gives_lone_psus_no_variance(method):
+    frame = design_frame([[3, 2, 4], [5], [2, 2], [4]], seed=6)
+    gt = totals_of(frame)
+    rf = make_replicates(method, gt.psu_stratum, single_psu="certainty", replicates=20_000, seed=2)
+    lone = np.isin(gt.psu_stratum, [1, 3])
+    # certainty: the lone PSUs keep factor 1 in every replicate
+    np.testing.assert_array_equal(rf.factors[:, lone], 1.0)
+    theta = gt.totals.sum(axis=0)[[0]]
+    v = replicate_variance(theta, replicate_totals(gt, rf)[:, [0]], rf)
+    multi = ~lone
+    expected = wr_variance(gt.psu_totals()[multi][:, [0]], gt.psu_stratum[multi])
+    # identity (jkn, exact) / Rao & Wu 1988 expectation (bootstrap, 20,000 replicates: about 1.5% MC error):
+    # the with-replacement variance over the strata with 2+ PSUs, lone strata contributing 0
+    np.testing.assert_allclose(v, expected, rtol=1e-10 if method == "jkn" else 0.06)
+    assert replicate_df(rf) == (3 + 2) - 2  # PSUs minus strata, over the strata with 2+ PSUs
+    assert any("certainty" in note for note in rf.notes)
+
+
 def test_bad_options_are_all_reported():
     with pytest.raises(SpecError) as err:
-        make_replicates("halfsample", np.array([0, 0]), fay=1.2, replicates=1)
-    assert len(err.value.problems) == 3
+        make_replicates("halfsample", np.array([0, 0]), fay=1.2, replicates=1, single_psu="centre")
+    assert len(err.value.problems) == 4
     with pytest.raises(SpecError, match="sampling fractions"):
         make_replicates("jkn", np.array([0, 0, 1, 1]), sampling_fraction=np.array([0.1]))
 

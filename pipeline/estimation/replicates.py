@@ -97,6 +97,7 @@ def make_replicates(
     sampling_fraction: np.ndarray | None = None,
     stratum_labels: Sequence[str] | None = None,
     centre: str = "full",
+    single_psu: str = "error",
 ) -> ReplicateFactors:
     """PSU-level replicate factors for `method` (formulas in the module docstring).
 
@@ -106,12 +107,16 @@ def make_replicates(
     seed: bootstrap random seed (None = 0, so runs reproduce).
     sampling_fraction: (H,) first-stage sampling fraction per stratum, for the jackknife FPC.
     stratum_labels: names of the strata, used in error messages.
+    single_psu: strata with one PSU under "jkn" and "bootstrap": "error" (default) or "certainty"
+    (the lone PSU keeps factor 1 in every replicate, so the stratum adds no variance, as a PSU
+    selected with certainty; jkn makes no replicate for it). Collapsing strata is done by passing
+    the collapsed `psu_stratum`.
 
     Raises SpecError for an unknown method or bad option, DataError listing every stratum that the
     method cannot handle (one PSU for the jackknife and bootstrap; not exactly two for BRR).
     """
     psu_stratum = np.asarray(psu_stratum, dtype=np.int64)
-    _check_options(method, fay=fay, replicates=replicates)
+    _check_options(method, fay=fay, replicates=replicates, single_psu=single_psu)
     n_strata = int(psu_stratum.max()) + 1 if len(psu_stratum) else 0
     n_h = np.bincount(psu_stratum, minlength=n_strata)
     labels = tuple(stratum_labels) if stratum_labels is not None else tuple(str(h) for h in range(n_strata))
@@ -125,13 +130,14 @@ def make_replicates(
     if method == "jk1":
         _require_psus(n_h.sum(keepdims=True), labels=("all strata",), at_least=2, method=method)
         return _jk1(psu_stratum, f_h, centre=centre, n_strata=n_strata)
+    certainty = single_psu == "certainty"
     if method == "jkn":
-        _require_psus(n_h, labels=labels, at_least=2, method=method)
+        _require_psus(n_h, labels=labels, at_least=1 if certainty else 2, method=method)
         return _jkn(psu_stratum, n_h, f_h, centre=centre)
     if method in ("brr", "fay"):
         _require_two(n_h, labels=labels)
         return _brr(psu_stratum, fay, f_h, centre=centre)
-    _require_psus(n_h, labels=labels, at_least=2, method=method)
+    _require_psus(n_h, labels=labels, at_least=1 if certainty else 2, method=method)
     return _bootstrap(
         psu_stratum,
         n_h,
@@ -142,8 +148,16 @@ def make_replicates(
     )
 
 
-def _check_options(method: str, *, fay: float, replicates: int | None) -> None:
+def _check_options(method: str, *, fay: float, replicates: int | None, single_psu: str) -> None:
     problems = []
+    if single_psu not in ("error", "certainty"):
+        problems.append(
+            Problem(
+                rule="bad-option",
+                message=f"single-PSU policy {single_psu!r} is not available with replicates: use 'error' or "
+                "'certainty', or collapse the strata first",
+            )
+        )
     if method not in METHODS:
         problems.append(
             Problem(rule="bad-option", message=f"unknown replicate method {method!r}; use one of {', '.join(METHODS)}")
@@ -237,20 +251,29 @@ def _jk1(psu_stratum: np.ndarray, f_h: np.ndarray, *, centre: str, n_strata: int
 
 
 def _jkn(psu_stratum: np.ndarray, n_h: np.ndarray, f_h: np.ndarray, *, centre: str) -> ReplicateFactors:
-    """Stratified delete-one-PSU jackknife (Rust & Rao 1996 section 3; Wolter 2007 section 4.5)."""
-    p = len(psu_stratum)
-    same = psu_stratum[:, None] == psu_stratum[None, :]
-    factors = np.where(same, (n_h / (n_h - 1))[psu_stratum][:, None], 1.0)
-    np.fill_diagonal(factors, 0.0)
-    nr = n_h[psu_stratum]
+    """Stratified delete-one-PSU jackknife (Rust & Rao 1996 section 3; Wolter 2007 section 4.5).
+
+    One replicate per PSU of every stratum with at least 2 PSUs (lone PSUs: certainty, factor 1).
+    """
+    deleted = np.flatnonzero(n_h[psu_stratum] >= 2)  # (R,) the PSU each replicate deletes
+    h = psu_stratum[deleted]
+    with np.errstate(divide="ignore"):
+        inflate = np.where(n_h >= 2, n_h / np.maximum(n_h - 1, 1), 1.0)
+    same = h[:, None] == psu_stratum[None, :]
+    factors = np.where(same, inflate[h][:, None], 1.0)
+    factors[np.arange(len(deleted)), deleted] = 0.0
+    nr = n_h[h]
+    sampled = n_h >= 2
+    lone = int((n_h == 1).sum())
     return ReplicateFactors(
         factors=factors,
         scale=1.0,
-        rscales=(nr - 1) / nr * (1.0 - f_h[psu_stratum]),
+        rscales=(nr - 1) / nr * (1.0 - f_h[h]),
         method="jkn",
         centre=centre,
-        df=p - len(n_h),
-        replicate_stratum=psu_stratum.copy(),
+        df=int(n_h[sampled].sum() - sampled.sum()),
+        replicate_stratum=h.copy(),
+        notes=(f"{lone} single-PSU strata treated as certainty (no variance contribution).",) if lone else (),
     )
 
 
@@ -298,16 +321,22 @@ def _bootstrap(
     drawn = order[start[draw_stratum] + np.floor(u * n_h[draw_stratum]).astype(np.int64)]
     flat = (np.arange(replicates)[:, None] * p + drawn).ravel()
     counts = np.bincount(flat, minlength=replicates * p).reshape(replicates, p)
-    factors = counts * (n_h / (n_h - 1))[psu_stratum][None, :]
+    lone = n_h == 1
+    inflate = np.where(lone, 0.0, n_h / np.maximum(n_h - 1, 1))
+    factors = counts * inflate[psu_stratum][None, :] + lone[psu_stratum][None, :]  # lone PSUs: factor 1
+    sampled = ~lone
+    notes = _fpc_note("bootstrap", f_h)
+    if lone.any():
+        notes += (f"{int(lone.sum())} single-PSU strata treated as certainty (no variance contribution).",)
     return ReplicateFactors(
         factors=factors,
         scale=1.0 / replicates,
         rscales=np.ones(replicates),
         method="bootstrap",
         centre=centre,
-        df=p - n_strata,
+        df=int(n_h[sampled].sum() - sampled.sum()),
         replicate_stratum=np.zeros(replicates, dtype=np.int64),
-        notes=_fpc_note("bootstrap", f_h),
+        notes=notes,
     )
 
 
