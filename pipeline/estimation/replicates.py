@@ -8,7 +8,9 @@ is a_r(j) * f_r(c) and all replicate totals of all cells are matrix products on 
 (../shared/DESIGN.md). The variance formulas that go with each method are in
 `pipeline.estimation.replicate_variance`.
 
-Methods (Wolter 2007, Introduction to Variance Estimation, 2nd ed., chapters 3-5):
+Methods (Wolter 2007, Introduction to Variance Estimation, 2nd ed., chapters 3-5; journal,
+volume, page and equation numbers below are from memory; every multiplier is also checked by an
+identity or an expectation in tests/test_replicates.py):
   jk1        delete one PSU, strata ignored: R = P, factor P/(P-1) on the other PSUs, 0 on the
              deleted one; variance multiplier (P-1)/P (Wolter section 4.2, from memory).
   jkn        stratified delete-one-PSU jackknife: R = P, factor n_h/(n_h-1) on the other PSUs of
@@ -23,7 +25,9 @@ Methods (Wolter 2007, Introduction to Variance Estimation, 2nd ed., chapters 3-5
   bootstrap  Rao-Wu rescaling bootstrap with m_h = n_h - 1 PSUs drawn with replacement in each
              stratum: factor (n_h / (n_h - 1)) * multiplicity (Rao & Wu 1988, JASA 83:231-241,
              eq. 4.1 with m_h = n_h - 1; Rao, Wu & Yue 1992, Survey Methodology 18:209-217,
-             section 2); multiplier 1/R.
+             section 2); multiplier 1/R. For a linear total the bootstrap expectation of the
+             variance is then sum_h n_h/(n_h-1) sum_j (z_hj - zbar_h)^2, the with-replacement
+             formula (multinomial moments; checked by simulation in the tests).
   supplied   replicate-weight columns shipped with the data, with their declared method and
              scale (`supplied_factors`): successive-difference replication uses 4/R
              (Fay & Train 1995, Proc. ASA Section on Government Statistics 154-159; ACS PUMS
