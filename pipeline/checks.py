@@ -35,6 +35,12 @@ from pipeline.sqlfiles import sql
 # practice, no source; large enough that sampling noise at tracker sizes (n >= 300: SE of a
 # share <= 2.9 points) almost never triggers it, small enough to catch a recoded question.
 DRIFT_SHARE_THRESHOLD = 0.15
+# A code that disappears (code-gone) or first appears (code-new) is reported only when its share
+# of the answers was (is) at least 1%. The chance that a code chosen by a share p of the
+# population is missed by all n respondents is (1 - p)^n: at p = 1% that is 0.7% for n = 500 and
+# 3e-7 for n = 1,500, so the warning means a real change; rarer codes come and go by chance
+# (threshold: common practice, no source; the probability is the binomial identity).
+DRIFT_CODE_MIN_SHARE = 0.01
 # At most this many problems per rule and column; the rest are summarised in one more problem.
 MAX_PROBLEMS_PER_COLUMN = 10
 
@@ -416,7 +422,7 @@ class _Context:
                     counts_rows=False,
                 ),
                 "check_drift_gone.sql",
-                {"waves": previous},
+                {"waves": previous, "min_share": DRIFT_CODE_MIN_SHARE},
             ),
             *self.run(
                 _Rule(
@@ -426,6 +432,7 @@ class _Context:
                     f"{', '.join(previous)})",
                 ),
                 "check_drift_new.sql",
+                {"min_share": DRIFT_CODE_MIN_SHARE},
             ),
             *self.run(
                 _Rule(

@@ -14,7 +14,7 @@ from __future__ import annotations
 import datetime as dt
 import re
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Literal
 
@@ -198,9 +198,10 @@ def load_spec(path: str | Path) -> Study:
     Every problem is collected and raised together as one `SpecError`; each `Problem` names the
     dotted key (`variables.satisfaction.exclude_from_mean`) and has one of the rules
     toml-syntax, missing-file, unknown-key, missing-key, wrong-type, bad-value, key-not-for-type,
-    conflicting-keys, undeclared-code, duplicate-column. Wave files are resolved against the
-    spec's folder but not opened (staging checks them). `[[weighting]]` items and `[variance]` are
-    only checked to be an array of tables and a table; their own modules validate their insides.
+    conflicting-keys, undeclared-code, duplicate-column, reserved-name. Wave files are resolved
+    against the spec's folder but not opened (staging checks them). The insides of `[variance]`
+    and `[[weighting]]` are validated by their own modules (`pipeline.estimation.options.
+    parse_variance`, `pipeline.weighting.steps.parse_steps`) and their problems join the list.
     """
     spec_path = Path(path).resolve()
     try:
@@ -221,11 +222,35 @@ def load_spec(path: str | Path) -> Study:
         raise SpecError(f"the study spec {spec_path} is not valid TOML", [_syntax_problem(spec_path, exc)]) from None
     checker = _Checker(str(spec_path))
     study = checker.study(data, spec_path)
-    if checker.problems:
-        n = len(checker.problems)
-        raise SpecError(f"the study spec {spec_path} has {n} problem{'s' if n != 1 else ''}", checker.problems)
-    assert study is not None
+    problems = checker.problems + [
+        p if p.file else replace(p, file=str(spec_path)) for p in _section_problems(study, data)
+    ]
+    if problems or study is None:
+        n = len(problems)
+        raise SpecError(f"the study spec {spec_path} has {n} problem{'s' if n != 1 else ''}", problems)
     return study
+
+
+def _section_problems(study: Study | None, data: dict) -> list[Problem]:
+    """Problems inside `[variance]` and `[[weighting]]`, found by the modules that own them.
+
+    `[variance]` is checked whenever it is a table; the weighting steps need a valid Study (they
+    name codebook variables and read their targets files), so they are checked once the rest of
+    the spec is valid.
+    """
+    from pipeline.estimation.options import parse_variance
+    from pipeline.weighting.steps import parse_steps
+
+    problems: list[Problem] = []
+    variance = data.get("variance", {})
+    if isinstance(variance, dict):
+        problems += parse_variance(variance)[1]
+    if study is not None:
+        try:
+            parse_steps(study.weighting, study)
+        except SpecError as exc:
+            problems += exc.problems
+    return problems
 
 
 def _syntax_problem(spec_path: Path, exc: tomllib.TOMLDecodeError) -> Problem:

@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from conftest import TRACKER_COLUMNS, TRACKER_SPEC, Tracker, tracker_rows
-from pipeline.checks import DRIFT_SHARE_THRESHOLD, MAX_PROBLEMS_PER_COLUMN
+from pipeline.checks import DRIFT_CODE_MIN_SHARE, DRIFT_SHARE_THRESHOLD, MAX_PROBLEMS_PER_COLUMN
 from pipeline.cli import main
 from pipeline.errors import Problem
 from pipeline.stage import check_wave, stage_wave
@@ -284,3 +284,19 @@ def test_check_command_prints_every_problem_and_fails(tracker: Tracker, capsys: 
     assert out.strip().endswith("W1: 2 errors, 0 warnings")
     assert not tracker.study().database_path.exists()  # check writes nothing
     assert main(["check", str(tracker.spec_path), "--wave", "W2"]) == 0
+
+
+def test_rare_codes_coming_and_going_are_not_drift(tracker: Tracker) -> None:
+    study = tracker.study()
+    rows = tracker_rows(300, prefix="a")
+    for row in rows:
+        row["satisfaction"] = "5" if row["satisfaction"] == "8" else row["satisfaction"]
+    rows[0]["satisfaction"] = "8"  # 1 of 300 = 0.3% < DRIFT_CODE_MIN_SHARE
+    tracker.write_wave("wave1.csv", rows)
+    stage_wave(study, "W1", quiet=True)
+    later = tracker_rows(300, prefix="b")
+    later[0]["satisfaction"] = "3"  # new, but 0.3% of the answers
+    tracker.write_wave("wave2.csv", later)
+    found = {(p.rule, p.value) for p in check_wave(study, "W2")}
+    assert ("code-gone", "8") not in found and ("code-new", "3") not in found
+    assert DRIFT_CODE_MIN_SHARE == pytest.approx(0.01)

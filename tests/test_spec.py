@@ -68,12 +68,22 @@ def test_database_path_is_relative_to_the_spec(tmp_path: Path) -> None:
 
 
 def test_weighting_and_variance_are_kept_raw(tmp_path: Path) -> None:
-    text = TRACKER_SPEC + '\n[variance]\nmethod = "anything"\n\n[[weighting]]\nstep = "rake"\nodd_key = 3\n'
+    text = TRACKER_SPEC + '\n[variance]\nmethod = "jk1"\n\n[[weighting]]\nstep = "trim"\nupper = 4.0\n'
     path = tmp_path / "study.toml"
     path.write_text(text, encoding="utf-8")
     study = load_spec(path)
-    assert study.weighting == ({"step": "rake", "odd_key": 3},)
-    assert study.variance == {"method": "anything"}
+    assert study.weighting == ({"step": "trim", "upper": 4.0},)
+    assert study.variance == {"method": "jk1"}
+
+
+def test_section_problems_join_the_spec_problems(tmp_path: Path) -> None:
+    """[variance] and [[weighting]] are validated by their own modules, in the same run."""
+    text = TRACKER_SPEC + '\n[variance]\nmethod = "guess"\n\n[[weighting]]\nstep = "trim"\nuppper = 4.0\n'
+    rules = sorted(p.rule for p in problems_of(tmp_path, text))
+    assert "variance-option" in rules and "spec-weighting" in rules
+    broken_base = text.replace('title = "Riverbend Kettle Tracker"', "title = 3")
+    rules = sorted(p.rule for p in problems_of(tmp_path, broken_base))
+    assert "wrong-type" in rules and "variance-option" in rules  # weighting waits for a valid base spec
 
 
 def test_toml_syntax_error_names_file_and_line(tmp_path: Path) -> None:
