@@ -27,6 +27,7 @@ from pipeline.sqlfiles import sql
 MAX_SINGLE_CODES = 20  # a column with more distinct values is drafted as numeric (or left out if text)
 _RAW = "__wavebook_draft"
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
+_RESERVED = ("wave", "respondent_id")  # column names of the study database's responses table
 _ID_NAMES = ("id", "resp_id", "respondent_id", "respid", "serial", "record")
 _WEIGHT_NAME = re.compile(r"(^|_)(wt|weight|wgt)(_|$)|weight", re.IGNORECASE)
 _PROBABILITY_NAME = re.compile(r"(^|_)(p|prob|pi)(_|$)|probab", re.IGNORECASE)
@@ -152,10 +153,16 @@ class _Writer:
                 lines += self.multi(name, multi[name])
                 done.update(multi[name])
                 continue
-            block = self.variable(column)
+            block = None if column in _RESERVED else self.variable(column)
             if block is None:
                 profile = self.profiles.get(column)
-                why = "always empty" if profile is None else f"text with {profile.distinct:,} distinct values"
+                why = (
+                    "a name wavebook reserves for itself: rename the column to stage it"
+                    if column in _RESERVED
+                    else "always empty"
+                    if profile is None
+                    else f"text with {profile.distinct:,} distinct values"
+                )
                 skipped.append(f"#   {column}: {why}")
             else:
                 lines += block

@@ -141,3 +141,11 @@ def test_init_command_refuses_to_overwrite(tmp_path: Path, capsys: pytest.Captur
     assert main(["init", str(data), "--out", str(out), "--force", "--id", "resp_id"]) == 0
     assert main(["check", str(out)]) == 0
     assert list(tmp_path.glob(".study.toml.*")) == []  # no temp file left behind
+
+
+def test_reserved_column_names_are_left_out(tmp_path: Path) -> None:
+    rows = [{"id": str(i), "wave": "1", "score": str(i % 2)} for i in range(4)]
+    data = write_csv(tmp_path / "waves" / "a.csv", rows)
+    text = draft_spec(data, spec_path=tmp_path / "draft.toml")
+    assert "#   wave: a name wavebook reserves for itself" in text
+    assert set(draft_and_load(data).variables) == {"score"}

@@ -17,7 +17,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """Write the draft spec next to nothing else; refuse to overwrite without --force."""
+    """Write the draft spec to --out (temp file, then rename); refuse to overwrite without --force."""
     import os
     import tempfile
     from pathlib import Path
