@@ -4,7 +4,8 @@ Usage: python bench/bench_staging.py [--rows 1000000] [--folder DIR]
 
 Generates the wave and a matching spec in a temp folder (or DIR), then stages it as W1 twice
 (first load, then an atomic replace), stages the same file as W2 (so the drift checks compare
-1M rows with 1M staged rows) and checks W2 once, each in a fresh child process so that its
+1M rows with 1M staged rows), checks W2, and checks W3, a copy with about 1% bad values in 11
+columns (the error path: counts and example ids), each in a fresh child process so that its
 peak resident memory (ru_maxrss) is its own. DuckDB runs inside the process, so its memory is
 part of that figure. Prints figures only; nothing is asserted.
 """
@@ -53,6 +54,12 @@ def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
     )
     (folder / "waves").mkdir(parents=True, exist_ok=True)
     frame.write_csv(folder / "waves" / "wave1.csv")
+    # W3: the same rows with about 1% bad values in 10 coded columns and a numeric one (errors)
+    broken = pl.Series(rng.random(rows) < 0.01)
+    frame.with_columns(
+        *(pl.when(broken).then(pl.lit(7)).otherwise(pl.col(f"q{j:02d}")).alias(f"q{j:02d}") for j in range(10)),
+        pl.when(broken).then(pl.lit(-1.0)).otherwise(pl.col("spend1")).alias("spend1"),
+    ).write_csv(folder / "waves" / "wave3.csv")
     spec = [
         'title = "Staging benchmark (invented data)"',
         'respondent_id = "resp_id"',
@@ -62,6 +69,9 @@ def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
         "[waves.W2]",
         'label = "Wave 2 (same file: exercises the drift checks against W1)"',
         'file = "waves/wave1.csv"',
+        "[waves.W3]",
+        'label = "Wave 3 (about 1% bad codes in 10 columns: the error path)"',
+        'file = "waves/wave3.csv"',
         "[design]",
         'strata = "region"',
         'psu = "area"',
@@ -96,7 +106,8 @@ def _measure(task: str, wave: str, spec_path: str, results: multiprocessing.Queu
     study = load_spec(spec_path)
     start = time.perf_counter()
     if task == "check":
-        detail = f"{len(check_wave(study, wave))} problems"
+        problems = check_wave(study, wave)
+        detail = f"{sum(p.severity == 'error' for p in problems)} errors, {len(problems)} problems"
     else:
         detail = stage_wave(study, wave, quiet=True).summary()
     seconds = time.perf_counter() - start
@@ -131,6 +142,7 @@ def main(argv: list[str] | None = None) -> int:
             ("stage", "W1", "restage W1"),
             ("stage", "W2", "stage W2 + drift"),
             ("check", "W2", "check W2 only"),
+            ("check", "W3", "check W3 (errors)"),
         )
         for task, wave, label in steps:
             seconds, peak, detail = run_child(task, wave, spec_path)
