@@ -80,7 +80,7 @@ def check_wave(study: Study, wave_id: str) -> list[Problem]:
         con = duckdb.connect()
         prepare_connection(con)
     try:
-        return _inspect(con, study, wave, quiet=True)[1]
+        return _inspect(con, study, wave, quiet=True)
     finally:
         con.close()
 
@@ -98,7 +98,7 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     con = connect(path)
     try:
         prepare_connection(con)
-        _, problems = _inspect(con, study, wave, quiet=quiet)
+        problems = _inspect(con, study, wave, quiet=quiet)
         errors = [p for p in problems if p.severity == "error"]
         if errors:
             raise DataError(
@@ -130,17 +130,15 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     )
 
 
-def _inspect(
-    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool
-) -> tuple[list[str], list[Problem]]:
-    """Read the wave's file into the raw temp table and run the checks: (file columns, problems)."""
+def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool) -> list[Problem]:
+    """Read the wave's file into the raw temp table and run every check; return the problems."""
     try:
         with step(f"{wave.id}: reading {wave.file.name}", quiet=quiet):
             file_columns = read_raw(con, wave.file, RAW_TABLE)
     except DataError as exc:
-        return [], exc.problems
+        return exc.problems
     with step(f"{wave.id}: checking", quiet=quiet):
-        problems = run_checks(
+        return run_checks(
             con,
             study,
             raw=RAW_TABLE,
@@ -148,7 +146,6 @@ def _inspect(
             file=str(wave.file),
             previous=_earlier_staged(con, study, wave),
         )
-    return file_columns, problems
 
 
 def _earlier_staged(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> list[str]:
