@@ -18,16 +18,6 @@ from pipeline.stage import stage_wave
 from pipeline.weighting.store import weigh_wave
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_data"
-WEIGHTING = """
-[[weighting]]
-step = "rake"
-margins = ["age_band x sex", "region", "education", "urban_rural"]
-targets = "population_margins.csv"
-
-[[weighting]]
-step = "trim"
-upper = 4.0
-"""
 
 
 @pytest.fixture(scope="module")
@@ -37,8 +27,10 @@ def study_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
     folder = tmp_path_factory.mktemp("demo")
     shutil.copytree(SAMPLE / "waves", folder / "waves")
     shutil.copy(SAMPLE / "population_margins.csv", folder)
-    (folder / "study.toml").write_text((SAMPLE / "study.toml").read_text() + WEIGHTING)
-    (folder / "bare.toml").write_text((SAMPLE / "study.toml").read_text())
+    spec = (SAMPLE / "study.toml").read_text()
+    assert "[[weighting]]" in spec, "the demo spec declares its weighting (rake, then trim)"
+    (folder / "study.toml").write_text(spec)
+    (folder / "bare.toml").write_text(spec.split("[[weighting]]")[0])  # the same study, unweighted
     for name in ("study.toml", "bare.toml"):
         study = load_spec(folder / name)
         stage_wave(study, "W1", quiet=True)
