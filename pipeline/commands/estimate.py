@@ -13,23 +13,6 @@ if TYPE_CHECKING:
 HELP = "estimate means, totals, proportions, ratios or quantiles with design-based standard errors"
 EXAMPLE = "wavebook estimate wave3.csv --weight wt --strata region --psu area --proportion q1 --by age_band"
 
-OUTPUT_COLUMNS = (
-    "statistic",
-    "variable",
-    "category",
-    "domain",
-    "estimate",
-    "se",
-    "ci_low",
-    "ci_high",
-    "df",
-    "deff",
-    "n",
-    "n_eff",
-    "reason",
-)
-
-
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """DATA, the design columns, what to estimate, the variance method and the output format."""
     parser.add_argument("data", metavar="DATA", help="respondent file: CSV or Parquet")
@@ -89,6 +72,7 @@ def run(args: argparse.Namespace) -> int:
 
     from pipeline.errors import Problem, SpecError
     from pipeline.estimation.api import estimate
+    from pipeline.estimation.result import COLUMNS
     from pipeline.progress import step
 
     problems = []
@@ -129,7 +113,7 @@ def run(args: argparse.Namespace) -> int:
             level=args.level,
             single_psu=args.single_psu,
             source=str(path),
-        ).select(OUTPUT_COLUMNS)
+        ).select(COLUMNS)
     if args.format == "json":
         print(json.dumps(result.to_dicts(), indent=1, allow_nan=False))
     else:
