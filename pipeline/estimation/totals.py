@@ -9,18 +9,47 @@ A quantity y_k is a polars expression evaluated per respondent: a category indic
 `(pl.col("q1") == 3).cast(pl.Float64)`, a numeric column with nulls replaced by 0 together with a
 separate "answered" indicator, or either of those multiplied by a domain indicator. Domains are
 therefore columns of Y, never row subsets, so a domain's variance uses every PSU of the design.
+
+How the pass is computed (the per-respondent work is done once, in a few narrow passes):
+1. the group key g = (stratum, PSU, class) is factorised once to integers 0..G-1, in sorted order;
+2. quantities are split by the set S of columns they read (`Expr.meta.root_names`). For a
+   row-wise expression y_k = phi_k(x_S), the respondents of g with the same values u of x_S
+   share y_k, so Y[g, k] = sum_u W[g, u] phi_k(u) with W[g, u] the weight total of the
+   respondents of g whose x_S equals u. W comes from one weighted bincount over (g, u); phi_k is
+   evaluated on the U distinct value combinations only; Y = W @ Phi is one matrix product
+   (dense, or sparse when G x U is large), the counts likewise from the unweighted bincount of
+   the non-zero-weight respondents and 1[phi_k(u) != 0]. A banner of 10 columns by a question of
+   10 codes is then one bincount over 100 combinations instead of 100 weighted sums over n rows;
+3. an expression that is not provably row-wise (any node outside `_ROW_WISE_FUNCTIONS`, e.g. an
+   aggregation, a window, a shift) is evaluated on the full frame, U = n: the same algebra with
+   one combination per respondent, in column batches of at most `BATCH_CELLS` values.
+The result equals the direct sum to rounding (property-tested against it).
 """
 
 from __future__ import annotations
 
+import json
+from collections.abc import Iterator
 from dataclasses import dataclass
+
+from typing import TYPE_CHECKING
 
 import numpy as np
 import polars as pl
 
 from pipeline.errors import DataError, Problem
 
-_S, _P, _C, _W = "__stratum", "__psu", "__class", "__weight"
+if TYPE_CHECKING:
+    from scipy import sparse
+
+DENSE_CELLS = 2**23  # largest G x U weight matrix built dense (64 MiB); above it, a sparse matrix
+BATCH_CELLS = 2**24  # largest block of evaluated quantity values held at once (128 MiB)
+SPARSE_SHARE = 0.25  # quantity values multiplied as a sparse matrix when at most this share is non-zero
+_ROW_WISE_FUNCTIONS = frozenset(
+    {"FillNull", "Abs", "Negate", "Sign", "Floor", "Ceil", "Log", "Exp", "IsNull", "IsNotNull", "IsNan",
+     "IsNotNan", "IsFinite", "IsInfinite", "Not", "AnyHorizontal", "AllHorizontal", "IsIn", "IsBetween", "Pow",
+     "Clip", "Round"}
+)
 
 
 @dataclass(frozen=True)
@@ -96,13 +125,15 @@ def group_totals(
     classes: str | None = None,
     psu_ids: str = "nested",
 ) -> GroupTotals:
-    """One polars group_by over respondents: Y[g, k] = sum_{i in g} w_i y_ik and the unweighted counts.
+    """The one grouped pass: Y[g, k] = sum_{i in g} w_i y_ik and the unweighted counts (module docstring).
 
     strata None: one stratum; psu None: every respondent is its own PSU (single-stage design).
     psu_ids "nested": PSU ids restart within each stratum (a PSU is the pair (stratum, id));
     "unique": ids are unique across strata, and an id found in two strata is an error.
     classes: a column of weighting-class indices (integers 0..C-1, used as they are, so they line
     up with the weighting recipe's classes) or of labels (indexed in sorted order).
+    quantities: name -> expression evaluated per respondent (row-wise expressions take the fast
+    path; others are evaluated on the full frame).
 
     Raises DataError listing every problem: missing design columns, missing stratum/PSU/class/weight
     values, negative or non-finite weights, PSU ids repeated across strata under "unique", and
@@ -117,51 +148,61 @@ def group_totals(
     ]
     if problems:
         raise DataError("the data lack design columns", problems)
+    problems = _design_problems(frame, weight=weight, strata=strata, psu=psu, classes=classes)
     names = tuple(quantities)
-    qcols = [f"__q{k}" for k in range(len(names))]
-    rows = frame.select(
-        (pl.col(strata) if strata else pl.lit("all")).alias(_S),
-        (pl.col(psu) if psu else pl.int_range(pl.len(), dtype=pl.Int64)).alias(_P),
-        (pl.col(classes) if classes else pl.lit(0, dtype=pl.Int64)).alias(_C),
-        pl.col(weight).cast(pl.Float64).alias(_W),
-        *[expr.cast(pl.Float64).alias(q) for expr, q in zip(quantities.values(), qcols, strict=True)],
-    )
-    problems = _row_problems(rows, names, qcols, weight=weight, strata=strata, psu=psu, classes=classes)
+    w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
+    cache: dict[str, tuple[np.ndarray, int]] = {}
+    key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
+    totals = np.zeros((key.size, len(names)))
+    counts = np.zeros((key.size, len(names)), dtype=np.int64)
+    bad = np.zeros(len(names), dtype=np.int64)
+    nonzero = (w != 0).astype(np.float64)
+    for cols, ks in _by_columns(quantities).items():
+        combos = _Combos.build(frame, cols, cache=cache)
+        pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, nonzero)
+        for batch, values in combos.evaluate(frame, [(k, quantities[names[k]]) for k in ks]):
+            missing = np.isnan(values)
+            bad[batch] = np.rint(combos.rows @ missing).astype(np.int64)
+            weighted, nonzero_counts = pairs.totals(np.where(missing, 0.0, values))
+            totals[:, batch] = weighted
+            counts[:, batch] = np.rint(nonzero_counts).astype(np.int64)
+    problems += [
+        Problem(
+            rule="missing-quantity",
+            message=f"quantity '{name}' is null or NaN (replace missing answers by 0 and add an 'answered' indicator)",
+            count=int(bad[k]),
+        )
+        for k, name in enumerate(names)
+        if bad[k]
+    ]
     if problems:
         raise DataError("the data cannot be estimated from", problems)
-    grouped = (
-        rows.group_by(_S, _P, _C)
-        .agg(
-            *[(pl.col(_W) * pl.col(q)).sum().alias(q) for q in qcols],
-            *[((pl.col(_W) != 0) & (pl.col(q) != 0)).sum().cast(pl.Int64).alias(q + "_n") for q in qcols],
-        )
-        .sort(_S, _P, _C)
-    )
     if psu_ids == "unique" and psu is not None:
-        _check_unique_psus(grouped, psu=psu)
-    as_indices = classes is not None and rows.schema[_C].is_integer()
-    return _from_grouped(grouped, names, qcols, classes_are_indices=as_indices)
+        _check_unique_psus(frame, key, psu=psu)
+    cls = key.class_index(frame, classes=classes)
+    return GroupTotals(
+        stratum=key.stratum,
+        psu=key.psu,
+        cls=cls,
+        totals=totals,
+        counts=counts,
+        columns=names,
+        psu_stratum=key.psu_stratum,
+        stratum_labels=key.stratum_labels,
+        psu_labels=key.psu_labels,
+    )
 
 
-def _row_problems(
-    rows: pl.DataFrame,
-    names: tuple[str, ...],
-    qcols: list[str],
-    *,
-    weight: str,
-    strata: str | None,
-    psu: str | None,
-    classes: str | None,
+def _design_problems(
+    frame: pl.DataFrame, *, weight: str, strata: str | None, psu: str | None, classes: str | None
 ) -> list[Problem]:
-    """Every per-row problem, counted in one pass."""
-    checks = rows.select(
-        pl.col(_S).is_null().sum().alias("s"),
-        pl.col(_P).is_null().sum().alias("p"),
-        pl.col(_C).is_null().sum().alias("c"),
-        pl.col(_W).is_null().sum().alias("w_null"),
-        (~pl.col(_W).is_finite()).sum().alias("w_inf"),
-        (pl.col(_W) < 0).sum().alias("w_neg"),
-        *[(pl.col(q).is_null() | pl.col(q).is_nan()).sum().alias(q) for q in qcols],
+    """Missing stratum/PSU/class values and missing, non-finite or negative weights, counted in one pass."""
+    w = pl.col(weight).cast(pl.Float64)
+    checks = frame.select(
+        *[pl.col(c).is_null().sum().alias(k) for k, c in (("s", strata), ("p", psu), ("c", classes)) if c is not None],
+        w.is_null().sum().alias("w_null"),
+        (~w.is_finite()).sum().alias("w_inf"),
+        (w < 0).sum().alias("w_neg"),
     ).row(0, named=True)
     problems: list[Problem] = []
     for key, col, what in (("s", strata, "stratum"), ("p", psu, "PSU"), ("c", classes, "weighting class")):
@@ -176,21 +217,260 @@ def _row_problems(
     ):
         if checks[key]:
             problems.append(Problem(rule="bad-weight", message=message, column=weight, count=checks[key]))
-    problems += [
-        Problem(
-            rule="missing-quantity",
-            message=f"quantity '{name}' is null or NaN (replace missing answers by 0 and add an 'answered' indicator)",
-            count=checks[q],
-        )
-        for name, q in zip(names, qcols, strict=True)
-        if checks[q]
-    ]
     return problems
 
 
-def _check_unique_psus(grouped: pl.DataFrame, *, psu: str) -> None:
+def _dense(code: np.ndarray, size: int) -> tuple[np.ndarray, int]:
+    """Renumber integer codes in [0, size) to 0..m-1 keeping their order (m = number of distinct codes)."""
+    if size <= 4 * len(code) + 1024:
+        present = np.bincount(code, minlength=size) > 0
+        return (np.cumsum(present) - 1)[code], int(present.sum())
+    distinct, inverse = np.unique(code, return_inverse=True)
+    return inverse.reshape(-1), len(distinct)
+
+
+def _factorize(series: pl.Series) -> tuple[np.ndarray, int]:
+    """Codes 0..m-1 of a column's values, in the column's sort order; a null is one more code, after every value.
+
+    Floats are told apart by bit pattern (0.0 and -0.0, NaN and null stay distinct values) after
+    being ordered by rank, so an expression can never see two different values as one.
+    """
+    dtype = series.dtype
+    if dtype == pl.Boolean:
+        series = series.cast(pl.UInt8)
+        dtype = series.dtype
+    nulls = series.is_null().to_numpy()
+    if dtype.is_integer() and dtype != pl.UInt64 and series.null_count() < len(series):
+        lo, hi = int(series.min()), int(series.max())  # type: ignore[arg-type]
+        if hi - lo <= 4 * len(series):
+            values = series.fill_null(hi + 1).to_numpy().astype(np.int64) - lo
+            return _dense(values, hi - lo + 2)
+    ranks = series.rank("dense").fill_null(0).to_numpy().astype(np.int64)
+    ranks = np.where(nulls, ranks.max(initial=0) + 1, ranks)
+    if dtype.is_float():
+        bits = series.cast(pl.Float64).fill_null(0.0).to_numpy().view(np.int64)
+        _, bits = np.unique(bits, return_inverse=True)
+        n_bits = int(bits.max(initial=-1)) + 1
+        return _dense(ranks * n_bits + np.where(nulls, 0, bits.reshape(-1)), (int(ranks.max(initial=0)) + 1) * n_bits)
+    return _dense(ranks, int(ranks.max(initial=0)) + 1)
+
+
+def _combine(
+    columns: list[tuple[np.ndarray, int]], n: int
+) -> tuple[np.ndarray, int]:
+    """Codes of the value combinations of several factorised columns, in lexicographic order: 0..m-1."""
+    code, size = np.zeros(n, dtype=np.int64), 1
+    for values, m in columns:
+        if size * m >= 2**62:
+            code, size = _dense(code, size)
+        code, size = code * m + values, size * m
+    return _dense(code, size)
+
+
+def _first_rows(code: np.ndarray, size: int) -> np.ndarray:
+    """(size,) the first row holding each code."""
+    first = np.full(size, len(code), dtype=np.int64)
+    np.minimum.at(first, code, np.arange(len(code), dtype=np.int64))
+    return first
+
+
+@dataclass(frozen=True)
+class _GroupKey:
+    """Each respondent's group g = (stratum, PSU, class) as 0..G-1 in sorted order, and the indices per group."""
+
+    g: np.ndarray  # (n,) group of each respondent
+    size: int  # G
+    stratum: np.ndarray  # (G,) stratum index (codes are dense and in sort order, so they are the indices)
+    psu: np.ndarray  # (G,) PSU index
+    class_code: np.ndarray  # (G,) class code (rank of the class value)
+    group_row: np.ndarray  # (G,) the first row of each group
+    psu_stratum: np.ndarray  # (P,)
+    psu_row: np.ndarray  # (P,) the first row of each PSU
+    stratum_labels: tuple[str, ...]
+    psu_labels: tuple[str, ...]
+
+    @staticmethod
+    def build(
+        frame: pl.DataFrame,
+        *,
+        strata: str | None,
+        psu: str | None,
+        classes: str | None,
+        cache: dict[str, tuple[np.ndarray, int]],
+    ) -> _GroupKey:
+        n = frame.height
+        zero = (np.zeros(n, dtype=np.int64), 1 if n else 0)
+        s = _cached(frame, strata, cache) if strata else zero
+        p = _cached(frame, psu, cache) if psu else (np.arange(n, dtype=np.int64), n)
+        c = _cached(frame, classes, cache) if classes else zero
+        g, size = _combine([s, p, c], n)
+        first = _first_rows(g, size)
+        stratum = s[0][first]
+        psu_index, n_psus = _combine([(stratum, s[1]), (p[0][first], p[1])], size)
+        psu_row = first[_first_rows(psu_index, n_psus)]
+        stratum_row = _first_rows(s[0], s[1])
+        labels = frame[strata].gather(stratum_row).to_list() if strata else ["all"] * len(stratum_row)
+        psu_values = frame[psu].gather(psu_row).to_list() if psu else psu_row.tolist()
+        return _GroupKey(
+            g=g,
+            size=size,
+            stratum=stratum,
+            psu=psu_index,
+            class_code=c[0][first],
+            group_row=first,
+            psu_stratum=s[0][psu_row],
+            psu_row=psu_row,
+            stratum_labels=tuple(str(v) for v in labels),
+            psu_labels=tuple(str(v) for v in psu_values),
+        )
+
+    def class_index(self, frame: pl.DataFrame, *, classes: str | None) -> np.ndarray:
+        """(G,) weighting-class index: the integer class value itself, or the rank of a label among the labels."""
+        if classes is None:
+            return np.zeros(self.size, dtype=np.int64)
+        if not frame.schema[classes].is_integer():
+            return self.class_code
+        cls = frame[classes].gather(self.group_row).to_numpy().astype(np.int64)
+        if len(cls) and cls.min() < 0:
+            problem = Problem(rule="bad-class", message="weighting-class indices must be 0..C-1", value=str(cls.min()))
+            raise DataError("negative weighting-class index", [problem])
+        return cls
+
+
+def _cached(frame: pl.DataFrame, column: str, cache: dict[str, tuple[np.ndarray, int]]) -> tuple[np.ndarray, int]:
+    if column not in cache:
+        cache[column] = _factorize(frame[column])
+    return cache[column]
+
+
+def _is_row_wise(node: object) -> bool:
+    """Whether a serialised polars expression is built only from row-wise nodes (`_ROW_WISE_FUNCTIONS`).
+
+    Anything else (aggregations, windows, shifts, ranges, Series literals, regex column selections,
+    or a serialisation this code does not know) answers False, which only costs speed.
+    """
+    if not isinstance(node, dict) or len(node) != 1:
+        return False
+    (kind, body), = node.items()
+    if kind == "Column":
+        return isinstance(body, str) and not (body.startswith("^") and body.endswith("$"))
+    if kind == "Literal":
+        return isinstance(body, dict) and set(body) <= {"Dyn", "Scalar"}
+    if kind == "Alias":
+        return isinstance(body, list) and len(body) == 2 and _is_row_wise(body[0])
+    if kind == "Cast":
+        return _is_row_wise(body.get("expr"))
+    if kind == "BinaryExpr":
+        return _is_row_wise(body.get("left")) and _is_row_wise(body.get("right"))
+    if kind == "Ternary":
+        return all(_is_row_wise(body.get(k)) for k in ("predicate", "truthy", "falsy"))
+    if kind == "Function":
+        function = body.get("function")
+        while isinstance(function, dict) and len(function) == 1:
+            name, inner = next(iter(function.items()))
+            if name in _ROW_WISE_FUNCTIONS:
+                function = name
+                break
+            function = inner
+        return function in _ROW_WISE_FUNCTIONS and all(_is_row_wise(i) for i in body.get("input", []))
+    return False
+
+
+def _by_columns(quantities: dict[str, pl.Expr]) -> dict[tuple[str, ...] | None, list[int]]:
+    """Quantity indices by the sorted set of columns they read; None collects the not provably row-wise ones."""
+    out: dict[tuple[str, ...] | None, list[int]] = {}
+    for k, expr in enumerate(quantities.values()):
+        try:
+            row_wise = _is_row_wise(json.loads(expr.meta.serialize(format="json")))
+        except Exception:  # noqa: BLE001 -- an expression polars cannot serialise takes the full-frame path
+            row_wise = False
+        key = tuple(sorted(set(expr.meta.root_names()))) if row_wise else None
+        out.setdefault(key, []).append(k)
+    return out
+
+
+@dataclass(frozen=True)
+class _Combos:
+    """The distinct value combinations u of a set of columns: each respondent's u, and the rows of each u."""
+
+    u: np.ndarray  # (n,) combination of each respondent
+    size: int  # U
+    first: np.ndarray | None  # (U,) a row holding each combination; None: U = n, the rows themselves
+    rows: np.ndarray  # (U,) respondents per combination
+
+    @staticmethod
+    def build(frame: pl.DataFrame, columns: tuple[str, ...] | None, *, cache: dict) -> _Combos:
+        n = frame.height
+        if columns is None:
+            return _Combos(np.arange(n, dtype=np.int64), n, None, np.ones(n))
+        u, size = _combine([_cached(frame, c, cache) for c in columns], n)
+        return _Combos(u, size, _first_rows(u, size), np.bincount(u, minlength=size).astype(np.float64))
+
+    def evaluate(
+        self, frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]]
+    ) -> Iterator[tuple[list[int], np.ndarray]]:
+        """(indices, (U, b) values) of the quantities, evaluated on one row per combination, b columns at a time."""
+        source = frame if self.first is None else frame.gather(self.first)
+        step = max(1, BATCH_CELLS // max(self.size, 1))
+        for s in range(0, len(exprs), step):
+            batch = exprs[s : s + step]
+            names = [f"__q{k}" for k, _ in batch]
+            values = source.with_columns(e.cast(pl.Float64).alias(q) for (_, e), q in zip(batch, names, strict=True))
+            out = values.select(names).to_numpy().astype(np.float64).reshape(self.size, len(batch))
+            yield [k for k, _ in batch], out
+
+
+@dataclass(frozen=True)
+class _PairMatrix:
+    """W[g, u] = sum of weights and N[g, u] = number of non-zero weights of the respondents in g with combination u.
+
+    Held dense as (U, G) when G x U <= DENSE_CELLS, else as sparse (G, U) matrices.
+    """
+
+    weights: np.ndarray | sparse.csr_matrix
+    counts: np.ndarray | sparse.csr_matrix
+
+    @staticmethod
+    def build(
+        g: np.ndarray, n_groups: int, u: np.ndarray, n_combos: int, w: np.ndarray, nonzero: np.ndarray
+    ) -> _PairMatrix:
+        if n_groups * n_combos <= DENSE_CELLS:
+            pair = u * n_groups + g
+            shape = (n_combos, n_groups)
+            return _PairMatrix(
+                np.bincount(pair, weights=w, minlength=n_groups * n_combos).reshape(shape),
+                np.bincount(pair, weights=nonzero, minlength=n_groups * n_combos).reshape(shape),
+            )
+        from scipy import sparse
+
+        pair, m = _dense(g * n_combos + u, n_groups * n_combos)
+        first = _first_rows(pair, m)
+        index = (g[first], u[first])
+        shape = (n_groups, n_combos)
+        return _PairMatrix(
+            sparse.csr_matrix((np.bincount(pair, weights=w, minlength=m), index), shape=shape),
+            sparse.csr_matrix((np.bincount(pair, weights=nonzero, minlength=m), index), shape=shape),
+        )
+
+    def totals(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(U, b) quantity values per combination -> (G, b) weighted totals and (G, b) counts of non-zero values."""
+        from scipy import sparse
+
+        indicator = (phi != 0).astype(np.float64)
+        if isinstance(self.weights, np.ndarray):
+            if np.count_nonzero(indicator) <= SPARSE_SHARE * indicator.size:
+                phi_t, indicator_t = sparse.csr_matrix(phi.T), sparse.csr_matrix(indicator.T)
+            else:
+                phi_t, indicator_t = phi.T, indicator.T
+            return np.asarray(phi_t @ self.weights).T, np.asarray(indicator_t @ self.counts).T
+        return np.asarray(self.weights @ phi), np.asarray(self.counts @ indicator)
+
+
+def _check_unique_psus(frame: pl.DataFrame, key: _GroupKey, *, psu: str) -> None:
     """PSU ids declared unique across strata must each lie in one stratum."""
-    shared = grouped.group_by(_P).agg(pl.col(_S).n_unique().alias("k")).filter(pl.col("k") > 1)
+    ids = frame[psu].gather(key.psu_row)
+    per_id = pl.DataFrame({"id": ids, "h": key.psu_stratum}).group_by("id").agg(pl.col("h").n_unique().alias("k"))
+    shared = per_id.filter(pl.col("k") > 1)
     if shared.height:
         raise DataError(
             "PSU ids repeat across strata",
@@ -202,36 +482,7 @@ def _check_unique_psus(grouped: pl.DataFrame, *, psu: str) -> None:
                     '(psu_ids = "nested" in the spec, --psu-ids nested on the command line)',
                     column=psu,
                     count=shared.height,
-                    examples=tuple(str(v) for v in shared[_P].sort().head(5).to_list()),
+                    examples=tuple(str(v) for v in shared["id"].sort().head(5).to_list()),
                 )
             ],
         )
-
-
-def _from_grouped(
-    grouped: pl.DataFrame, names: tuple[str, ...], qcols: list[str], *, classes_are_indices: bool
-) -> GroupTotals:
-    """Index the sorted group rows: strata, PSUs (new PSU whenever stratum or id changes), classes."""
-    s_new = (grouped[_S] != grouped[_S].shift(1)).fill_null(True).to_numpy()
-    p_new = s_new | (grouped[_P] != grouped[_P].shift(1)).fill_null(True).to_numpy()
-    stratum = np.cumsum(s_new) - 1
-    psu_idx = np.cumsum(p_new) - 1
-    if classes_are_indices:
-        cls = grouped[_C].to_numpy().astype(np.int64)
-        if len(cls) and cls.min() < 0:
-            problem = Problem(rule="bad-class", message="weighting-class indices must be 0..C-1", value=str(cls.min()))
-            raise DataError("negative weighting-class index", [problem])
-    else:
-        cls = (grouped[_C].rank("dense") - 1).to_numpy().astype(np.int64)
-    shape = (grouped.height, len(qcols))
-    return GroupTotals(
-        stratum=stratum.astype(np.int64),
-        psu=psu_idx.astype(np.int64),
-        cls=cls,
-        totals=grouped.select(qcols).to_numpy().astype(np.float64).reshape(shape),
-        counts=grouped.select([q + "_n" for q in qcols]).to_numpy().astype(np.int64).reshape(shape),
-        columns=names,
-        psu_stratum=stratum[p_new].astype(np.int64),
-        stratum_labels=tuple(str(v) for v in grouped[_S].filter(pl.Series(s_new)).to_list()),
-        psu_labels=tuple(str(v) for v in grouped[_P].filter(pl.Series(p_new)).to_list()),
-    )
