@@ -31,7 +31,6 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from dataclasses import dataclass
-
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -247,17 +246,14 @@ def _factorize(series: pl.Series) -> tuple[np.ndarray, int]:
             return _dense(values, hi - lo + 2)
     ranks = series.rank("dense").fill_null(0).to_numpy().astype(np.int64)
     ranks = np.where(nulls, ranks.max(initial=0) + 1, ranks)
-    if dtype.is_float():
-        bits = series.cast(pl.Float64).fill_null(0.0).to_numpy().view(np.int64)
-        _, bits = np.unique(bits, return_inverse=True)
-        n_bits = int(bits.max(initial=-1)) + 1
-        return _dense(ranks * n_bits + np.where(nulls, 0, bits.reshape(-1)), (int(ranks.max(initial=0)) + 1) * n_bits)
-    return _dense(ranks, int(ranks.max(initial=0)) + 1)
+    by_rank = (ranks, int(ranks.max(initial=0)) + 1)
+    if not dtype.is_float():
+        return _dense(*by_rank)
+    bits = np.unique(series.cast(pl.Float64).fill_null(0.0).to_numpy().view(np.int64), return_inverse=True)[1]
+    return _combine([by_rank, (bits.reshape(-1), int(bits.max(initial=-1)) + 1)], len(series))
 
 
-def _combine(
-    columns: list[tuple[np.ndarray, int]], n: int
-) -> tuple[np.ndarray, int]:
+def _combine(columns: list[tuple[np.ndarray, int]], n: int) -> tuple[np.ndarray, int]:
     """Codes of the value combinations of several factorised columns, in lexicographic order: 0..m-1."""
     code, size = np.zeros(n, dtype=np.int64), 1
     for values, m in columns:
@@ -351,13 +347,15 @@ def _is_row_wise(node: object) -> bool:
     """
     if not isinstance(node, dict) or len(node) != 1:
         return False
-    (kind, body), = node.items()
+    kind, body = next(iter(node.items()))
     if kind == "Column":
         return isinstance(body, str) and not (body.startswith("^") and body.endswith("$"))
     if kind == "Literal":
         return isinstance(body, dict) and set(body) <= {"Dyn", "Scalar"}
     if kind == "Alias":
         return isinstance(body, list) and len(body) == 2 and _is_row_wise(body[0])
+    if not isinstance(body, dict):
+        return False
     if kind == "Cast":
         return _is_row_wise(body.get("expr"))
     if kind == "BinaryExpr":
@@ -365,15 +363,27 @@ def _is_row_wise(node: object) -> bool:
     if kind == "Ternary":
         return all(_is_row_wise(body.get(k)) for k in ("predicate", "truthy", "falsy"))
     if kind == "Function":
-        function = body.get("function")
-        while isinstance(function, dict) and len(function) == 1:
-            name, inner = next(iter(function.items()))
-            if name in _ROW_WISE_FUNCTIONS:
-                function = name
-                break
-            function = inner
-        return function in _ROW_WISE_FUNCTIONS and all(_is_row_wise(i) for i in body.get("input", []))
+        inputs = body.get("input")
+        return (
+            _function_name(body.get("function")) in _ROW_WISE_FUNCTIONS
+            and isinstance(inputs, list)
+            and all(_is_row_wise(i) for i in inputs)
+        )
     return False
+
+
+def _function_name(function: object) -> str | None:
+    """The name of a serialised polars function: "FillNull", {"Pow": ...} -> "Pow", {"Boolean": "IsNull"} -> "IsNull"."""
+    if isinstance(function, str):
+        return function
+    if not isinstance(function, dict) or len(function) != 1:
+        return None
+    name, inner = next(iter(function.items()))
+    if name != "Boolean":
+        return name
+    if isinstance(inner, dict) and len(inner) == 1:
+        return next(iter(inner))
+    return inner if isinstance(inner, str) else None
 
 
 def _by_columns(quantities: dict[str, pl.Expr]) -> dict[tuple[str, ...] | None, list[int]]:
