@@ -153,6 +153,7 @@ def render_book(
     out_path: Path,
     weighting: WeightingSection | None = None,
     variance: tuple[str, ...] = (),
+    level: float = 0.95,
 ) -> Path:
     """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
 
@@ -160,7 +161,7 @@ def render_book(
     file in the destination folder and moved over `out_path` with `os.replace` (atomic on one
     file system), so a failure never leaves a half-written or missing book. Returns `out_path`.
     """
-    context = build_context(study, cells, weighting=weighting, variance=variance)
+    context = build_context(study, cells, weighting=weighting, variance=variance, level=level)
     html = _environment().get_template("book.html.j2").render(book=context)
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
@@ -174,11 +175,13 @@ def build_context(
     *,
     weighting: WeightingSection | None = None,
     variance: tuple[str, ...] = (),
+    level: float = 0.95,
     now: dt.datetime | None = None,
 ) -> BookContext:
     """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.topline`, plus
     the estimate columns of `pipeline.weighted_cells` in a weighted book); `weighting` and
-    `variance` (sentences on how standard errors were computed) feed the methodology."""
+    `variance` (sentences on how standard errors were computed) feed the methodology; `level` is
+    the confidence level of the intervals."""
     missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]
     if missing:
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
@@ -199,7 +202,7 @@ def build_context(
         waves=waves,
         design=_design_lines(study.design),
         methodology=_methodology(weighted=weighted) + (variance if weighted else ()),
-        cautions=_cautions(study, sections, weighted=weighted),
+        cautions=_cautions(study, sections, weighted=weighted, level=level, weighting=weighting),
         sections=sections,
         low_base=LOW_BASE,
         very_low_base=VERY_LOW_BASE,
@@ -398,9 +401,31 @@ def _methodology(*, weighted: bool) -> tuple[str, ...]:
     return tuple(paragraphs)
 
 
-def _cautions(study: Study, sections: tuple[Section, ...], *, weighted: bool) -> tuple[Caution, ...]:
-    """The reader's cautions: unweighted figures, sample type, low bases, what a confidence interval says."""
+def _cautions(
+    study: Study,
+    sections: tuple[Section, ...],
+    *,
+    weighted: bool,
+    level: float,
+    weighting: WeightingSection | None,
+) -> tuple[Caution, ...]:
+    """The reader's cautions: unweighted figures, what weighting can repair, sample type, low bases,
+    what a confidence interval says."""
+    pct = f"{100 * level:g}"
     cautions = []
+    if weighted and weighting is not None and weighting.variables:
+        cautions.append(
+            Caution(
+                "What the weighting repairs",
+                (
+                    "The weights make the sample match the population on "
+                    + ", ".join(weighting.variables)
+                    + ". They correct for who answered only as far as answering is related to these "
+                    "characteristics; differences between respondents and non-respondents on anything "
+                    "else remain.",
+                ),
+            )
+        )
     if not weighted:
         cautions.append(
             Caution(
@@ -441,8 +466,8 @@ def _cautions(study: Study, sections: tuple[Section, ...], *, weighted: bool) ->
         Caution(
             "What a confidence interval says",
             (
-                "A 95% confidence interval comes from a method that, over many samples drawn the same "
-                "way, would cover the population value 95 times in 100. It does not mean there is a 95% "
+                f"A {pct}% confidence interval comes from a method that, over many samples drawn the same "
+                f"way, would cover the population value {pct} times in 100. It does not mean there is a {pct}% "
                 "chance that the population value lies in one particular interval.",
                 "It covers sampling error only: not errors from who could be reached, who chose to "
                 "answer, how questions were worded or how answers were recorded. Two intervals that "

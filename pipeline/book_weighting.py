@@ -65,6 +65,7 @@ class WeightingSection:
     wave_labels: tuple[str, ...]
     margins: tuple[MarginRow, ...]
     notes: tuple[str, ...]
+    variables: tuple[str, ...]  # labels of the margins the weights were calibrated to
 
 
 def _pct(share: float) -> str:
@@ -130,7 +131,11 @@ def weighting_section(study: Study, reports: Mapping[str, WeightingReport]) -> W
         notes += [f"{wave.label}: {p.message}" for p in report.warnings]
     margins = _margin_rows(study, [w.id for w in waves], reports)
     return WeightingSection(
-        waves=tuple(rows), wave_labels=tuple(w.label for w in waves), margins=margins, notes=tuple(notes)
+        waves=tuple(rows),
+        wave_labels=tuple(w.label for w in waves),
+        margins=margins,
+        notes=tuple(notes),
+        variables=tuple(dict.fromkeys(m.margin.lower() for m in margins)),
     )
 
 

@@ -136,4 +136,5 @@ def run_study(
             out_path=out_path,
             weighting=weighting_section(study, reports),
             variance=variance_lines(options, study, calibrated=calibrated),
+            level=options.level,
         )

@@ -180,8 +180,11 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     assert section.margins[0].target == "55.0%"
     assert section.waves[0].deff == f"{report.final.deff:.2f}"
     lines = variance_lines(VarianceOptions(), study, calibrated=True)
-    context = build_context(study, cells, weighting=section, variance=lines)
+    context = build_context(study, cells, weighting=section, variance=lines, level=0.9)
     assert context.weighting is section
+    cautions = {c.title: " ".join(c.paragraphs) for c in context.cautions}
+    assert "match the population on region" in cautions["What the weighting repairs"]
+    assert "A 90% confidence interval" in cautions["What a confidence interval says"]
     assert any("residuals of the calibration" in p for p in context.methodology)
     book = render_book(study, cells, out_path=tmp_path / "book.html", weighting=section, variance=lines)
 
