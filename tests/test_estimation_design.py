@@ -132,3 +132,59 @@ def test_empty_domain_and_zero_denominator_give_missing_rows_with_reasons() -> N
     assert ratio["estimate"] is None and ratio["reason"] == "denominator total is 0"
     whole = out.filter((pl.col("statistic") == "mean") & (pl.col("domain") == "")).row(0, named=True)
     assert whole["estimate"] == pytest.approx((1 + 4 + 3 + 4) / 5) and whole["reason"] == ""
+
+
+def merged_by_hand(frame: pl.DataFrame) -> pl.DataFrame:
+    """Stratum C relabelled as B, its PSU renumbered 3 (after B's PSUs 1 and 2)."""
+    return frame.with_columns(
+        h=pl.when(pl.col("h") == "C").then(pl.lit("B")).otherwise(pl.col("h")),
+        j=pl.when(pl.col("h") == "C").then(3).otherwise(pl.col("j")),
+    )
+
+
+@pytest.mark.parametrize("method", ["jkn", "bootstrap"])
+@pytest.mark.parametrize("fpc", [None, {"A": 10.0, "B": 8.0, "C": 5.0}])
+def test_collapsed_single_psu_stratum_equals_strata_merged_by_hand_under_replicates(method: str, fpc) -> None:
+    frame = lone_psu_sample()
+    options = {"weight": "w", "strata": "h", "psu": "j", "total": "y", "mean": "y", "variance": method, "seed": 4,
+               "replicates": 50}
+    collapsed = estimate(frame, **options, single_psu="collapse", collapse_with={"C": "B"},
+                         fpc=fpc).sort("statistic")
+    merged_fpc = None if fpc is None else {"A": 10.0, "B": 13.0}  # N_h add up in the merged stratum
+    by_hand = estimate(merged_by_hand(frame), **options, fpc=merged_fpc).sort("statistic")
+    # identity: collapsing is relabelling the stratum (same PSU order, so the same bootstrap draws)
+    assert collapsed["se"].to_list() == pytest.approx(by_hand["se"].to_list(), rel=1e-12)
+    assert collapsed["df"].to_list() == by_hand["df"].to_list()
+
+
+def test_collapsed_jackknife_of_a_total_equals_the_collapsed_taylor_variance() -> None:
+    frame = lone_psu_sample()
+    options = {"weight": "w", "strata": "h", "psu": "j", "total": "y", "single_psu": "collapse",
+               "collapse_with": {"C": "B"}, "fpc": {"A": 10.0, "B": 8.0, "C": 5.0}}
+    jkn = estimate(frame, **options, variance="jkn").row(0, named=True)
+    taylor = estimate(frame, **options).row(0, named=True)
+    # identity: the stratified jackknife of a linear total is the with-replacement formula, FPC included
+    # (Wolter 2007, Introduction to Variance Estimation, 2nd ed., section 4.5, from memory)
+    assert jkn["se"] == pytest.approx(taylor["se"], rel=1e-12)
+
+
+def test_certainty_single_psu_stratum_under_jackknife_and_bootstrap() -> None:
+    frame = lone_psu_sample()
+    options = {"weight": "w", "strata": "h", "psu": "j", "total": "y"}
+    jkn = estimate(frame, **options, variance="jkn", single_psu="certainty").row(0, named=True)
+    taylor = estimate(frame, **options, single_psu="certainty").row(0, named=True)
+    assert jkn["se"] == pytest.approx(taylor["se"], rel=1e-12)  # identity as above; stratum C adds 0 to both
+    assert jkn["df"] == 4 - 2  # the sampled strata A and B only
+    boot = estimate(frame, **options, variance="bootstrap", replicates=200, seed=9, single_psu="certainty")
+    without_c = estimate(frame.filter(pl.col("h") != "C"), **options, variance="bootstrap", replicates=200, seed=9)
+    # identity: C's lone PSU keeps factor 1 in every replicate and C draws nothing, so the replicate
+    # deviations are those of the sample without C under the same seed
+    assert boot["se"][0] == pytest.approx(without_c["se"][0], rel=1e-12)
+    assert boot["estimate"][0] == pytest.approx((frame["w"] * frame["y"]).sum(), rel=1e-12)
+
+
+@pytest.mark.parametrize("policy", ["error", "centre"])
+def test_replicates_without_a_usable_single_psu_policy_name_the_stratum(policy: str) -> None:
+    with pytest.raises(DataError) as info:
+        estimate(lone_psu_sample(), weight="w", strata="h", psu="j", total="y", variance="jkn", single_psu=policy)
+    assert "e.g. ids C" in info.value.render() and "certainty" in info.value.render()

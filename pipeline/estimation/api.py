@@ -25,7 +25,7 @@ import polars as pl
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation import deff as deff_mod
 from pipeline.estimation import intervals
-from pipeline.estimation.design import SampleDesign, sampling_fractions
+from pipeline.estimation.design import PsuLayout, SampleDesign
 from pipeline.estimation.estimands import Ratios
 from pipeline.estimation.quantiles import weighted_cdfs, woodruff_interval
 from pipeline.estimation.result import COLUMNS, EstimateTable, interval
@@ -225,14 +225,15 @@ def estimate_table(
         df: float = layout.df
         has_fpc = layout.has_fpc
     else:
-        fractions = sampling_fractions(gt, fpc_values, fpc_name=design.fpc)
+        # generated replicates follow the design as the variance sees it: collapsed strata, f_h, lone PSUs
+        layout = None if variance == "supplied" else design.layout(gt, fpc_values=fpc_values)
         theta = ratios.value(t)
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
             replicate_scale=replicate_scale, replicate_method=replicate_method, fay=fay, replicates=replicates,
-            seed=seed, reweight=reweight, fractions=fractions, source=source,
+            seed=seed, reweight=reweight, layout=layout, certainty=design.single_psu == "certainty", source=source,
         )
-        has_fpc = fractions is not None
+        has_fpc = layout is not None and layout.has_fpc
     return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
 
 
@@ -376,13 +377,15 @@ def _replicate_variance(
     replicates: int | None,
     seed: int | None,
     reweight: Callable[[np.ndarray], np.ndarray] | None,
-    fractions: np.ndarray | None,
+    layout: PsuLayout | None,
+    certainty: bool,
     source: str | None,
 ) -> tuple[np.ndarray, float]:
     """Replicate variances and df (`pipeline.estimation.replicates` and `replicate_variance`).
 
-    Generated replicates: PSU factors from the design, replicate totals from the group totals
-    (the recipe replayed per replicate when `reweight` is given). Supplied replicate weights:
+    Generated replicates: PSU factors from the design's `layout` (strata after collapsing, their
+    sampling fractions f_h; lone PSUs kept at factor 1 when `certainty`), replicate totals from
+    the group totals (the recipe replayed per replicate when `reweight` is given). Supplied replicate weights:
     replicate totals W' Y from the weight columns, multiplier `replicate_scale` (default from
     `replicate_method`).
     """
@@ -394,9 +397,12 @@ def _replicate_variance(
         rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, scale=replicate_scale)
         rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, cols, source=source)
     else:
+        if layout is None:
+            raise ValueError("generated replicates need the design's PSU layout")
         rf = rep.make_replicates(
-            variance, gt.psu_stratum, fay=fay, replicates=replicates, seed=seed,
-            sampling_fraction=fractions, stratum_labels=gt.stratum_labels,
+            variance, layout.psu_stratum, fay=fay, replicates=replicates, seed=seed,
+            sampling_fraction=layout.fraction if layout.has_fpc else None, stratum_labels=layout.stratum_labels,
+            single_psu="certainty" if certainty else "error",
         )
         if replicate_scale is not None:
             rf = replace(rf, scale=float(replicate_scale))
