@@ -298,7 +298,7 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
             text = _percent_text(row["estimate"])
             return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=SET_BY_WEIGHTING)
         if kind in PERCENT_KINDS:
-            interval = f"{_whole(row['ci_low'])}–{_whole(row['ci_high'])}" if row["ci_low"] is not None else None
+            interval = _percent_interval(row["ci_low"], row["ci_high"]) if row["ci_low"] is not None else None
             text = _percent_text(row["estimate"])
             return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=interval, deff=_deff_text(row))
         if kind == "statistic" and row.get("code") in ESTIMATED_STATISTICS:
@@ -313,6 +313,14 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if row["percent"] is None:
         return Cell(text="–", detail=f"{row['count']:,}", base_flag=flag)
     return Cell(text=_percent_text(row["percent"]), detail=f"{row['count']:,}", base_flag=flag)
+
+
+def _percent_interval(low: float, high: float) -> str:
+    """An interval of percentages: whole numbers, or one decimal when it lies below 2% (where whole
+    numbers would print "0–0" for an interval that is not empty)."""
+    if high < 1.95:
+        return f"{low:.1f}–{high:.1f}"
+    return f"{_whole(low)}–{_whole(high)}"
 
 
 def _deff_text(row: dict) -> str | None:

@@ -509,3 +509,11 @@ def test_weighted_book_says_so_and_drops_the_unweighted_caution(tmp_path: Path, 
 def test_percentages_round_half_up(percent: float, shown: str) -> None:
     # the book's display convention: round half up (Python's round() would round half to even)
     assert book_module._percent_text(percent) == shown
+
+
+def test_small_percentage_intervals_keep_a_decimal() -> None:
+    from pipeline.book import _percent_interval
+
+    assert _percent_interval(0.0, 0.24) == "0.0–0.2"  # whole numbers would print an empty-looking 0–0
+    assert _percent_interval(0.31, 1.9) == "0.3–1.9"
+    assert _percent_interval(12.5, 18.49) == "13–18"  # half up, like the figures
