@@ -155,10 +155,10 @@ def group_totals(
     totals = np.zeros((key.size, len(names)))
     counts = np.zeros((key.size, len(names)), dtype=np.int64)
     bad = np.zeros(len(names), dtype=np.int64)
-    nonzero = (w != 0).astype(np.float64)
+    kept = None if np.all(w != 0) else w != 0
     for cols, ks in _by_columns(quantities).items():
         combos = _Combos.build(frame, cols, cache=cache)
-        pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, nonzero)
+        pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
         for batch, values in combos.evaluate(frame, [(k, quantities[names[k]]) for k in ks]):
             missing = np.isnan(values)
             bad[batch] = np.rint(combos.rows @ missing).astype(np.int64)
@@ -442,24 +442,27 @@ class _PairMatrix:
 
     @staticmethod
     def build(
-        g: np.ndarray, n_groups: int, u: np.ndarray, n_combos: int, w: np.ndarray, nonzero: np.ndarray
+        g: np.ndarray, n_groups: int, u: np.ndarray, n_combos: int, w: np.ndarray, kept: np.ndarray | None
     ) -> _PairMatrix:
+        """kept: mask of the respondents with a non-zero weight (None: all of them)."""
+
+        def sums(pair: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+            counted = np.bincount(pair if kept is None else pair[kept], minlength=size)
+            return np.bincount(pair, weights=w, minlength=size), counted.astype(np.float64)
+
         if n_groups * n_combos <= DENSE_CELLS:
-            pair = u * n_groups + g
             shape = (n_combos, n_groups)
-            return _PairMatrix(
-                np.bincount(pair, weights=w, minlength=n_groups * n_combos).reshape(shape),
-                np.bincount(pair, weights=nonzero, minlength=n_groups * n_combos).reshape(shape),
-            )
+            weights, counts = sums(u * n_groups + g, n_groups * n_combos)
+            return _PairMatrix(weights.reshape(shape), counts.reshape(shape))
         from scipy import sparse
 
         pair, m = _dense(g * n_combos + u, n_groups * n_combos)
         first = _first_rows(pair, m)
         index = (g[first], u[first])
         shape = (n_groups, n_combos)
+        weights, counts = sums(pair, m)
         return _PairMatrix(
-            sparse.csr_matrix((np.bincount(pair, weights=w, minlength=m), index), shape=shape),
-            sparse.csr_matrix((np.bincount(pair, weights=nonzero, minlength=m), index), shape=shape),
+            sparse.csr_matrix((weights, index), shape=shape), sparse.csr_matrix((counts, index), shape=shape)
         )
 
     def totals(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
