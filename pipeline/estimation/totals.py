@@ -152,8 +152,8 @@ def group_totals(
     w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
     cache: dict[str, tuple[np.ndarray, int]] = {}
     key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
-    totals = np.zeros((key.size, len(names)))
-    counts = np.zeros((key.size, len(names)), dtype=np.int64)
+    totals = np.zeros((len(names), key.size))  # transposed while filled: one contiguous row per quantity
+    counts = np.zeros((len(names), key.size))
     bad = np.zeros(len(names), dtype=np.int64)
     kept = None if np.all(w != 0) else w != 0
     for cols, ks in _by_columns(quantities).items():
@@ -162,9 +162,7 @@ def group_totals(
         for batch, values in combos.evaluate(frame, [(k, quantities[names[k]]) for k in ks]):
             missing = np.isnan(values)
             bad[batch] = np.rint(combos.rows @ missing).astype(np.int64)
-            weighted, nonzero_counts = pairs.totals(np.where(missing, 0.0, values))
-            totals[:, batch] = weighted
-            counts[:, batch] = np.rint(nonzero_counts).astype(np.int64)
+            totals[batch], counts[batch] = pairs.totals(np.where(missing, 0.0, values))
     problems += [
         Problem(
             rule="missing-quantity",
@@ -183,8 +181,8 @@ def group_totals(
         stratum=key.stratum,
         psu=key.psu,
         cls=cls,
-        totals=totals,
-        counts=counts,
+        totals=np.ascontiguousarray(totals.T),
+        counts=np.rint(counts.T).astype(np.int64),
         columns=names,
         psu_stratum=key.psu_stratum,
         stratum_labels=key.stratum_labels,
@@ -223,7 +221,8 @@ def _dense(code: np.ndarray, size: int) -> tuple[np.ndarray, int]:
     """Renumber integer codes in [0, size) to 0..m-1 keeping their order (m = number of distinct codes)."""
     if size <= 4 * len(code) + 1024:
         present = np.bincount(code, minlength=size) > 0
-        return (np.cumsum(present) - 1)[code], int(present.sum())
+        m = int(present.sum())
+        return (code if m == size else (np.cumsum(present) - 1)[code]), m
     distinct, inverse = np.unique(code, return_inverse=True)
     return inverse.reshape(-1), len(distinct)
 
@@ -466,7 +465,7 @@ class _PairMatrix:
         )
 
     def totals(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(U, b) quantity values per combination -> (G, b) weighted totals and (G, b) counts of non-zero values."""
+        """(U, b) quantity values per combination -> (b, G) weighted totals and (b, G) counts of non-zero values."""
         from scipy import sparse
 
         indicator = (phi != 0).astype(np.float64)
@@ -475,8 +474,8 @@ class _PairMatrix:
                 phi_t, indicator_t = sparse.csr_matrix(phi.T), sparse.csr_matrix(indicator.T)
             else:
                 phi_t, indicator_t = phi.T, indicator.T
-            return np.asarray(phi_t @ self.weights).T, np.asarray(indicator_t @ self.counts).T
-        return np.asarray(self.weights @ phi), np.asarray(self.counts @ indicator)
+            return np.asarray(phi_t @ self.weights), np.asarray(indicator_t @ self.counts)
+        return np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T
 
 
 def _check_unique_psus(frame: pl.DataFrame, key: _GroupKey, *, psu: str) -> None:
