@@ -152,8 +152,10 @@ def group_totals(
     w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
     cache: dict[str, tuple[np.ndarray, int]] = {}
     key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
-    totals = np.zeros((len(names), key.size))  # transposed while filled: one contiguous row per quantity
-    counts = np.zeros((len(names), key.size))
+    # transposed while filled (one contiguous row per quantity); counts are sums of products of
+    # integers below 2**53, so exact in float64 and stored as integers as they are
+    totals = np.zeros((len(names), key.size))
+    counts = np.zeros((len(names), key.size), dtype=np.int64)
     bad = np.zeros(len(names), dtype=np.int64)
     kept = None if np.all(w != 0) else w != 0
     for cols, ks in _by_columns(quantities).items():
@@ -182,7 +184,7 @@ def group_totals(
         psu=key.psu,
         cls=cls,
         totals=np.ascontiguousarray(totals.T),
-        counts=np.rint(counts.T).astype(np.int64),
+        counts=np.ascontiguousarray(counts.T),
         columns=names,
         psu_stratum=key.psu_stratum,
         stratum_labels=key.stratum_labels,
