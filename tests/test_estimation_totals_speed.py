@@ -95,6 +95,8 @@ QUANTITIES = {
     "1/y": pl.when(pl.col("y") != 0).then(1.0 / pl.col("y")).otherwise(0.0),
     "centred y": pl.col("y") - pl.col("y").mean(),  # not row-wise: evaluated on the full frame
     "previous y": pl.col("y").shift(1).fill_null(0.0),  # not row-wise either
+    "centred q": pl.col("q").fill_null(0) - pl.col("q").fill_null(0).mean(),  # ... of a column with few values
+    "previous seg=x": (pl.col("seg") == "x").shift(1).fill_null(False).cast(pl.Float64),
 }
 
 DESIGNS = [
@@ -113,21 +115,25 @@ DESIGNS = [
     dense_cells=st.sampled_from([totals_module.DENSE_CELLS, 0]),
     sparse_share=st.sampled_from([totals_module.SPARSE_SHARE, 0.0, 1.0]),
     batch_cells=st.sampled_from([totals_module.BATCH_CELLS, 1]),
+    max_combinations=st.sampled_from([totals_module.MAX_COMBINATIONS, 0]),
 )
 def test_group_totals_equal_the_direct_sum(
-    seed: int, n: int, design: dict, dense_cells: int, sparse_share: float, batch_cells: int
+    seed: int, n: int, design: dict, dense_cells: int, sparse_share: float, batch_cells: int, max_combinations: int
 ) -> None:
-    # every internal route: dense or sparse weight matrix, dense or sparse quantity values, batches of one column
+    # every internal route: combinations or rows, dense or sparse weight matrix, dense or sparse
+    # quantity values, batches of one column
     with (
         mock.patch.object(totals_module, "DENSE_CELLS", dense_cells),
         mock.patch.object(totals_module, "SPARSE_SHARE", sparse_share),
         mock.patch.object(totals_module, "BATCH_CELLS", batch_cells),
+        mock.patch.object(totals_module, "MAX_COMBINATIONS", max_combinations),
     ):
         assert_same_as_direct(invented_sample(seed, n), QUANTITIES, **design)
 
 
 def test_group_totals_equal_the_direct_sum_at_a_larger_size() -> None:
-    frame = invented_sample(3, 20_000)
+    # 20,000 rows: the sample that picks the route is a strict subset; y has too many values to combine
+    frame = invented_sample(3, 20_000).with_columns(y=pl.col("y") + pl.Series(np.linspace(0.0, 1.0, 20_000)))
     assert_same_as_direct(frame, QUANTITIES, strata="h", psu="j", classes="c")
 
 

@@ -21,8 +21,9 @@ How the pass is computed (the per-respondent work is done once, in a few narrow 
    the non-zero-weight respondents and 1[phi_k(u) != 0]. A banner of 10 columns by a question of
    10 codes is then one bincount over 100 combinations instead of 100 weighted sums over n rows;
 3. an expression that is not provably row-wise (any node outside `_ROW_WISE_FUNCTIONS`, e.g. an
-   aggregation, a window, a shift) is evaluated on the full frame, U = n: the same algebra with
-   one combination per respondent, in column batches of at most `BATCH_CELLS` values.
+   aggregation, a window, a shift), or that reads columns with many distinct value combinations
+   (a continuous measure: more than MAX_COMBINATIONS in a sample of rows), is evaluated on the
+   full frame and summed per group index by a polars group_by, at most `BATCH_CELLS` values at a time.
 The result equals the direct sum to rounding (property-tested against it).
 """
 
@@ -44,6 +45,8 @@ if TYPE_CHECKING:
 DENSE_CELLS = 2**23  # largest G x U weight matrix built dense (64 MiB); above it, a sparse matrix
 BATCH_CELLS = 2**24  # largest block of evaluated quantity values held at once (128 MiB)
 SPARSE_SHARE = 0.25  # quantity values multiplied as a sparse matrix when at most this share is non-zero
+MAX_COMBINATIONS = 512  # columns with more distinct value combinations (in a sample) are summed row by row
+SAMPLE_ROWS = 4096  # rows looked at to count the combinations
 _ROW_WISE_FUNCTIONS = frozenset(
     {"FillNull", "Abs", "Negate", "Sign", "Floor", "Ceil", "Log", "Exp", "IsNull", "IsNotNull", "IsNan",
      "IsNotNan", "IsFinite", "IsInfinite", "Not", "AnyHorizontal", "AllHorizontal", "IsIn", "IsBetween", "Pow",
@@ -131,8 +134,8 @@ def group_totals(
     "unique": ids are unique across strata, and an id found in two strata is an error.
     classes: a column of weighting-class indices (integers 0..C-1, used as they are, so they line
     up with the weighting recipe's classes) or of labels (indexed in sorted order).
-    quantities: name -> expression evaluated per respondent (row-wise expressions take the fast
-    path; others are evaluated on the full frame).
+    quantities: name -> expression evaluated per respondent (row-wise expressions of columns with
+    few distinct value combinations take the combination path; others are summed row by row).
 
     Raises DataError listing every problem: missing design columns, missing stratum/PSU/class/weight
     values, negative or non-finite weights, PSU ids repeated across strata under "unique", and
@@ -159,12 +162,13 @@ def group_totals(
     bad = np.zeros(len(names), dtype=np.int64)
     kept = None if np.all(w != 0) else w != 0
     for cols, ks in _by_columns(quantities).items():
-        combos = _Combos.build(frame, cols, cache=cache)
-        pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
-        for batch, values in combos.evaluate(frame, [(k, quantities[names[k]]) for k in ks]):
-            missing = np.isnan(values)
-            bad[batch] = np.rint(combos.rows @ missing).astype(np.int64)
-            totals[batch], counts[batch] = pairs.totals(np.where(missing, 0.0, values))
+        exprs = [(k, quantities[names[k]]) for k in ks]
+        if cols is not None and _few_combinations(frame, cols):
+            parts = _combination_totals(frame, cols, exprs, key=key, w=w, kept=kept, cache=cache)
+        else:
+            parts = _row_totals(frame, exprs, key=key, w=w)
+        for batch, weighted, nonzero, missing in parts:
+            totals[batch], counts[batch], bad[batch] = weighted, nonzero, missing
     problems += [
         Problem(
             rule="missing-quantity",
@@ -400,28 +404,87 @@ def _by_columns(quantities: dict[str, pl.Expr]) -> dict[tuple[str, ...] | None, 
     return out
 
 
+def _few_combinations(frame: pl.DataFrame, columns: tuple[str, ...]) -> bool:
+    """Whether `columns` take few enough distinct value combinations for the combination path.
+
+    Judged on SAMPLE_ROWS evenly spaced rows (a guess that only decides speed, never the result).
+    """
+    if not columns:
+        return True
+    n = frame.height
+    sample = frame.select(columns)
+    if n > SAMPLE_ROWS:
+        sample = sample.gather(np.linspace(0, n - 1, SAMPLE_ROWS).astype(np.int64))
+    return sample.n_unique() <= MAX_COMBINATIONS
+
+
+Part = tuple[list[int], np.ndarray, np.ndarray, np.ndarray]  # indices, (b, G) totals, (b, G) counts, (b,) missing
+
+
+def _combination_totals(
+    frame: pl.DataFrame,
+    columns: tuple[str, ...],
+    exprs: list[tuple[int, pl.Expr]],
+    *,
+    key: _GroupKey,
+    w: np.ndarray,
+    kept: np.ndarray | None,
+    cache: dict,
+) -> Iterator[Part]:
+    """Totals of row-wise quantities of `columns`: W[g, u] from one bincount, the quantities on the U combinations."""
+    combos = _Combos.build(frame, columns, cache=cache)
+    pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
+    for batch, values in combos.evaluate(frame, exprs):
+        missing = np.isnan(values)
+        weighted, nonzero = pairs.totals(np.where(missing, 0.0, values))
+        yield batch, weighted, nonzero, np.rint(combos.rows @ missing).astype(np.int64)
+
+
+def _row_totals(frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, w: np.ndarray) -> Iterator[Part]:
+    """Totals of quantities evaluated on the full frame (as any polars select would), then summed per group.
+
+    A polars group_by on the group index, at most BATCH_CELLS values at a time.
+    """
+    step = max(1, BATCH_CELLS // max(frame.height, 1))
+    group = pl.Series("__g", key.g)
+    weight = pl.Series("__w", w)
+    for s in range(0, len(exprs), step):
+        batch = exprs[s : s + step]
+        names = [f"__q{k}" for k, _ in batch]
+        values = frame.with_columns(e.cast(pl.Float64).alias(q) for (_, e), q in zip(batch, names, strict=True))
+        values = values.select(names).with_columns(group, weight)
+        missing = values.select((pl.col(q).is_null() | pl.col(q).is_nan()).sum() for q in names).row(0)
+        grouped = values.group_by("__g").agg(
+            *[(pl.col("__w") * pl.col(q)).sum().alias(q) for q in names],
+            *[((pl.col("__w") != 0) & (pl.col(q) != 0)).sum().cast(pl.Int64).alias(q + "_n") for q in names],
+        )
+        index = grouped["__g"].to_numpy()
+        weighted = np.zeros((len(batch), key.size))
+        nonzero = np.zeros((len(batch), key.size), dtype=np.int64)
+        weighted[:, index] = grouped.select(names).to_numpy().T
+        nonzero[:, index] = grouped.select([q + "_n" for q in names]).to_numpy().T
+        yield [k for k, _ in batch], weighted, nonzero, np.array(missing, dtype=np.int64)
+
+
 @dataclass(frozen=True)
 class _Combos:
     """The distinct value combinations u of a set of columns: each respondent's u, and the rows of each u."""
 
     u: np.ndarray  # (n,) combination of each respondent
     size: int  # U
-    first: np.ndarray | None  # (U,) a row holding each combination; None: U = n, the rows themselves
+    first: np.ndarray  # (U,) a row holding each combination
     rows: np.ndarray  # (U,) respondents per combination
 
     @staticmethod
-    def build(frame: pl.DataFrame, columns: tuple[str, ...] | None, *, cache: dict) -> _Combos:
-        n = frame.height
-        if columns is None:
-            return _Combos(np.arange(n, dtype=np.int64), n, None, np.ones(n))
-        u, size = _combine([_cached(frame, c, cache) for c in columns], n)
+    def build(frame: pl.DataFrame, columns: tuple[str, ...], *, cache: dict) -> _Combos:
+        u, size = _combine([_cached(frame, c, cache) for c in columns], frame.height)
         return _Combos(u, size, _first_rows(u, size), np.bincount(u, minlength=size).astype(np.float64))
 
     def evaluate(
         self, frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]]
     ) -> Iterator[tuple[list[int], np.ndarray]]:
         """(indices, (U, b) values) of the quantities, evaluated on one row per combination, b columns at a time."""
-        source = frame if self.first is None else frame.gather(self.first)
+        source = frame.gather(self.first)
         step = max(1, BATCH_CELLS // max(self.size, 1))
         for s in range(0, len(exprs), step):
             batch = exprs[s : s + step]
