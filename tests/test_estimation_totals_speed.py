@@ -65,7 +65,7 @@ def assert_same_as_direct(frame: pl.DataFrame, quantities: dict[str, pl.Expr], *
 
 
 def invented_sample(seed: int, n: int) -> pl.DataFrame:
-    """Invented respondents: string strata, nested PSU ids, string classes, zero weights, nulls and -0.0."""
+    """Invented respondents: string strata, nested PSU ids, string classes, zero weights, nulls, -0.0, Int8 extremes."""
     rng = np.random.default_rng(seed)
     y = rng.normal(3.0, 2.0, n).round(1)
     y[rng.random(n) < 0.1] = -0.0
@@ -80,6 +80,7 @@ def invented_sample(seed: int, n: int) -> pl.DataFrame:
             "seg": rng.choice(["x", "y"], n),
             "y": y,
             "flag": rng.random(n) < 0.3,
+            "tiny": pl.Series(rng.choice([-128, 0, 127], n), dtype=pl.Int8).scatter(rng.integers(0, n, n // 5), None),
         }
     )
 
@@ -97,6 +98,7 @@ QUANTITIES = {
     "previous y": pl.col("y").shift(1).fill_null(0.0),  # not row-wise either
     "centred q": pl.col("q").fill_null(0) - pl.col("q").fill_null(0).mean(),  # ... of a column with few values
     "previous seg=x": (pl.col("seg") == "x").shift(1).fill_null(False).cast(pl.Float64),
+    "tiny at its extremes or missing": (pl.col("tiny").cast(pl.Int16).abs() > 100).fill_null(True).cast(pl.Float64),
 }
 
 DESIGNS = [

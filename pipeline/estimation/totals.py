@@ -247,7 +247,7 @@ def _factorize(series: pl.Series) -> tuple[np.ndarray, int]:
     if dtype.is_integer() and dtype != pl.UInt64 and series.null_count() < len(series):
         lo, hi = int(series.min()), int(series.max())  # type: ignore[arg-type]
         if hi - lo <= 4 * len(series):
-            values = series.fill_null(hi + 1).to_numpy().astype(np.int64) - lo
+            values = series.cast(pl.Int64).fill_null(hi + 1).to_numpy() - lo
             return _dense(values, hi - lo + 2)
     ranks = series.rank("dense").fill_null(0).to_numpy().astype(np.int64)
     ranks = np.where(nulls, ranks.max(initial=0) + 1, ranks)
@@ -418,7 +418,7 @@ def _few_combinations(frame: pl.DataFrame, columns: tuple[str, ...]) -> bool:
     return sample.n_unique() <= MAX_COMBINATIONS
 
 
-Part = tuple[list[int], np.ndarray, np.ndarray, np.ndarray]  # indices, (b, G) totals, (b, G) counts, (b,) missing
+_Part = tuple[list[int], np.ndarray, np.ndarray, np.ndarray]  # indices, (b, G) totals, (b, G) counts, (b,) missing
 
 
 def _combination_totals(
@@ -430,7 +430,7 @@ def _combination_totals(
     w: np.ndarray,
     kept: np.ndarray | None,
     cache: dict,
-) -> Iterator[Part]:
+) -> Iterator[_Part]:
     """Totals of row-wise quantities of `columns`: W[g, u] from one bincount, the quantities on the U combinations."""
     combos = _Combos.build(frame, columns, cache=cache)
     pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
@@ -440,7 +440,7 @@ def _combination_totals(
         yield batch, weighted, nonzero, np.rint(combos.rows @ missing).astype(np.int64)
 
 
-def _row_totals(frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, w: np.ndarray) -> Iterator[Part]:
+def _row_totals(frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, w: np.ndarray) -> Iterator[_Part]:
     """Totals of quantities evaluated on the full frame (as any polars select would), then summed per group.
 
     A polars group_by on the group index, at most BATCH_CELLS values at a time.
