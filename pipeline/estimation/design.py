@@ -147,15 +147,6 @@ class SampleDesign:
         )
 
 
-def sampling_fractions(
-    gt: GroupTotals, fpc_values: Mapping[str, float] | None, *, fpc_name: object = None
-) -> np.ndarray | None:
-    """(H,) first-stage sampling fractions f_h = n_h / N_h of the strata of `gt` (None without an FPC)."""
-    n_h = np.bincount(gt.psu_stratum, minlength=gt.n_strata)
-    population = _population_counts(gt.stratum_labels, n_h, fpc_values, fpc_name=fpc_name)
-    return None if population is None else n_h / population
-
-
 def _population_counts(
     labels: tuple[str, ...], n_h: np.ndarray, values: Mapping[str, float] | None, *, fpc_name: object
 ) -> np.ndarray | None:
