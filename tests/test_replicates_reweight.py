@@ -87,22 +87,37 @@ def naive_replicate_totals(frame: pl.DataFrame, factors: np.ndarray, psu_index: 
     return np.stack([rake_respondents(a[psu_index] * w0, age, sex) @ y for a in factors])
 
 
+FULL_GRID = [[40, 35, 44], [38, 45], [50, 36, 41, 39]]  # every PSU holds every class: the layout is a view
+
+
+@pytest.mark.parametrize("how", ["auto", "sparse", "layout", "groups"])
 @pytest.mark.parametrize(
     ("method", "sizes"),
-    [("jkn", FEW_STRATA), ("jkn", MANY_STRATA), ("jk1", FEW_STRATA), ("bootstrap", FEW_STRATA), ("brr", [[5, 4]] * 6)],
+    [
+        ("jkn", FEW_STRATA),
+        ("jkn", MANY_STRATA),
+        ("jk1", FEW_STRATA),
+        ("bootstrap", FEW_STRATA),
+        ("bootstrap", FULL_GRID),
+        ("brr", [[5, 4]] * 6),
+        ("fay", [[30, 42]] * 5),
+    ],
 )
-def test_group_total_replay_equals_naive_replicate_raking(method, sizes):
-    # with 12 strata the jackknife changes under 10% of the (replicate, PSU) factors: the sparse
-    # correction path; the other designs take the dense product path
+def test_group_total_replay_equals_naive_replicate_raking(method, sizes, how):
+    # auto: with 12 strata the jackknife changes under 10% of the (replicate, PSU) factors (sparse
+    # correction); FULL_GRID and the Fay design fill the (PSU, class) grid (layout product); the
+    # small PSUs of the others leave most of it empty (groups product). Every formulation is run.
     frame = make_frame(seed=4, sizes=sizes)
     gt = group_totals(frame, QUANTITIES, weight="w0", strata="stratum", psu="psu", classes="cls")
-    rf = make_replicates(method, gt.psu_stratum, replicates=60, seed=3)
+    rf = make_replicates(method, gt.psu_stratum, replicates=60, seed=3, fay=0.5 if method == "fay" else 0.0)
     psu_index = (
         frame.select(pl.struct("stratum", "psu").rank("dense") - 1).to_series().to_numpy().astype(np.int64)
     )
     expected = naive_replicate_totals(frame, rf.factors, psu_index)
     # invariant (../shared/DESIGN.md): the group-total path equals the per-respondent computation
-    np.testing.assert_allclose(replicate_totals(gt, rf, reweight=rake_classes, base="one"), expected, rtol=1e-9)
+    np.testing.assert_allclose(
+        replicate_totals(gt, rf, reweight=rake_classes, base="one", how=how), expected, rtol=1e-9
+    )
 
 
 def test_full_sample_replay_equals_respondent_raking():

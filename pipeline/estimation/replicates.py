@@ -48,13 +48,15 @@ import polars as pl
 
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.hadamard import hadamard, order_at_least
-from pipeline.estimation.totals import GroupTotals
+from pipeline.estimation.totals import GroupTotals, sum_by
 
 METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap")
 SUPPLIED_METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap", "sdr")
 DEFAULT_BOOTSTRAP_REPLICATES = 500  # common practice, no source
 MAX_FACTOR_BYTES = 2 * 2**30  # largest (R, P) factor matrix built
 SPARSE_SHARE = 0.1  # replay through the sparse correction when at most this share of factors differ from 1
+FORMULATIONS = ("sparse", "layout", "groups")  # exact formulations of replicate_totals with a recipe
+DENSE_FILL = 1.5  # (PSU, class) layout product when P * C <= DENSE_FILL * G (tuned with bench/bench_estimation.py)
 
 
 @dataclass(frozen=True)
@@ -470,6 +472,7 @@ def replicate_totals(
     reweight: Callable[[np.ndarray], np.ndarray] | None = None,
     base: str | None = None,
     chunk_bytes: int = 256 * 2**20,
+    how: str = "auto",
 ) -> np.ndarray:
     """Replicate totals of every quantity: (R, K).
 
@@ -477,13 +480,23 @@ def replicate_totals(
     With a recipe: B_r(c) = sum_g a_r(j_g) W_g 1[c_g = c] are the replicate class totals of the
     weights (W = totals of the quantity `base`, which is 1 for every respondent), f_r = reweight(B)
     (R, C) are the replayed class factors, and t_rk = sum_g a_r(j_g) f_r(c_g) Y[g, k]
-    (../shared/DESIGN.md). This is computed as f_r @ Y_class plus a correction over the groups
-    whose PSU factor differs from 1 (sparse for the jackknife and BRR-like sets), or as a dense
-    (R, G) @ (G, K) product in chunks of at most `chunk_bytes` of replicate weights when most
-    factors differ from 1 (bootstrap). No loop over replicates, no respondent-level matrix.
+    (../shared/DESIGN.md). Three exact formulations of the same sum (they differ only by
+    floating-point rounding); `how` = "auto" picks by cost, or names one of them:
+      "sparse"  f_r @ Y_class plus a correction over the groups whose PSU factor differs from 1;
+                auto when at most SPARSE_SHARE of the factors differ from 1 (jackknife);
+      "layout"  t_r = sum_c f_r(c) (a_r @ Y_c): one BLAS product of the factors (R, P) with the
+                totals laid out as (P, C*K), then a batched product with the class factors over
+                C; no (R, G) matrix is built; auto when the groups fill at least 1/DENSE_FILL of
+                the (PSU, class) grid (bootstrap, BRR, Fay on PSUs holding most classes);
+      "groups"  a dense (R, G) @ (G, K) product of the replicate weights a_r(j_g) f_r(c_g); auto
+                otherwise (many classes, each in few PSUs: the layout would be mostly zeros).
+    The dense ones run in chunks of replicates holding at most `chunk_bytes` of intermediate
+    values. No loop over replicates, no respondent-level matrix.
     """
     if rf.supplied:
         raise ValueError("supplied replicate weights have no PSU factors: use supplied_replicate_totals")
+    if how not in ("auto", *FORMULATIONS):
+        raise ValueError(f"how must be 'auto' or one of {', '.join(FORMULATIONS)}, not {how!r}")
     if rf.factors.shape[1] != gt.n_psus:
         raise ValueError(f"the factors have {rf.factors.shape[1]} PSUs, the group totals {gt.n_psus}")
     if reweight is None:
@@ -493,8 +506,12 @@ def replicate_totals(
     if f.shape != b.shape:
         raise ValueError(f"reweight returned shape {f.shape}, expected {b.shape}")
     delta = rf.factors - 1.0
-    if np.count_nonzero(delta) <= SPARSE_SHARE * delta.size:
+    if how == "auto":
+        how = _formulation(gt, delta, n_classes=f.shape[1])
+    if how == "sparse":
         return f @ gt.class_totals() + _sparse_correction(gt, delta, f)
+    if how == "layout":
+        return _layout_product(gt, rf.factors, f, chunk_bytes=chunk_bytes)
     rows = max(1, chunk_bytes // (8 * max(len(gt.psu), 1)))
     return np.concatenate(
         [
@@ -502,6 +519,48 @@ def replicate_totals(
             for s in range(0, rf.n_replicates, rows)
         ]
     )
+
+
+def _formulation(gt: GroupTotals, delta: np.ndarray, *, n_classes: int) -> str:
+    """The cheapest exact formulation of `replicate_totals` (cost rules in its docstring)."""
+    if np.count_nonzero(delta) <= SPARSE_SHARE * delta.size:
+        return "sparse"
+    if gt.n_psus * n_classes <= DENSE_FILL * len(gt.psu):
+        return "layout"
+    return "groups"
+
+
+def _psu_class_layout(gt: GroupTotals, n_classes: int) -> np.ndarray:
+    """Group totals laid out as a C-contiguous (P, C*K) array: row j holds Y[(j, c), :] for c = 0..C-1
+    (zeros where PSU j has no respondent of class c). A view of `gt.totals` when the groups are
+    already every (PSU, class) pair in order (GroupTotals sorts groups by stratum, PSU, class)."""
+    key = gt.psu * n_classes + gt.cls
+    size = gt.n_psus * n_classes
+    k = gt.totals.shape[1]
+    if len(key) == size and np.array_equal(key, np.arange(size)):
+        return np.ascontiguousarray(gt.totals, dtype=np.float64).reshape(gt.n_psus, n_classes * k)
+    return sum_by(key, gt.totals, size).reshape(gt.n_psus, n_classes * k)
+
+
+def _layout_product(gt: GroupTotals, factors: np.ndarray, f: np.ndarray, *, chunk_bytes: int) -> np.ndarray:
+    """t_rk = sum_c f_r(c) sum_j a_r(j) Y[(j, c), k] (the replicate totals of `replicate_totals`).
+
+    Contracting over PSUs first turns the work into Z = A @ Y_layout, one (R, P) @ (P, C*K) BLAS
+    product (multi-threaded), then t_r = f_r @ Z_r (C, K), a batched vector-matrix product: the same
+    R*P*C*K multiply-adds as the (R, G) @ (G, K) product when the grid is full, without building or
+    gathering the (R, G) replicate weights. Chunks of replicates keep Z within `chunk_bytes`.
+    """
+    n_rep, n_classes = f.shape
+    y = _psu_class_layout(gt, n_classes)
+    k = gt.totals.shape[1]
+    rows = min(n_rep, max(1, chunk_bytes // (8 * max(y.shape[1], 1))))
+    z = np.empty((rows, y.shape[1]))
+    out = np.empty((n_rep, k))
+    for s in range(0, n_rep, rows):
+        e = min(s + rows, n_rep)
+        np.matmul(factors[s:e], y, out=z[: e - s])
+        out[s:e] = np.matmul(f[s:e, None, :], z[: e - s].reshape(e - s, n_classes, k))[:, 0, :]
+    return out
 
 
 def _sparse_correction(gt: GroupTotals, delta: np.ndarray, f: np.ndarray) -> np.ndarray:
