@@ -8,6 +8,8 @@ is that definition written out directly over groups (one einsum); the respondent
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import polars as pl
 import pytest
@@ -105,6 +107,25 @@ def test_layout_is_a_view_of_a_full_grid_and_fills_zeros_otherwise():
     assert not filled.all()
     np.testing.assert_array_equal(layout[sparse.psu, sparse.cls], sparse.totals)
     assert not layout[~filled].any()
+
+
+@pytest.mark.parametrize("how", ["sparse", "layout", "groups"])
+def test_repeated_groups_are_summed(how):
+    # a GroupTotals built elsewhere may repeat a (PSU, class) group, in any order
+    gt = group_totals(make_frame([[30, 25], [28, 33, 20]], 4, seed=5), QUANTITIES, weight="w0",
+                      strata="stratum", psu="psu", classes="cls")
+    twice = replace(
+        gt,
+        stratum=np.r_[gt.stratum, gt.stratum[::-1]],
+        psu=np.r_[gt.psu, gt.psu[::-1]],
+        cls=np.r_[gt.cls, gt.cls[::-1]],
+        totals=np.r_[gt.totals, gt.totals[::-1]],
+        counts=np.r_[gt.counts, gt.counts[::-1]],
+    )
+    rf = make_replicates("bootstrap", gt.psu_stratum, replicates=30, seed=2)
+    half = lambda b: smooth_reweight(b / 2.0)  # noqa: E731 -- the same class factors on doubled totals
+    # identity: the totals are linear in Y, so doubling every group doubles every replicate total
+    close(replicate_totals(twice, rf, reweight=half, base="one", how=how) / 2.0, direct_totals(gt, rf.factors))
 
 
 def test_unknown_formulation_is_refused():

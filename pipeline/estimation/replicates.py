@@ -56,7 +56,7 @@ DEFAULT_BOOTSTRAP_REPLICATES = 500  # common practice, no source
 MAX_FACTOR_BYTES = 2 * 2**30  # largest (R, P) factor matrix built
 SPARSE_SHARE = 0.1  # replay through the sparse correction when at most this share of factors differ from 1
 FORMULATIONS = ("sparse", "layout", "groups")  # exact formulations of replicate_totals with a recipe
-DENSE_FILL = 1.5  # (PSU, class) layout product when P * C <= DENSE_FILL * G (tuned with bench/bench_estimation.py)
+DENSE_FILL = 1.5  # (PSU, class) layout product when P * C <= DENSE_FILL * G (bench data: break-even near 1.8)
 
 
 @dataclass(frozen=True)
@@ -539,6 +539,10 @@ def _psu_class_layout(gt: GroupTotals, n_classes: int) -> np.ndarray:
     k = gt.totals.shape[1]
     if len(key) == size and np.array_equal(key, np.arange(size)):
         return np.ascontiguousarray(gt.totals, dtype=np.float64).reshape(gt.n_psus, n_classes * k)
+    if np.all(key[1:] > key[:-1]):  # one group per (PSU, class), in order: place the rows
+        y = np.zeros((size, k))
+        y[key] = gt.totals
+        return y.reshape(gt.n_psus, n_classes * k)
     return sum_by(key, gt.totals, size).reshape(gt.n_psus, n_classes * k)
 
 
