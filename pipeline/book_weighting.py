@@ -181,6 +181,9 @@ def variance_lines(options: VarianceOptions, study: Study, *, calibrated: bool) 
             "Standard errors: Taylor linearization of each estimate, with the first-stage "
             "with-replacement (ultimate cluster) variance between primary sampling units within strata"
             + (" and the declared finite population correction" if study.design.population or study.design.sampling_fraction else "")
+            + (", plus the variance within the sampled units from the second stage"
+               if study.design.psu and (study.design.population or study.design.sampling_fraction)
+               and study.design.second_stage_fraction < 1 else "")
             + "."
         )
         if calibrated:

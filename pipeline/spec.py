@@ -49,6 +49,9 @@ class Design:
     sampling_fraction: alternatively, the first-stage sampling fraction per stratum code.
     single_psu: policy for strata with one PSU: "error", "certainty", "centre" or "collapse".
     collapse_with: for "collapse", stratum code -> partner stratum code.
+    second_stage_fraction: with PSUs and a finite population correction, the share of each selected
+    PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
+    taken), for the within-PSU term of the two-stage variance (pipeline.estimation.design).
     """
 
     kind: Literal["probability", "nonprobability"] = "probability"
@@ -61,6 +64,7 @@ class Design:
     sampling_fraction: dict[Code, float] = field(default_factory=dict)
     single_psu: Literal["error", "certainty", "centre", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
+    second_stage_fraction: float = 0.0
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -165,6 +169,7 @@ _DESIGN_KEYS = (
     "sampling_fraction",
     "single_psu",
     "collapse_with",
+    "second_stage_fraction",
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
     "single": ("label", "type", "values", "nets"),
@@ -575,6 +580,14 @@ class _Checker:
                 "a finite population correction needs a probability sample (kind = \"probability\")",
             )
         collapse = self.collapse(raw, strata, strata_var, single_psu)
+        second = self.typed(raw, "design", "second_stage_fraction", float)
+        if second is not None and not 0 <= second <= 1:
+            self.add("bad-value", "design.second_stage_fraction", f"must lie between 0 and 1, not {second}", value=second)
+            second = None
+        if second is not None and (psu is None or not (population or fraction)):
+            self.add("conflicting-keys", "design.second_stage_fraction",
+                     "second_stage_fraction only applies with design.psu and a finite population correction "
+                     "(population or sampling_fraction)")
         return Design(
             kind=kind,  # type: ignore[arg-type]
             strata=strata,
@@ -586,6 +599,7 @@ class _Checker:
             sampling_fraction=fraction,
             single_psu=single_psu,  # type: ignore[arg-type]
             collapse_with=collapse,
+            second_stage_fraction=float(second) if second is not None else 0.0,
         )
 
     def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:

@@ -168,6 +168,7 @@ def wave_estimates(
         fpc=_fpc(study),
         single_psu=design.single_psu,
         collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
+        second_stage_fraction=design.second_stage_fraction,
         mean=means,
         quantile=[(c, 0.5) for c in medians] or None,
         variance=options.method,

@@ -98,8 +98,11 @@ def test_agstrat_fpc_as_sampling_fraction_equals_population_count() -> None:
     ("check_id", "file", "options"),
     [
         # one-stage cluster samples with FPC on PSUs; values "computed_here" in check_values (regression values only)
-        ("gpa_cluster_mean", "gpa.csv", {"weight": "wt", "psu": "suite", "fpc": {"all": 100.0}, "mean": "gpa"}),
-        ("algebra_cluster_ratio_mean", "algebra.csv", {"weight": "w", "psu": "class", "fpc": {"all": 187.0}, "mean": "score"}),
+        # (whole PSUs taken: second_stage_fraction = 1, so no within-PSU term)
+        ("gpa_cluster_mean", "gpa.csv", {"weight": "wt", "psu": "suite", "fpc": {"all": 100.0}, "mean": "gpa",
+                                         "second_stage_fraction": 1.0}),
+        ("algebra_cluster_ratio_mean", "algebra.csv", {"weight": "w", "psu": "class", "fpc": {"all": 187.0},
+                                                       "mean": "score", "second_stage_fraction": 1.0}),
         # stratified multistage, with replacement, no FPC: computed_here
         ("syc_mean_age", "syc.csv", {"weight": "finalwt", "strata": "stratum", "psu": "psu", "mean": "age"}),
     ],
@@ -114,9 +117,11 @@ def test_cluster_designs_regression_values(check_id: str, file: str, options: di
 
 def test_schools_two_stage_one_term_variance() -> None:
     frame = pl.read_csv(LOHR / "schools.csv")
-    row = estimate(frame, weight="finalwt", psu="schoolid", fpc={"all": 75.0}, mean="math").row(0, named=True)
+    row = estimate(frame, weight="finalwt", psu="schoolid", fpc={"all": 75.0}, mean="math",
+                   second_stage_fraction=1.0).row(0, named=True)
     # check_values schools_twostage_ratio_mean_math (computed_here): mean 33.122948; the one-term
-    # (PSU totals only, first-stage FPC) SE is 1.638372 -- the ultimate-cluster formula we use
+    # (PSU totals only, first-stage FPC) SE is 1.638372 -- what f_2 = 1 (no within-PSU term) gives;
+    # the two-term default is tested in test_review_two_stage.py
     assert row["estimate"] == pytest.approx(check("schools_twostage_ratio_mean_math")["estimate"], rel=1e-7)
     assert row["se"] == pytest.approx(1.638372, rel=1e-6)
 

@@ -81,7 +81,7 @@ def test_weighted_percent_is_the_weighted_share_of_the_base(wave):
 
 
 def test_taylor_se_matches_the_ultimate_cluster_formula(wave):
-    """SE of a ratio p = sum(w y)/sum(w) by the with-replacement PSU formula with the first-stage FPC,
+    """SE of a ratio p = sum(w y)/sum(w) by the two-stage formula with the first-stage FPC,
     computed here independently: z_i = w_i (y_i - p) / sum(w); v = sum_h (1 - n_h/N_h) n_h/(n_h-1)
     sum_j (z_hj - zbar_h)^2 (Lohr, Sampling: Design and Analysis, 3rd ed., sections 6.3 and 9.1,
     from memory; N_h = 220 and 180 PSUs as declared in the spec)."""
@@ -96,6 +96,12 @@ def test_taylor_se_matches_the_ultimate_cluster_formula(wave):
         zh = psu_totals.filter(pl.col("h") == h)["z"].to_numpy()
         n_h = len(zh)
         v += (1 - n_h / big_n) * n_h / (n_h - 1) * ((zh - zh.mean()) ** 2).sum()
+    # plus the two-stage within-PSU term f_h sum_j m_j/(m_j-1) sum_i (z_i - zbar_j)^2, second-stage
+    # fraction undeclared so taken as 0 (Cochran 1977, Sampling Techniques, 3rd ed., section 11.9, from memory)
+    units = pl.DataFrame({"h": r["region"].cast(pl.String), "j": r["area"].cast(pl.String), "z": z})
+    for (h, _), part in units.group_by("h", "j"):
+        zj, n_h = part["z"].to_numpy(), psu_totals.filter(pl.col("h") == h).height
+        v += n_h / {"1": 220, "2": 180}[h] * len(zj) / (len(zj) - 1) * ((zj - zj.mean()) ** 2).sum()
     assert _row(cells, "channel", "In a shop")["se"] == pytest.approx(100 * np.sqrt(v), rel=1e-9)
     # design degrees of freedom: PSUs minus strata = 6 - 2 (Lohr 3rd ed. section 9.1, from memory)
     assert _row(cells, "channel", "In a shop")["df"] == 4

@@ -33,6 +33,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "(a value <= 1 is read as the sampling fraction)",
     )
     design.add_argument(
+        "--second-stage-fraction",
+        type=float,
+        default=0.0,
+        metavar="F2",
+        help="with --psu and --fpc: share of each selected PSU's units sampled (default 0, unknown: the "
+        "within-PSU variance term is added in full; 1: whole PSUs were taken)",
+    )
+    design.add_argument(
         "--single-psu",
         choices=("error", "certainty", "centre"),
         default="error",
@@ -112,6 +120,7 @@ def run(args: argparse.Namespace) -> int:
             seed=args.seed,
             level=args.level,
             single_psu=args.single_psu,
+            second_stage_fraction=args.second_stage_fraction,
             source=str(path),
         ).select(COLUMNS)
     if args.format == "json":

@@ -29,7 +29,7 @@ from pipeline.estimation.design import PsuLayout, SampleDesign
 from pipeline.estimation.estimands import Ratios
 from pipeline.estimation.quantiles import weighted_cdfs, woodruff_interval
 from pipeline.estimation.result import COLUMNS, EstimateTable, interval
-from pipeline.estimation.taylor import Calibration, taylor_variance
+from pipeline.estimation.taylor import Calibration, SquaredTotals, taylor_variance, within_psu_variance
 from pipeline.estimation.totals import GroupTotals, group_totals
 
 VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied")
@@ -181,11 +181,13 @@ def estimate_table(
     calibration_matrix: np.ndarray | None = None,
     reweight: Callable[[np.ndarray], np.ndarray] | None = None,
     source: str | None = None,
+    second_stage_fraction: float = 0.0,
 ) -> EstimateTable:
     """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
     design = SampleDesign(
         weight=weight, strata=strata, psu=psu, psu_ids=psu_ids, fpc=fpc,  # type: ignore[arg-type]
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
+        second_stage_fraction=float(second_stage_fraction),
     )
     _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
@@ -221,7 +223,13 @@ def estimate_table(
         calibration = None
         if calibration_matrix is not None:
             calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
-        theta, v = taylor_variance(final, ratios, layout, calibration=calibration)
+        within = None
+        if layout.has_fpc and psu is not None and second_stage_fraction < 1:  # two-stage (`design` docstring)
+            squared = _squared_totals(frame, plan, gt, weight=weight, strata=strata, psu=psu, classes=classes,
+                                      psu_ids=psu_ids, reweight=reweight)
+            within = within_psu_variance(final, ratios, squared, weight_column=gt.column(WEIGHT_QUANTITY),
+                                         calibration=calibration)
+        theta, v = taylor_variance(final, ratios, layout, calibration=calibration, within=within)
         df: float = layout.df
         has_fpc = layout.has_fpc
     else:
@@ -248,13 +256,42 @@ def _final_weights(
     return pl.Series(FINAL_WEIGHT, w0 * f[idx])
 
 
+def _group_factors(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] | None) -> np.ndarray:
+    """(G,) the recipe's class factor f(c) of each group (1 without a recipe)."""
+    if reweight is None:
+        return np.ones(len(gt.cls))
+    b = gt.class_totals(gt.totals[:, [gt.column(WEIGHT_QUANTITY)]])[:, 0]
+    return np.asarray(reweight(b[None, :]), dtype=np.float64)[0][gt.cls]
+
+
 def _final_totals(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] | None) -> GroupTotals:
     """The group totals under final weights: `gt` itself, or with each class scaled by the recipe's factor f(c)."""
     if reweight is None:
         return gt
-    b = gt.class_totals(gt.totals[:, [gt.column(WEIGHT_QUANTITY)]])[:, 0]
-    f = np.asarray(reweight(b[None, :]), dtype=np.float64)[0]
-    return replace(gt, totals=gt.totals * f[gt.cls][:, None])
+    return replace(gt, totals=gt.totals * _group_factors(gt, reweight)[:, None])
+
+
+def _squared_totals(
+    frame: pl.DataFrame, plan: _Plan, gt: GroupTotals, *, weight: str, strata: str | None, psu: str | None,
+    classes: str | None, psu_ids: str, reweight: Callable[[np.ndarray], np.ndarray] | None,
+) -> SquaredTotals:
+    """Sums of w_i^2 y_ik by group (w = base * f(c), the final weights), for the within-PSU term.
+
+    A second grouped pass with the squared base weight, in the same groups as `gt`; each group is
+    then scaled by f(c)^2."""
+    squared_weight = "__squared_weight"
+    sq = group_totals(frame.with_columns((pl.col(weight).cast(pl.Float64) ** 2).alias(squared_weight)), plan.quantities,
+                      weight=squared_weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
+    if not (np.array_equal(sq.psu, gt.psu) and np.array_equal(sq.cls, gt.cls)):
+        raise AssertionError("the squared-weight pass formed different groups")
+    f = _group_factors(gt, reweight)
+
+    def index(names: list[str | None]) -> np.ndarray:
+        return np.array([gt.column(n) if n is not None else -1 for n in names], dtype=np.int64)
+
+    cells = plan.cells
+    return SquaredTotals(sq.totals * (f**2)[:, None], index([c.s_nn for c in cells]), index([c.s_nd for c in cells]),
+                         index([c.s_dd for c in cells]))
 
 
 def estimate(
@@ -285,6 +322,7 @@ def estimate(
     calibration_matrix: np.ndarray | None = None,
     reweight: Callable[[np.ndarray], np.ndarray] | None = None,
     source: str | None = None,
+    second_stage_fraction: float = 0.0,
 ) -> pl.DataFrame:
     """Design-based estimates, one row per estimate, as a polars DataFrame.
 
@@ -292,6 +330,8 @@ def estimate(
     n_eff, reason, method. Options:
       weight (required), strata, psu, fpc (column of stratum population counts N_h, a value <= 1
       read as the sampling fraction; or a mapping stratum -> value), psu_ids ("nested"/"unique");
+      second_stage_fraction: with an FPC and PSUs, the share of each selected PSU's units sampled
+      (default 0, unknown: the within-PSU term is added in full; 1: whole PSUs, none is added);
       mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
       quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
       variance: "taylor" (default) or a replicate method: "jk1", "jkn", "brr", "fay", "bootstrap",
@@ -314,7 +354,7 @@ def estimate(
         replicate_cols=replicate_cols, replicate_scale=replicate_scale, replicate_method=replicate_method,
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
-        reweight=reweight, source=source,
+        reweight=reweight, source=source, second_stage_fraction=second_stage_fraction,
     ).frame
 
 

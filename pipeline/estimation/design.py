@@ -7,6 +7,12 @@ The variance of an estimated total t = sum_h sum_j z_hj, where z_hj is the weigh
     v(t) = sum_h (1 - f_h) * n_h / (n_h - 1) * sum_j (z_hj - zbar_h)^2,     zbar_h = (1/n_h) sum_j z_hj
 
 n_h PSUs sampled in stratum h, f_h = n_h / N_h their sampling fraction (0 without an FPC).
+With an FPC and PSUs that are clusters of respondents (a two-stage design), (1 - f_h) applies to
+this between-PSU term only and the within-PSU term sum_h f_h sum_j v2(z_hj) is added
+(`PsuLayout.second_stage`; Cochran 1977 section 11.9, from memory), with the second-stage sampling
+fraction f_2 declared by the design (`second_stage_fraction`; 0, the safe side, when unknown; 1 for
+a one-stage cluster sample, which has no within-PSU term). Without an FPC the with-replacement
+formula alone is the usual, slightly conservative, estimator.
 References: Cochran (1977), Sampling Techniques, 3rd ed., section 11.8, eq. (11.30) with
 replacement (from memory); Wolter (2007), Introduction to Variance Estimation, 2nd ed., section 1.4
 (from memory); Lohr (2022), Sampling: Design and Analysis, 3rd ed., sections 3.2 (stratified SRS,
@@ -49,6 +55,8 @@ class SampleDesign:
     or None (with-replacement variance, no FPC).
     psu_ids: "nested" (PSU ids restart within each stratum) or "unique" (unique across strata).
     collapse_with: for single_psu "collapse", stratum label -> partner stratum label.
+    second_stage_fraction: f_2, the share of each selected PSU's units taken at the second stage
+    (0 when unknown, the safe side; 1 when whole PSUs are taken); used only with an FPC.
     """
 
     weight: str
@@ -58,9 +66,13 @@ class SampleDesign:
     fpc: str | Mapping[str, float] | None = None
     single_psu: SinglePsu = "error"
     collapse_with: Mapping[str, str] = field(default_factory=dict)
+    second_stage_fraction: float = 0.0
 
     def __post_init__(self) -> None:
         problems = []
+        if not 0.0 <= self.second_stage_fraction <= 1.0:
+            message = "the second-stage sampling fraction must lie between 0 and 1"
+            problems.append(Problem(rule="bad-option", message=message, value=str(self.second_stage_fraction)))
         if self.single_psu not in SINGLE_PSU_POLICIES:
             problems.append(
                 Problem(
@@ -143,7 +155,8 @@ class SampleDesign:
             )
         fraction = np.zeros(len(labels)) if population is None else n_h / population
         return PsuLayout(
-            psu_stratum=psu_stratum, stratum_labels=labels, fraction=fraction, single_psu=self.single_psu
+            psu_stratum=psu_stratum, stratum_labels=labels, fraction=fraction, single_psu=self.single_psu,
+            second_stage_fraction=self.second_stage_fraction,
         )
 
 
@@ -225,6 +238,7 @@ class PsuLayout:
     stratum_labels: tuple[str, ...]
     fraction: np.ndarray  # (H,) first-stage sampling fraction f_h (0 without FPC)
     single_psu: str
+    second_stage_fraction: float = 0.0  # f_2 (SampleDesign)
 
     @property
     def n_strata(self) -> int:
@@ -265,6 +279,17 @@ class PsuLayout:
         """
         dev, factor = self._deviations(np.asarray(z, dtype=np.float64))
         return (factor[:, None] * dev**2).sum(axis=0)
+
+    def second_stage(self, within: np.ndarray) -> np.ndarray:
+        """(P, m) second-stage variances v2(z_hj) of the PSU totals (taken with f_2 = 0) ->
+        (m,) sum_h f_h (1 - f_2) sum_j v2(z_hj).
+
+        The second term of the two-stage estimator (Cochran 1977 section 11.9, from memory): with a
+        first-stage FPC the PSU term only carries the between-PSU part times (1 - f_h), and the
+        within-PSU part enters with weight f_h. 0 without an FPC or when whole PSUs are taken.
+        """
+        f = self.fraction[self.psu_stratum] * (1.0 - self.second_stage_fraction)
+        return (f[:, None] * np.asarray(within, dtype=np.float64)).sum(axis=0)
 
     def covariance(self, z: np.ndarray) -> np.ndarray:
         """(P, m) PSU totals -> (m, m) covariance matrix, the same formula with cross-products."""

@@ -26,6 +26,7 @@ from typing import Protocol
 import numpy as np
 
 from pipeline.estimation.design import PsuLayout
+from pipeline.estimation.estimands import Ratios
 from pipeline.estimation.totals import GroupTotals, sum_by
 
 
@@ -58,14 +59,71 @@ def linearized_group_totals(
     z = gt.totals @ np.nan_to_num(estimand.linearize(t))
     if calibration is None:
         return z
+    w_g = gt.totals[:, calibration.weight_column]
+    return z - w_g[:, None] * _fitted(gt, z, calibration)[gt.cls]
+
+
+def _fitted(gt: GroupTotals, z: np.ndarray, calibration: Calibration) -> np.ndarray:
+    """(C, m) fitted values x_c' B of each class for the linearized group totals z (module docstring)."""
     x = np.asarray(calibration.matrix, dtype=np.float64)
     if x.shape[0] < gt.n_classes:
         raise ValueError(f"calibration matrix has {x.shape[0]} classes but the data have {gt.n_classes}")
-    w_g = gt.totals[:, calibration.weight_column]
-    w_c = np.bincount(gt.cls, weights=w_g, minlength=x.shape[0])
+    w_c = np.bincount(gt.cls, weights=gt.totals[:, calibration.weight_column], minlength=x.shape[0])
     z_c = sum_by(gt.cls, z, x.shape[0])
-    b = np.linalg.pinv((x * w_c[:, None]).T @ x) @ (x.T @ z_c)
-    return z - w_g[:, None] * (x @ b)[gt.cls]
+    return x @ (np.linalg.pinv((x * w_c[:, None]).T @ x) @ (x.T @ z_c))
+
+
+@dataclass(frozen=True)
+class SquaredTotals:
+    """Group totals of the squared-weight moments, for the within-PSU (second-stage) term.
+
+    totals: (G, K) sums over group g of w_i^2 y_ik for the quantities of the first pass, in the
+    same groups and columns (w the final weights); s_nn, s_nd, s_dd: (m,) column indices of
+    y_num^2, y_num y_den and y_den^2 of each estimator (-1 when absent: a total has no denominator).
+    """
+
+    totals: np.ndarray
+    s_nn: np.ndarray
+    s_nd: np.ndarray
+    s_dd: np.ndarray
+
+
+def within_psu_variance(
+    gt: GroupTotals,
+    estimand: Ratios,
+    squared: SquaredTotals,
+    *,
+    weight_column: int,
+    calibration: Calibration | None = None,
+) -> np.ndarray:
+    """(P, m) second-stage variance estimates v2(z_j) = m_j/(m_j - 1) [sum_i u_i^2 - (sum_i u_i)^2 / m_j].
+
+    u_i = w_i (z_i - x_c' B) is respondent i's weighted linearized value (its calibration residual
+    when `calibration` is given) and m_j the PSU's respondents with a non-zero weight (counts of
+    the quantity 1 at `weight_column`); 0 when
+    m_j < 2. The second-stage sampling fraction is taken as 0 (unknown), which errs on the safe
+    side. With z_i = a y_num,i + b y_den,i and beta = x_c' B,
+        sum_{i in g} u_i^2 = a^2 S(y_num^2) + 2ab S(y_num y_den) + b^2 S(y_den^2)
+                             - 2 beta (a S(y_num) + b S(y_den)) + beta^2 S(1),   S(.) = sum_{i in g} w_i^2 (.)
+    (Cochran 1977, Sampling Techniques, 3rd ed., section 11.9; Lohr 3rd ed. section 5.3, from memory).
+    """
+    t = gt.totals.sum(axis=0)
+    d = np.nan_to_num(estimand.linearize(t))
+    cols = np.arange(len(estimand))
+    a = d[estimand.num, cols]
+    b = np.where(estimand.is_total, 0.0, d[np.maximum(estimand.den, 0), cols])
+    s = np.append(squared.totals, np.zeros((squared.totals.shape[0], 1)), axis=1)  # column -1: absent moment
+    den = np.where(estimand.is_total, -1, estimand.den)
+    q = a**2 * s[:, squared.s_nn] + 2 * a * b * s[:, squared.s_nd] + b**2 * s[:, squared.s_dd]
+    if calibration is not None:
+        beta = _fitted(gt, gt.totals @ d, calibration)[gt.cls]
+        ones = s[:, [weight_column]]
+        q = q - 2 * beta * (a * s[:, estimand.num] + b * s[:, den]) + beta**2 * ones
+    u = gt.psu_totals(linearized_group_totals(gt, estimand, calibration=calibration))
+    m = gt.psu_totals(gt.counts[:, [weight_column]].astype(float))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v2 = m / (m - 1) * (gt.psu_totals(q) - u**2 / m)
+    return np.where(m >= 2, np.maximum(v2, 0.0), 0.0)
 
 
 def taylor_variance(
@@ -75,17 +133,22 @@ def taylor_variance(
     *,
     calibration: Calibration | None = None,
     covariance: bool = False,
+    within: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Estimates theta(t) and their Taylor variances (m,), or the (m, m) covariance when `covariance`.
 
     v(theta) = sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2 with z_hj the PSU totals of the
-    linearized variable (calibration residuals when `calibration` is given). Estimates with a zero
-    denominator total are NaN, and so are their variances.
+    linearized variable (calibration residuals when `calibration` is given). `within`: (P, m)
+    second-stage variances of the PSU totals (`within_psu_variance`), added as
+    sum_h f_h sum_j v2(z_hj), the second term of the two-stage estimator (variances only).
+    Estimates with a zero denominator total are NaN, and so are their variances.
     """
     t = gt.totals.sum(axis=0)
     theta = estimand.value(t)
     z = gt.psu_totals(linearized_group_totals(gt, estimand, calibration=calibration))
     v = layout.covariance(z) if covariance else layout.variance(z)
+    if within is not None and not covariance:
+        v = v + layout.second_stage(within)
     undefined = ~np.isfinite(theta)
     if covariance:
         v[undefined, :] = np.nan
