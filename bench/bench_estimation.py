@@ -15,10 +15,11 @@ What each timing counts:
                  totals (helper W's raking engine `pipeline.weighting.ipf.rake`, all replicates at
                  once) + replicate totals (`replicate_totals`) + variances.
   bootstrap      the same with 500 Rao-Wu bootstrap replicates.
-  replicate totals alone  `replicate_totals` for the bootstrap in its two dense formulations: the
-                 (PSU, class) layout product (chosen here) and the (R, G) group product (used
-                 before it), with the floating-point rate of each over the R*P*C*K multiply-adds
-                 that both perform (the machine's BLAS peak bounds them).
+  replicate totals alone  `replicate_totals` in its two dense formulations, the (PSU, class)
+                 layout product (chosen here) and the (R, G) group product (used before it), for
+                 the bootstrap and for Fay's BRR (rho = 0.5) on the same groups with each stratum's
+                 4 PSUs split into 2 pairs; with the floating-point rate of each over the R*P*C*K
+                 multiply-adds that both perform (the machine's BLAS peak bounds them).
   dense          the plain method on a random subsample of `--dense-rows` respondents, extrapolated
                  linearly to n (its matrices would not fit in 4 GB at full size: n x R replicate
                  weights plus n x K indicators, about 5.7 GB for R = 400): build the n x K
@@ -230,16 +231,23 @@ def grouped_phase(rows: int, repeats: int) -> dict:
         v, n_rep = timed(out, f"{name}_after_pass", repeats, replicate)
         out[f"{name}_replicates"] = n_rep
         out[f"{name}_se_ratio_median"] = float(np.median(np.sqrt(v / v_taylor)))
-    boot = make_replicates("bootstrap", gt.psu_stratum, replicates=BOOTSTRAP_REPLICATES, seed=5)
-    by_how = {
-        how: timed(out, f"bootstrap_totals_{how}", repeats,
-                   lambda how=how: replicate_totals(gt, boot, reweight=reweight, base="one", how=how))
-        for how in ("layout", "groups")
-    }
-    out["bootstrap_totals_max_rel_diff"] = float(
-        np.max(np.abs(by_how["layout"] - by_how["groups"])) / np.max(np.abs(by_how["groups"]))
-    )
-    out["bootstrap_totals_gflop"] = 2.0 * BOOTSTRAP_REPLICATES * gt.n_psus * gt.n_classes * len(q) / 1e9
+    # Fay's BRR needs 2 PSUs per stratum: the same groups with the 4 PSUs of a stratum split into 2 pairs
+    paired = replace(gt, stratum=gt.psu // 2, psu_stratum=np.arange(gt.n_psus) // 2,
+                     stratum_labels=tuple(map(str, range(gt.n_psus // 2))))
+    for name, g, rf in (
+        ("bootstrap", gt, make_replicates("bootstrap", gt.psu_stratum, replicates=BOOTSTRAP_REPLICATES, seed=5)),
+        ("fay", paired, make_replicates("fay", paired.psu_stratum, fay=0.5)),
+    ):
+        by_how = {
+            how: timed(out, f"{name}_totals_{how}", repeats,
+                       lambda how=how, g=g, rf=rf: replicate_totals(g, rf, reweight=reweight, base="one", how=how))
+            for how in ("layout", "groups")
+        }
+        out[f"{name}_totals_max_rel_diff"] = float(
+            np.max(np.abs(by_how["layout"] - by_how["groups"])) / np.max(np.abs(by_how["groups"]))
+        )
+        out[f"{name}_totals_gflop"] = 2.0 * rf.n_replicates * g.n_psus * g.n_classes * len(q) / 1e9
+        out[f"{name}_totals_replicates"] = rf.n_replicates
     out["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     return out
 
@@ -321,13 +329,14 @@ def main() -> None:
     for name in ("jackknife", "bootstrap"):
         print(f"{name}: after the pass {g[f'{name}_after_pass']:.2f} s ({g[f'{name}_after_pass_cpu']:.2f} s CPU); "
               f"median SE / Taylor SE {g[f'{name}_se_ratio_median']:.3f}")
-    flop = g["bootstrap_totals_gflop"]
-    print(f"bootstrap replicate totals alone ({flop:.1f} GFLOP of multiply-adds; results differ by "
-          f"{g['bootstrap_totals_max_rel_diff']:.1e} relative):")
-    for how, label in (("layout", "(PSU, class) layout product"), ("groups", "(R, G) group product   ")):
-        wall, cpu = g[f"bootstrap_totals_{how}"], g[f"bootstrap_totals_{how}_cpu"]
-        print(f"   {label} {wall:6.3f} s wall ({cpu:5.3f} s CPU)   {flop / wall:5.1f} GFLOP/s wall, "
-              f"{flop / cpu:5.1f} per CPU second")
+    for name, design in (("bootstrap", f"{STRATA} strata x {PSUS} PSUs"), ("fay", f"{STRATA * PSUS // 2} strata x 2 PSUs")):
+        flop = g[f"{name}_totals_gflop"]
+        print(f"{name} replicate totals alone, R = {g[f'{name}_totals_replicates']}, {design} ({flop:.1f} GFLOP of "
+              f"multiply-adds; the two results differ by {g[f'{name}_totals_max_rel_diff']:.1e} relative):")
+        for how, label in (("layout", "(PSU, class) layout product"), ("groups", "(R, G) group product      ")):
+            wall, cpu = g[f"{name}_totals_{how}"], g[f"{name}_totals_{how}_cpu"]
+            print(f"   {label} {wall:6.3f} s wall ({cpu:5.3f} s CPU)   {flop / wall:5.1f} GFLOP/s wall, "
+                  f"{flop / cpu:5.1f} per CPU second")
     print(f"peak memory: grouped methods {g['peak_rss_mb']:,.0f} MB (after the group_totals pass "
           f"{g['peak_rss_mb_after_pass']:,.0f} MB; target < 4096 MB); dense subsample {d['dense_peak_rss_mb']:,.0f} MB")
 
