@@ -83,6 +83,7 @@ def test_every_formulation_equals_the_group_sum(sizes, n_classes, method, seed):
     gt = group_totals(frame, QUANTITIES, weight="w0", strata="stratum", psu="psu", classes="cls")
     rf = make_replicates(method, gt.psu_stratum, replicates=40, seed=seed, fay=0.3 if method == "fay" else 0.0)
     expected = direct_totals(gt, rf.factors)
+    # identity: each formulation is an exact rearrangement of the group sum (replicate_totals docstring)
     for how in ("auto", *FORMULATIONS):
         close(replicate_totals(gt, rf, reweight=smooth_reweight, base="one", how=how), expected)
     # one replicate per chunk: chunking changes nothing
@@ -123,9 +124,12 @@ def test_repeated_groups_are_summed(how):
         counts=np.r_[gt.counts, gt.counts[::-1]],
     )
     rf = make_replicates("bootstrap", gt.psu_stratum, replicates=30, seed=2)
-    half = lambda b: smooth_reweight(b / 2.0)  # noqa: E731 -- the same class factors on doubled totals
+
+    def halved(b: np.ndarray) -> np.ndarray:
+        return smooth_reweight(b / 2.0)  # the class factors of the single groups
+
     # identity: the totals are linear in Y, so doubling every group doubles every replicate total
-    close(replicate_totals(twice, rf, reweight=half, base="one", how=how) / 2.0, direct_totals(gt, rf.factors))
+    close(replicate_totals(twice, rf, reweight=halved, base="one", how=how) / 2.0, direct_totals(gt, rf.factors))
 
 
 def test_unknown_formulation_is_refused():
