@@ -493,7 +493,12 @@ def _table(
     s_nn, s_nd, s_dd = (moments([getattr(c, k) for c in cells]) for k in ("s_nn", "s_nd", "s_dd"))
     sum_wz2 = deff_mod.second_moment(ratios, t, s_nn=s_nn, s_nd=s_nd, s_dd=s_dd)
     sum_wz = np.where(ratios.is_total, t[ratios.num], 0.0)
-    v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=base_w, base_n=n, fpc=has_fpc)
+    # a domain total is the total of y * 1[domain] over the whole sample, whose size is random under
+    # SRS: its reference is an SRS of the variable's whole-sample base (`deff` module docstring)
+    srs_idx = np.array([col(f"base|{c.variable}|") if c.statistic == "total" and c.domain else col(c.base)
+                        for c in cells])
+    srs_n = gt.counts.sum(axis=0)[srs_idx]
+    v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=t[srs_idx], base_n=srs_n, fpc=has_fpc)
     deff = deff_mod.design_effect(v, v_srs)
     se = np.sqrt(np.maximum(v, 0.0))
     est = theta.copy()
@@ -525,7 +530,7 @@ def _table(
             "df": np.full(len(cells), float(df)),
             "deff": deff,
             "n": n.astype(np.int64),
-            "n_eff": deff_mod.effective_n(n, deff),
+            "n_eff": deff_mod.effective_n(srs_n, deff),
             "reason": reason.astype(str).tolist(),
             "method": [method] * len(cells),
         }

@@ -16,6 +16,13 @@ definitions: a mean, z_i = (y_i - ybar)/W, gives (1 - f) s_w^2 / n with
 s_w^2 = n/(n-1) sum w (y - ybar)^2 / W the weighted estimate of the population variance; a
 proportion gives p(1-p) / (n - 1) = [p(1-p) n/(n-1)] / n; a total gives W^2 times the mean's
 variance (Lohr 3rd ed. sections 2.3 and 7.5, from memory).
+
+A domain mean or proportion is compared with an SRS of the domain's own respondents (the usual
+domain design effect). A domain total is the total of y * 1[domain] over the whole sample, and
+under SRS the domain's size is random, so its reference is an SRS of the variable's whole-sample
+base (n and W of every respondent who answered, z_i = y_i in the domain and 0 outside; Lohr 3rd
+ed. section 4.3, from memory): an SRS with equal weights then has deff = 1 for every total, and
+n_eff = n / deff refers to that whole-sample n.
 """
 
 from __future__ import annotations
