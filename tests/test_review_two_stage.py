@@ -162,3 +162,17 @@ def test_whole_psus_drop_the_within_term() -> None:
     # section 5.2, from memory); f_2 = 1/2 halves the within term (the (1 - f_2) factor of section 11.9)
     assert whole["se"][0] ** 2 == pytest.approx(first, rel=1e-10)
     assert half["se"][0] ** 2 - first == pytest.approx((unknown["se"][0] ** 2 - first) / 2, rel=1e-9)
+
+
+def test_covariance_with_the_within_term_is_refused() -> None:
+    from pipeline.estimation import SampleDesign, group_totals, taylor_variance
+    from pipeline.estimation.estimands import Ratios
+
+    frame = _invented_two_stage()
+    gt = group_totals(frame, {"y": pl.col("y")}, weight="w", strata="h", psu="j")
+    layout = SampleDesign(weight="w", strata="h", psu="j", fpc={"A": 12.0, "B": 9.0}).layout(
+        gt, fpc_values={"A": 12.0, "B": 9.0})
+    ratios = Ratios(num=[0], den=[-1])
+    # a covariance needs within-PSU cross-moments, which are not computed: an error, not a silent omission
+    with pytest.raises(ValueError, match="variances only"):
+        taylor_variance(gt, ratios, layout, covariance=True, within=np.zeros((gt.n_psus, 1)))

@@ -140,14 +140,17 @@ def taylor_variance(
     v(theta) = sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2 with z_hj the PSU totals of the
     linearized variable (calibration residuals when `calibration` is given). `within`: (P, m)
     second-stage variances of the PSU totals (`within_psu_variance`), added as
-    sum_h f_h sum_j v2(z_hj), the second term of the two-stage estimator (variances only).
+    sum_h f_h sum_j v2(z_hj), the second term of the two-stage estimator (variances only: the
+    covariance of a two-stage design with an FPC needs cross-moments, so that pair is refused).
     Estimates with a zero denominator total are NaN, and so are their variances.
     """
+    if within is not None and covariance:
+        raise ValueError("the within-PSU term is computed for variances only, not covariances")
     t = gt.totals.sum(axis=0)
     theta = estimand.value(t)
     z = gt.psu_totals(linearized_group_totals(gt, estimand, calibration=calibration))
     v = layout.covariance(z) if covariance else layout.variance(z)
-    if within is not None and not covariance:
+    if within is not None:
         v = v + layout.second_stage(within)
     undefined = ~np.isfinite(theta)
     if covariance:
