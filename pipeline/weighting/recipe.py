@@ -93,9 +93,12 @@ class _RakeOp:
                      "population": float(pop[0]) if pop.size else 0.0,
                      "empty": {m.name: int(e) for m, e in zip(self.margins, fit.empty) if e}}
         if not fit.converged and not self.allow_nonconvergence:
+            replicate = (" while re-weighting a replicate (the full-sample fit converged): a replicate that drops "
+                         "PSUs left these margins unreachable or slow to reach; collapse categories so each spans "
+                         "several PSUs, or") if self.reference is not None else ";"
             raise DataError(
                 f"weighting[{self.index}] ({self.kind}) did not converge in {fit.iterations} iteration(s) "
-                f"(tolerance {self.tolerance:g}); set allow_nonconvergence = true to accept it with a warning",
+                f"(tolerance {self.tolerance:g}){replicate} set allow_nonconvergence = true to accept it with a warning",
                 [Problem("rake-nonconvergence", f"margin '{m.name}': remaining relative discrepancy {d:.3e}"
                          + (f"; {e} empty category-replicate pair(s)" if e else ""), column=m.name)
                  for m, d, e in zip(self.margins, fit.discrepancy, fit.empty)],

@@ -1,0 +1,28 @@
+"""Review findings in the weighting recipe: error messages when a replicate's re-weighting fails."""
+
+from __future__ import annotations
+
+import numpy as np
+import polars as pl
+import pytest
+
+from pipeline.errors import DataError
+from pipeline.weighting.recipe import fit_recipe
+from pipeline.weighting.steps import RakeStep
+from pipeline.weighting.targets import TargetTable
+
+
+def test_replicate_raking_failure_says_it_is_a_replicate_and_what_to_do() -> None:
+    data = pl.DataFrame({"respondent_id": [str(i) for i in range(8)], "a": [1, 1, 2, 2, 1, 1, 2, 2],
+                         "b": [1, 2, 1, 2, 1, 2, 1, 2]})
+    targets = TargetTable({"a": {("1",): 60.0, ("2",): 40.0}, "b": {("1",): 50.0, ("2",): 50.0}}, "test")
+    recipe = fit_recipe(data, [RakeStep(0, (("a",), ("b",)), targets, max_iterations=50)], base_weights=np.ones(8))
+    # the full-sample fit meets both margins (sums of the final weights by category)
+    np.testing.assert_allclose(np.bincount(data["a"].to_numpy(), weights=recipe.weights)[1:], [60.0, 40.0], rtol=1e-6)
+    # a replicate keeping only the classes (a=1, b=1) and (a=2, b=2): a=1 must hold 60 and b=1 50 in the
+    # same class, so no raking solution exists (the margins conflict: an arithmetic fact)
+    diagonal = np.array([[2.0, 0.0, 0.0, 2.0]])
+    with pytest.raises(DataError) as info:
+        recipe.replay(diagonal)
+    text = info.value.render()
+    assert "replicate" in text and "full-sample" in text and "collapse" in text
