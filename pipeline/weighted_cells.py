@@ -157,7 +157,6 @@ def wave_estimates(
     if not meaning:
         return pl.DataFrame(schema=ESTIMATE_SCHEMA)
     design = study.design
-    replicate = options.method != "taylor"
     calibration = recipe.calibration_matrix()
     table = estimate_table(
         frame,
@@ -178,7 +177,7 @@ def wave_estimates(
         level=options.level,
         classes=_CLASS,
         reweight=recipe.replay,
-        calibration_matrix=None if replicate or calibration.shape[1] == 0 else calibration,
+        calibration_matrix=None if calibration.shape[1] == 0 else calibration,
         source=f"wave {wave}",
     ).frame
     weighted_base = _weighted_bases(frame, list(meaning))

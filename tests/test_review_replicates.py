@@ -1,6 +1,6 @@
 """Review findings in the replicate methods (pipeline/estimation/replicates.py, replicate_variance.py).
 
-Kept as strict expected failures until the replicate code is changed; each names its outside source.
+The jackknife with a first-stage FPC carries the within-PSU term of the two-stage estimator, as Taylor does.
 """
 
 from __future__ import annotations
@@ -24,11 +24,6 @@ def _two_stage(seed: int = 3) -> pl.DataFrame:
     return pl.DataFrame(rows)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="replicate variances multiply the whole PSU-level variance by (1 - f_h) in a two-stage design and "
-    "leave out the within-PSU term f_h sum_j v2(z_hj); Taylor has it (pipeline.estimation.design docstring)",
-)
 def test_jackknife_of_a_total_with_first_stage_fpc_matches_the_two_stage_estimator() -> None:
     frame = _two_stage()
     options = {"weight": "w", "strata": "h", "psu": "j", "fpc": {"A": 12.0, "B": 9.0}, "total": "y"}

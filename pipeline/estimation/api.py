@@ -33,6 +33,9 @@ from pipeline.estimation.taylor import Calibration, SquaredTotals, taylor_varian
 from pipeline.estimation.totals import GroupTotals, group_totals
 
 VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied")
+# replicate methods that apply the first-stage FPC (1 - f_h) to the between-PSU deviations
+# (`replicates` module docstring); they get the within-PSU term of the two-stage estimator too
+FPC_REPLICATE_METHODS: tuple[str, ...] = ("jk1", "jkn")
 WEIGHT_QUANTITY = "__weight"
 FINAL_WEIGHT = "__final_weight_for_cdf"
 
@@ -225,10 +228,8 @@ def estimate_table(
             calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
         within = None
         if layout.has_fpc and psu is not None and second_stage_fraction < 1:  # two-stage (`design` docstring)
-            squared = _squared_totals(frame, plan, gt, weight=weight, strata=strata, psu=psu, classes=classes,
-                                      psu_ids=psu_ids, reweight=reweight)
-            within = within_psu_variance(final, ratios, squared, weight_column=gt.column(WEIGHT_QUANTITY),
-                                         calibration=calibration)
+            within = _within_psu(frame, plan, gt, final, ratios, calibration, weight=weight, strata=strata, psu=psu,
+                                 classes=classes, psu_ids=psu_ids, reweight=reweight)
         theta, v = taylor_variance(final, ratios, layout, calibration=calibration, within=within)
         df: float = layout.df
         has_fpc = layout.has_fpc
@@ -242,6 +243,15 @@ def estimate_table(
             seed=seed, reweight=reweight, layout=layout, certainty=design.single_psu == "certainty", source=source,
         )
         has_fpc = layout is not None and layout.has_fpc
+        if has_fpc and variance in FPC_REPLICATE_METHODS and psu is not None and second_stage_fraction < 1:
+            # the jackknife scales the between-PSU deviations by (1 - f_h); the two-stage estimator then
+            # adds the within-PSU term with weight f_h, as Taylor does (`design.PsuLayout.second_stage`)
+            calibration = None
+            if calibration_matrix is not None:
+                calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
+            within = _within_psu(frame, plan, gt, final, ratios, calibration, weight=weight, strata=strata, psu=psu,
+                                 classes=classes, psu_ids=psu_ids, reweight=reweight)
+            v = v + layout.second_stage(within)
     return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
 
 
@@ -269,6 +279,19 @@ def _final_totals(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] 
     if reweight is None:
         return gt
     return replace(gt, totals=gt.totals * _group_factors(gt, reweight)[:, None])
+
+
+def _within_psu(
+    frame: pl.DataFrame, plan: _Plan, gt: GroupTotals, final: GroupTotals, ratios: Ratios,
+    calibration: Calibration | None, *, weight: str, strata: str | None, psu: str | None, classes: str | None,
+    psu_ids: str, reweight: Callable[[np.ndarray], np.ndarray] | None,
+) -> np.ndarray:
+    """(P, m) second-stage variances v2(z_hj) of the PSU totals of the linearized values (calibration
+    residuals when `calibration` is given), for `PsuLayout.second_stage`."""
+    squared = _squared_totals(frame, plan, gt, weight=weight, strata=strata, psu=psu, classes=classes,
+                              psu_ids=psu_ids, reweight=reweight)
+    return within_psu_variance(final, ratios, squared, weight_column=gt.column(WEIGHT_QUANTITY),
+                               calibration=calibration)
 
 
 def _squared_totals(
@@ -341,7 +364,8 @@ def estimate(
       replicate methods; level: interval level (t intervals with the design df; quantiles: the
       Woodruff interval); source: the file name used in error messages; single_psu: "error",
       "certainty", "centre" or "collapse" (collapse_with);
-      classes + calibration_matrix: calibration residuals in Taylor (see `taylor`); classes +
+      classes + calibration_matrix: calibration residuals in Taylor (see `taylor`) and in the
+      within-PSU term of the jackknife with a first-stage FPC; classes +
       reweight: `weight` then holds the adjusted base weights and reweight maps (R, C) class
       weight totals to (R, C) class factors (the weighting recipe's replay): final weights are
       base * f(class), and replicate methods replay the recipe in every replicate.
