@@ -95,6 +95,8 @@ def weigh_and_estimate(
                 responses = load_responses(con, study, [wave_id])
                 layout = cells.filter(pl.col("wave") == wave_id)
                 estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
+            for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
+                print(warning.render(), file=sys.stderr)
     finally:
         con.close()
     joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")

@@ -121,7 +121,7 @@ def test_schools_two_stage_one_term_variance() -> None:
                    second_stage_fraction=1.0).row(0, named=True)
     # check_values schools_twostage_ratio_mean_math (computed_here): mean 33.122948; the one-term
     # (PSU totals only, first-stage FPC) SE is 1.638372 -- what f_2 = 1 (no within-PSU term) gives;
-    # the two-term default is tested in test_review_two_stage.py
+    # the two-term default is tested in test_estimation_two_stage.py
     assert row["estimate"] == pytest.approx(check("schools_twostage_ratio_mean_math")["estimate"], rel=1e-7)
     assert row["se"] == pytest.approx(1.638372, rel=1e-6)
 

@@ -1,4 +1,4 @@
-"""Review findings in the weighting recipe: error messages when a replicate's re-weighting fails."""
+"""Error messages when a replicate's re-weighting fails (the full-sample fit converged)."""
 
 from __future__ import annotations
 

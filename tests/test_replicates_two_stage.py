@@ -1,4 +1,4 @@
-"""Review findings in the replicate methods (pipeline/estimation/replicates.py, replicate_variance.py).
+"""Replicate variance in a two-stage design with a first-stage FPC.
 
 The jackknife with a first-stage FPC carries the within-PSU term of the two-stage estimator, as Taylor does.
 """
