@@ -176,3 +176,14 @@ def test_covariance_with_the_within_term_is_refused() -> None:
     # a covariance needs within-PSU cross-moments, which are not computed: an error, not a silent omission
     with pytest.raises(ValueError, match="variances only"):
         taylor_variance(gt, ratios, layout, covariance=True, within=np.zeros((gt.n_psus, 1)))
+
+
+def test_jackknife_of_a_total_with_first_stage_fpc_matches_the_two_stage_estimator() -> None:
+    frame = _invented_two_stage()
+    options = {"weight": "w", "strata": "h", "psu": "j", "fpc": {"A": 12.0, "B": 9.0}, "total": "y"}
+    jkn = estimate(frame, **options, variance="jkn").row(0, named=True)
+    taylor = estimate(frame, **options).row(0, named=True)
+    # identity: for a linear total the stratified jackknife reproduces the PSU-level formula exactly
+    # (Wolter 2007 section 4.5, from memory); with a first-stage FPC the unbiased two-stage estimator
+    # adds sum_h f_h sum_j v2(z_hj) (Cochran 1977 section 11.9, from memory), which Taylor computes
+    assert jkn["se"] == pytest.approx(taylor["se"], rel=1e-10)
