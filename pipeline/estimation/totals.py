@@ -153,7 +153,7 @@ def group_totals(
     problems = _design_problems(frame, weight=weight, strata=strata, psu=psu, classes=classes)
     names = tuple(quantities)
     w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
-    cache: dict[str, tuple[np.ndarray, int]] = {}
+    cache: dict[str, _Factor] = {}
     key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
     # transposed while filled (one contiguous row per quantity); counts are sums of products of
     # integers below 2**53, so exact in float64 and stored as integers as they are
@@ -181,7 +181,7 @@ def group_totals(
     if problems:
         raise DataError("the data cannot be estimated from", problems)
     if psu_ids == "unique" and psu is not None:
-        _check_unique_psus(frame, key, psu=psu)
+        _check_unique_psus(key, psu=psu)
     cls = key.class_index(frame, classes=classes)
     return GroupTotals(
         stratum=key.stratum,
@@ -223,56 +223,111 @@ def _design_problems(
     return problems
 
 
-def _dense(code: np.ndarray, size: int) -> tuple[np.ndarray, int]:
-    """Renumber integer codes in [0, size) to 0..m-1 keeping their order (m = number of distinct codes)."""
+def _dense(code: np.ndarray, size: int) -> tuple[np.ndarray, int, np.ndarray]:
+    """Renumber integer codes in [0, size) to 0..m-1 keeping their order: (codes, m, the m distinct codes sorted)."""
     if size <= 4 * len(code) + 1024:
         present = np.bincount(code, minlength=size) > 0
-        m = int(present.sum())
-        return (code if m == size else (np.cumsum(present) - 1)[code]), m
+        distinct = np.flatnonzero(present)
+        m = len(distinct)
+        return (code if m == size else (np.cumsum(present) - 1)[code]), m, distinct
     distinct, inverse = np.unique(code, return_inverse=True)
-    return inverse.reshape(-1), len(distinct)
+    return inverse.reshape(-1), len(distinct), distinct
 
 
-def _factorize(series: pl.Series) -> tuple[np.ndarray, int]:
-    """Codes 0..m-1 of a column's values, in the column's sort order; a null is one more code, after every value.
+@dataclass(frozen=True)
+class _Factor:
+    """A column coded as integers in [0, size) that sort as its values do (null after every value).
 
-    Floats are told apart by bit pattern (0.0 and -0.0, NaN and null stay distinct values) after
-    being ordered by rank, so an expression can never see two different values as one.
+    An integer column of a narrow range is coded by arithmetic, code = value - offset, so no code
+    need be taken (`values` decodes); any other column by dense rank, `holder` giving each code's value.
     """
-    dtype = series.dtype
-    if dtype == pl.Boolean:
-        series = series.cast(pl.UInt8)
+
+    codes: np.ndarray  # (n,) int64 code of each row
+    size: int  # codes lie in [0, size)
+    holder: pl.Series | None = None  # rank coding: the value of each code
+    offset: int = 0  # integer coding: value = code + offset
+    null_code: int | None = None  # integer coding: the code of a null, when the column has nulls
+    dtype: pl.DataType = pl.Int64  # integer coding: the column's dtype
+
+    @staticmethod
+    def of(series: pl.Series) -> _Factor:
+        """Code a column. Floats are told apart by bit pattern (0.0 and -0.0, NaN and null stay distinct
+        values) after being ordered by rank, so an expression can never see two different values as one."""
         dtype = series.dtype
-    nulls = series.is_null().to_numpy()
-    if dtype.is_integer() and dtype != pl.UInt64 and series.null_count() < len(series):
-        lo, hi = int(series.min()), int(series.max())  # type: ignore[arg-type]
-        if hi - lo <= 4 * len(series):
-            values = series.cast(pl.Int64).fill_null(hi + 1).to_numpy() - lo
-            return _dense(values, hi - lo + 2)
-    ranks = series.rank("dense").fill_null(0).to_numpy().astype(np.int64)
-    ranks = np.where(nulls, ranks.max(initial=0) + 1, ranks)
-    by_rank = (ranks, int(ranks.max(initial=0)) + 1)
-    if not dtype.is_float():
-        return _dense(*by_rank)
-    bits = np.unique(series.cast(pl.Float64).fill_null(0.0).to_numpy().view(np.int64), return_inverse=True)[1]
-    return _combine([by_rank, (bits.reshape(-1), int(bits.max(initial=-1)) + 1)], len(series))
+        coded = series.cast(pl.UInt8) if dtype == pl.Boolean else series
+        n, nulls = len(series), coded.null_count()
+        if coded.dtype.is_integer() and coded.dtype != pl.UInt64 and nulls < n:
+            lo, hi = int(coded.min()), int(coded.max())  # type: ignore[arg-type]
+            if hi - lo <= 4 * n:
+                values = coded.cast(pl.Int64).fill_null(hi + 1) if nulls else coded.cast(pl.Int64)
+                codes = values.to_numpy() - lo if lo else values.to_numpy()
+                null_code = hi - lo + 1 if nulls else None
+                return _Factor(codes, hi - lo + 1 + bool(nulls), offset=lo, null_code=null_code, dtype=dtype)
+        is_null = coded.is_null().to_numpy()
+        ranks = coded.rank("dense").fill_null(0).to_numpy().astype(np.int64)
+        ranks = np.where(is_null, ranks.max(initial=0) + 1, ranks)
+        by_rank = (ranks, int(ranks.max(initial=0)) + 1)
+        if dtype.is_float():
+            bits = np.unique(coded.cast(pl.Float64).fill_null(0.0).to_numpy().view(np.int64), return_inverse=True)[1]
+            codes, m, _ = _combine([by_rank, (bits.reshape(-1), int(bits.max(initial=-1)) + 1)], n)
+        else:
+            codes, m, _ = _dense(*by_rank)
+        rows = np.empty(m, dtype=np.int64)
+        rows[codes] = np.arange(n, dtype=np.int64)  # some row holding each code (every row of a code holds its value)
+        return _Factor(codes, m, holder=series.gather(rows))
+
+    @staticmethod
+    def constant(n: int, value: object) -> _Factor:
+        """One code for every row (no code at all when there are no rows)."""
+        return _Factor(np.zeros(n, dtype=np.int64), 1 if n else 0, holder=pl.Series([value] if n else []))
+
+    @staticmethod
+    def row_numbers(n: int) -> _Factor:
+        """Each row its own code, its value the row number."""
+        return _Factor(np.arange(n, dtype=np.int64), n)
+
+    def values(self, codes: np.ndarray) -> pl.Series:
+        """The column's value of each code in `codes`, in the column's dtype."""
+        if self.holder is not None:
+            return self.holder.gather(codes)
+        values = pl.Series(codes + self.offset, dtype=pl.Int64)
+        if self.null_code is not None and (missing := np.flatnonzero(codes == self.null_code)).size:
+            values = values.scatter(missing, None)
+        return values.cast(self.dtype)
+
+    @property
+    def pair(self) -> tuple[np.ndarray, int]:
+        """(codes, size), as `_combine` takes them."""
+        return self.codes, self.size
 
 
-def _combine(columns: list[tuple[np.ndarray, int]], n: int) -> tuple[np.ndarray, int]:
-    """Codes of the value combinations of several factorised columns, in lexicographic order: 0..m-1."""
+def _combine(columns: list[tuple[np.ndarray, int]], n: int) -> tuple[np.ndarray, int, np.ndarray]:
+    """Codes of the value combinations of several coded columns, in lexicographic order: (codes 0..m-1, m, levels).
+
+    levels (m, number of columns) holds each combination's code in each column, so values of the
+    combinations come from the columns' values without looking at rows again.
+    """
     code, size = np.zeros(n, dtype=np.int64), 1
+    levels, radices = np.zeros((1, 0), dtype=np.int64), []
     for values, m in columns:
         if size * m >= 2**62:
-            code, size = _dense(code, size)
+            code, size, levels = _compact(code, size, levels, radices)
+            radices = []
         code, size = code * m + values, size * m
-    return _dense(code, size)
+        radices.append(m)
+    return _compact(code, size, levels, radices)
 
 
-def _first_rows(code: np.ndarray, size: int) -> np.ndarray:
-    """(size,) the first row holding each code."""
-    first = np.full(size, len(code), dtype=np.int64)
-    np.minimum.at(first, code, np.arange(len(code), dtype=np.int64))
-    return first
+def _compact(
+    code: np.ndarray, size: int, levels: np.ndarray, radices: list[int]
+) -> tuple[np.ndarray, int, np.ndarray]:
+    """Renumber mixed-radix codes code = (...(l * r_1 + d_1) * r_2 + d_2 ...) densely; the levels of each new code."""
+    code, m, distinct = _dense(code, size)
+    digits = []
+    for r in reversed(radices):
+        distinct, digit = np.divmod(distinct, r)
+        digits.append(digit)
+    return code, m, np.column_stack([levels[distinct], *reversed(digits)]).astype(np.int64, copy=False)
 
 
 @dataclass(frozen=True)
@@ -283,10 +338,10 @@ class _GroupKey:
     size: int  # G
     stratum: np.ndarray  # (G,) stratum index (codes are dense and in sort order, so they are the indices)
     psu: np.ndarray  # (G,) PSU index
-    class_code: np.ndarray  # (G,) class code (rank of the class value)
-    group_row: np.ndarray  # (G,) the first row of each group
+    class_code: np.ndarray  # (G,) rank of the class value among the classes present
+    class_values: pl.Series  # (G,) the class value of each group
     psu_stratum: np.ndarray  # (P,)
-    psu_row: np.ndarray  # (P,) the first row of each PSU
+    psu_values: pl.Series  # (P,) the PSU id of each PSU (its row number when every respondent is a PSU)
     stratum_labels: tuple[str, ...]
     psu_labels: tuple[str, ...]
 
@@ -297,32 +352,27 @@ class _GroupKey:
         strata: str | None,
         psu: str | None,
         classes: str | None,
-        cache: dict[str, tuple[np.ndarray, int]],
+        cache: dict[str, _Factor],
     ) -> _GroupKey:
         n = frame.height
-        zero = (np.zeros(n, dtype=np.int64), 1 if n else 0)
-        s = _cached(frame, strata, cache) if strata else zero
-        p = _cached(frame, psu, cache) if psu else (np.arange(n, dtype=np.int64), n)
-        c = _cached(frame, classes, cache) if classes else zero
-        g, size = _combine([s, p, c], n)
-        first = _first_rows(g, size)
-        stratum = s[0][first]
-        psu_index, n_psus = _combine([(stratum, s[1]), (p[0][first], p[1])], size)
-        psu_row = first[_first_rows(psu_index, n_psus)]
-        stratum_row = _first_rows(s[0], s[1])
-        labels = frame[strata].gather(stratum_row).to_list() if strata else ["all"] * len(stratum_row)
-        psu_values = frame[psu].gather(psu_row).to_list() if psu else psu_row.tolist()
+        s = _cached(frame, strata, cache) if strata else _Factor.constant(n, "all")
+        p = _cached(frame, psu, cache) if psu else _Factor.row_numbers(n)
+        c = _cached(frame, classes, cache) if classes else _Factor.constant(n, 0)
+        g, size, levels = _combine([s.pair, p.pair, c.pair], n)
+        stratum, n_strata, stratum_codes = _dense(levels[:, 0], s.size)
+        psu_index, _, psu_levels = _combine([(stratum, n_strata), (levels[:, 1], p.size)], size)
+        psu_values = p.values(psu_levels[:, 1])
         return _GroupKey(
             g=g,
             size=size,
             stratum=stratum,
             psu=psu_index,
-            class_code=c[0][first],
-            group_row=first,
-            psu_stratum=s[0][psu_row],
-            psu_row=psu_row,
-            stratum_labels=tuple(str(v) for v in labels),
-            psu_labels=tuple(str(v) for v in psu_values),
+            class_code=_dense(levels[:, 2], c.size)[0],
+            class_values=c.values(levels[:, 2]),
+            psu_stratum=psu_levels[:, 0],
+            psu_values=psu_values,
+            stratum_labels=tuple(str(v) for v in s.values(stratum_codes).to_list()),
+            psu_labels=tuple(str(v) for v in psu_values.to_list()),
         )
 
     def class_index(self, frame: pl.DataFrame, *, classes: str | None) -> np.ndarray:
@@ -331,16 +381,16 @@ class _GroupKey:
             return np.zeros(self.size, dtype=np.int64)
         if not frame.schema[classes].is_integer():
             return self.class_code
-        cls = frame[classes].gather(self.group_row).to_numpy().astype(np.int64)
+        cls = self.class_values.to_numpy().astype(np.int64)
         if len(cls) and cls.min() < 0:
             problem = Problem(rule="bad-class", message="weighting-class indices must be 0..C-1", value=str(cls.min()))
             raise DataError("negative weighting-class index", [problem])
         return cls
 
 
-def _cached(frame: pl.DataFrame, column: str, cache: dict[str, tuple[np.ndarray, int]]) -> tuple[np.ndarray, int]:
+def _cached(frame: pl.DataFrame, column: str, cache: dict[str, _Factor]) -> _Factor:
     if column not in cache:
-        cache[column] = _factorize(frame[column])
+        cache[column] = _Factor.of(frame[column])
     return cache[column]
 
 
@@ -429,7 +479,7 @@ def _combination_totals(
     key: _GroupKey,
     w: np.ndarray,
     kept: np.ndarray | None,
-    cache: dict,
+    cache: dict[str, _Factor],
 ) -> Iterator[_Part]:
     """Totals of row-wise quantities of `columns`: W[g, u] from one bincount, the quantities on the U combinations."""
     combos = _Combos.build(frame, columns, cache=cache)
@@ -472,19 +522,23 @@ class _Combos:
 
     u: np.ndarray  # (n,) combination of each respondent
     size: int  # U
-    first: np.ndarray  # (U,) a row holding each combination
+    source: pl.DataFrame  # (U, columns) the values of each combination, in the frame's dtypes
     rows: np.ndarray  # (U,) respondents per combination
 
     @staticmethod
-    def build(frame: pl.DataFrame, columns: tuple[str, ...], *, cache: dict) -> _Combos:
-        u, size = _combine([_cached(frame, c, cache) for c in columns], frame.height)
-        return _Combos(u, size, _first_rows(u, size), np.bincount(u, minlength=size).astype(np.float64))
+    def build(frame: pl.DataFrame, columns: tuple[str, ...], *, cache: dict[str, _Factor]) -> _Combos:
+        factors = [_cached(frame, c, cache) for c in columns]
+        u, size, levels = _combine([f.pair for f in factors], frame.height)
+        source = pl.DataFrame([f.values(levels[:, j]).alias(c) for j, (c, f) in enumerate(zip(columns, factors, strict=True))])
+        if not columns:  # a frame of no columns still needs one row per combination
+            source = pl.DataFrame({"__combination": np.arange(size)})
+        return _Combos(u, size, source, np.bincount(u, minlength=size).astype(np.float64))
 
     def evaluate(
         self, frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]]
     ) -> Iterator[tuple[list[int], np.ndarray]]:
         """(indices, (U, b) values) of the quantities, evaluated on one row per combination, b columns at a time."""
-        source = frame.gather(self.first)
+        source = self.source
         step = max(1, BATCH_CELLS // max(self.size, 1))
         for s in range(0, len(exprs), step):
             batch = exprs[s : s + step]
@@ -520,9 +574,8 @@ class _PairMatrix:
             return _PairMatrix(weights.reshape(shape), counts.reshape(shape))
         from scipy import sparse
 
-        pair, m = _dense(g * n_combos + u, n_groups * n_combos)
-        first = _first_rows(pair, m)
-        index = (g[first], u[first])
+        pair, m, distinct = _dense(g * n_combos + u, n_groups * n_combos)
+        index = np.divmod(distinct, n_combos)
         shape = (n_groups, n_combos)
         weights, counts = sums(pair, m)
         return _PairMatrix(
@@ -543,9 +596,9 @@ class _PairMatrix:
         return np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T
 
 
-def _check_unique_psus(frame: pl.DataFrame, key: _GroupKey, *, psu: str) -> None:
+def _check_unique_psus(key: _GroupKey, *, psu: str) -> None:
     """PSU ids declared unique across strata must each lie in one stratum."""
-    ids = frame[psu].gather(key.psu_row)
+    ids = key.psu_values
     per_id = pl.DataFrame({"id": ids, "h": key.psu_stratum}).group_by("id").agg(pl.col("h").n_unique().alias("k"))
     shared = per_id.filter(pl.col("k") > 1)
     if shared.height:
