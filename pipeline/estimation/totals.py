@@ -155,10 +155,7 @@ def group_totals(
     w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
     cache: dict[str, _Factor] = {}
     key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
-    # transposed while filled (one contiguous row per quantity); counts are sums of products of
-    # integers below 2**53, so exact in float64 and stored as integers as they are
-    totals = np.zeros((len(names), key.size))
-    counts = np.zeros((len(names), key.size), dtype=np.int64)
+    blocks: list[tuple[list[int], np.ndarray, np.ndarray]] = []
     bad = np.zeros(len(names), dtype=np.int64)
     kept = None if np.all(w != 0) else w != 0
     for cols, ks in _by_columns(quantities).items():
@@ -168,7 +165,8 @@ def group_totals(
         else:
             parts = _row_totals(frame, exprs, key=key, w=w)
         for batch, weighted, nonzero, missing in parts:
-            totals[batch], counts[batch], bad[batch] = weighted, nonzero, missing
+            blocks.append((batch, weighted, nonzero))
+            bad[batch] = missing
     problems += [
         Problem(
             rule="missing-quantity",
@@ -187,13 +185,34 @@ def group_totals(
         stratum=key.stratum,
         psu=key.psu,
         cls=cls,
-        totals=np.ascontiguousarray(totals.T),
-        counts=np.ascontiguousarray(counts.T),
+        totals=_assemble([b[1] for b in blocks], [b[0] for b in blocks], key.size, np.float64),
+        counts=_assemble([b[2] for b in blocks], [b[0] for b in blocks], key.size, np.int64),
         columns=names,
         psu_stratum=key.psu_stratum,
         stratum_labels=key.stratum_labels,
         psu_labels=key.psu_labels,
     )
+
+
+def _assemble(parts: list[np.ndarray], batches: list[list[int]], size: int, dtype: type) -> np.ndarray:
+    """The (G, K) C-ordered matrix of (b, G) blocks, block i holding the quantities `batches[i]` (each k once).
+
+    One concatenation of transposed views, taken in quantity order as runs of consecutive rows of
+    one block; it transposes and orders in a single copy. Counts arrive as exact integers in
+    float64 and are cast as they are copied.
+    """
+    if not parts:
+        return np.zeros((size, 0), dtype=dtype)
+    quantity = np.concatenate([np.asarray(b, dtype=np.int64) for b in batches])
+    block = np.repeat(np.arange(len(batches)), [len(b) for b in batches])
+    row = np.concatenate([np.arange(len(b)) for b in batches])
+    source = np.empty_like(quantity)
+    source[quantity] = np.arange(len(quantity))
+    block, row = block[source], row[source]
+    starts = np.flatnonzero(np.r_[True, (block[1:] != block[:-1]) | (row[1:] != row[:-1] + 1)])
+    ends = np.r_[starts[1:], len(block)]
+    views = [parts[block[a]][row[a] : row[a] + e - a].T for a, e in zip(starts.tolist(), ends.tolist(), strict=True)]
+    return np.concatenate(views, axis=1, dtype=dtype, casting="unsafe")
 
 
 def _design_problems(
