@@ -48,6 +48,8 @@ def assert_same_as_direct(frame: pl.DataFrame, quantities: dict[str, pl.Expr], *
     gt = group_totals(frame, quantities, weight="w", **design)
     ref, names = direct_totals(frame, quantities, weight="w", **design)
     assert gt.totals.shape == (ref.height, len(names))
+    # C order, as the replicate layout product's view of the totals expects (replicates._psu_class_layout)
+    assert gt.totals.flags.c_contiguous and gt.counts.flags.c_contiguous and gt.counts.dtype == np.int64
     scale = ref.select([q + "_abs" for q in names]).to_numpy()
     np.testing.assert_array_less(np.abs(gt.totals - ref.select(names).to_numpy()), 1e-12 * scale + 1e-300)
     np.testing.assert_array_equal(gt.counts, ref.select([q + "_n" for q in names]).to_numpy())

@@ -197,8 +197,8 @@ def group_totals(
 def _assemble(parts: list[np.ndarray], batches: list[list[int]], size: int, dtype: type) -> np.ndarray:
     """The (G, K) C-ordered matrix of (b, G) blocks, block i holding the quantities `batches[i]` (each k once).
 
-    One concatenation of transposed views, taken in quantity order as runs of consecutive rows of
-    one block; it transposes and orders in a single copy. Counts arrive as exact integers in
+    The blocks' rows are put in quantity order by one concatenation of runs of consecutive rows of
+    one block (contiguous copies), then transposed by one copy. Counts arrive as exact integers in
     float64 and are cast as they are copied.
     """
     if not parts:
@@ -211,8 +211,10 @@ def _assemble(parts: list[np.ndarray], batches: list[list[int]], size: int, dtyp
     block, row = block[source], row[source]
     starts = np.flatnonzero(np.r_[True, (block[1:] != block[:-1]) | (row[1:] != row[:-1] + 1)])
     ends = np.r_[starts[1:], len(block)]
-    views = [parts[block[a]][row[a] : row[a] + e - a].T for a, e in zip(starts.tolist(), ends.tolist(), strict=True)]
-    return np.concatenate(views, axis=1, dtype=dtype, casting="unsafe")
+    runs = [parts[block[a]][row[a] : row[a] + e - a] for a, e in zip(starts.tolist(), ends.tolist(), strict=True)]
+    out = np.empty((size, len(quantity)), dtype=dtype)
+    np.copyto(out, np.concatenate(runs, axis=0).T, casting="unsafe")
+    return out
 
 
 def _design_problems(
