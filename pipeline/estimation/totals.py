@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Iterator
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -181,12 +182,17 @@ def group_totals(
     if psu_ids == "unique" and psu is not None:
         _check_unique_psus(key, psu=psu)
     cls = key.class_index(frame, classes=classes)
+    batches = [b[0] for b in blocks]
+    with ThreadPoolExecutor(max_workers=1) as pool:  # numpy copies release the GIL: both at once on 2 cores
+        pending = pool.submit(_assemble, [b[2] for b in blocks], batches, key.size, np.int64)
+        totals = _assemble([b[1] for b in blocks], batches, key.size, np.float64)
+        counts = pending.result()
     return GroupTotals(
         stratum=key.stratum,
         psu=key.psu,
         cls=cls,
-        totals=_assemble([b[1] for b in blocks], [b[0] for b in blocks], key.size, np.float64),
-        counts=_assemble([b[2] for b in blocks], [b[0] for b in blocks], key.size, np.int64),
+        totals=totals,
+        counts=counts,
         columns=names,
         psu_stratum=key.psu_stratum,
         stratum_labels=key.stratum_labels,
@@ -244,15 +250,18 @@ def _design_problems(
     return problems
 
 
-def _dense(code: np.ndarray, size: int) -> tuple[np.ndarray, int, np.ndarray]:
-    """Renumber integer codes in [0, size) to 0..m-1 keeping their order: (codes, m, the m distinct codes sorted)."""
+def _dense(code: np.ndarray, size: int) -> tuple[np.ndarray, int, np.ndarray, np.ndarray]:
+    """Renumber integer codes in [0, size) to 0..m-1 keeping their order.
+
+    Returns (codes, m, the m distinct old codes sorted, the number of rows of each new code).
+    """
     if size <= 4 * len(code) + 1024:
-        present = np.bincount(code, minlength=size) > 0
-        distinct = np.flatnonzero(present)
+        rows = np.bincount(code, minlength=size)
+        distinct = np.flatnonzero(rows)
         m = len(distinct)
-        return (code if m == size else (np.cumsum(present) - 1)[code]), m, distinct
-    distinct, inverse = np.unique(code, return_inverse=True)
-    return inverse.reshape(-1), len(distinct), distinct
+        return (code if m == size else (np.cumsum(rows > 0) - 1)[code]), m, distinct, rows[distinct]
+    distinct, inverse, rows = np.unique(code, return_inverse=True, return_counts=True)
+    return inverse.reshape(-1), len(distinct), distinct, rows
 
 
 @dataclass(frozen=True)
@@ -290,9 +299,9 @@ class _Factor:
         by_rank = (ranks, int(ranks.max(initial=0)) + 1)
         if dtype.is_float():
             bits = np.unique(coded.cast(pl.Float64).fill_null(0.0).to_numpy().view(np.int64), return_inverse=True)[1]
-            codes, m, _ = _combine([by_rank, (bits.reshape(-1), int(bits.max(initial=-1)) + 1)], n)
+            codes, m, *_ = _combine([by_rank, (bits.reshape(-1), int(bits.max(initial=-1)) + 1)], n)
         else:
-            codes, m, _ = _dense(*by_rank)
+            codes, m, *_ = _dense(*by_rank)
         rows = np.empty(m, dtype=np.int64)
         rows[codes] = np.arange(n, dtype=np.int64)  # some row holding each code (every row of a code holds its value)
         return _Factor(codes, m, holder=series.gather(rows))
@@ -322,33 +331,34 @@ class _Factor:
         return self.codes, self.size
 
 
-def _combine(columns: list[tuple[np.ndarray, int]], n: int) -> tuple[np.ndarray, int, np.ndarray]:
-    """Codes of the value combinations of several coded columns, in lexicographic order: (codes 0..m-1, m, levels).
+def _combine(columns: list[tuple[np.ndarray, int]], n: int) -> tuple[np.ndarray, int, np.ndarray, np.ndarray]:
+    """Codes of the value combinations of several coded columns, in lexicographic order.
 
-    levels (m, number of columns) holds each combination's code in each column, so values of the
-    combinations come from the columns' values without looking at rows again.
+    Returns (codes 0..m-1, m, levels, rows): levels (m, number of columns) holds each combination's
+    code in each column, so values of the combinations come from the columns' values without
+    looking at rows again; rows (m,) counts the rows of each combination.
     """
-    code, size = np.zeros(n, dtype=np.int64), 1
+    code, size = None, 1
     levels, radices = np.zeros((1, 0), dtype=np.int64), []
     for values, m in columns:
-        if size * m >= 2**62:
-            code, size, levels = _compact(code, size, levels, radices)
+        if code is not None and size * m >= 2**62:
+            code, size, levels, _ = _compact(code, size, levels, radices)
             radices = []
-        code, size = code * m + values, size * m
+        code, size = (values if code is None else code * m + values), size * m
         radices.append(m)
-    return _compact(code, size, levels, radices)
+    return _compact(np.zeros(n, dtype=np.int64) if code is None else code, size, levels, radices)
 
 
 def _compact(
     code: np.ndarray, size: int, levels: np.ndarray, radices: list[int]
-) -> tuple[np.ndarray, int, np.ndarray]:
+) -> tuple[np.ndarray, int, np.ndarray, np.ndarray]:
     """Renumber mixed-radix codes code = (...(l * r_1 + d_1) * r_2 + d_2 ...) densely; the levels of each new code."""
-    code, m, distinct = _dense(code, size)
+    code, m, distinct, rows = _dense(code, size)
     digits = []
     for r in reversed(radices):
         distinct, digit = np.divmod(distinct, r)
         digits.append(digit)
-    return code, m, np.column_stack([levels[distinct], *reversed(digits)]).astype(np.int64, copy=False)
+    return code, m, np.column_stack([levels[distinct], *reversed(digits)]).astype(np.int64, copy=False), rows
 
 
 @dataclass(frozen=True)
@@ -379,9 +389,9 @@ class _GroupKey:
         s = _cached(frame, strata, cache) if strata else _Factor.constant(n, "all")
         p = _cached(frame, psu, cache) if psu else _Factor.row_numbers(n)
         c = _cached(frame, classes, cache) if classes else _Factor.constant(n, 0)
-        g, size, levels = _combine([s.pair, p.pair, c.pair], n)
-        stratum, n_strata, stratum_codes = _dense(levels[:, 0], s.size)
-        psu_index, _, psu_levels = _combine([(stratum, n_strata), (levels[:, 1], p.size)], size)
+        g, size, levels, _ = _combine([s.pair, p.pair, c.pair], n)
+        stratum, n_strata, stratum_codes, _ = _dense(levels[:, 0], s.size)
+        psu_index, _, psu_levels, _ = _combine([(stratum, n_strata), (levels[:, 1], p.size)], size)
         psu_values = p.values(psu_levels[:, 1])
         return _GroupKey(
             g=g,
@@ -549,11 +559,11 @@ class _Combos:
     @staticmethod
     def build(frame: pl.DataFrame, columns: tuple[str, ...], *, cache: dict[str, _Factor]) -> _Combos:
         factors = [_cached(frame, c, cache) for c in columns]
-        u, size, levels = _combine([f.pair for f in factors], frame.height)
+        u, size, levels, rows = _combine([f.pair for f in factors], frame.height)
         source = pl.DataFrame([f.values(levels[:, j]).alias(c) for j, (c, f) in enumerate(zip(columns, factors, strict=True))])
         if not columns:  # a frame of no columns still needs one row per combination
             source = pl.DataFrame({"__combination": np.arange(size)})
-        return _Combos(u, size, source, np.bincount(u, minlength=size).astype(np.float64))
+        return _Combos(u, size, source, rows.astype(np.float64))
 
     def evaluate(
         self, frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]]
@@ -573,7 +583,7 @@ class _Combos:
 class _PairMatrix:
     """W[g, u] = sum of weights and N[g, u] = number of non-zero weights of the respondents in g with combination u.
 
-    Held dense as (U, G) when G x U <= DENSE_CELLS, else as sparse (G, U) matrices.
+    Held dense as (U, G) when G x U <= DENSE_CELLS, else as sparse (G, U) matrices; N as integers.
     """
 
     weights: np.ndarray | sparse.csr_matrix
@@ -586,8 +596,11 @@ class _PairMatrix:
         """kept: mask of the respondents with a non-zero weight (None: all of them)."""
 
         def sums(pair: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
-            counted = np.bincount(pair if kept is None else pair[kept], minlength=size)
-            return np.bincount(pair, weights=w, minlength=size), counted.astype(np.float64)
+            # two independent passes over the rows; numpy releases the GIL in bincount, so on a
+            # machine with a free core the count runs beside the weighted sum
+            with ThreadPoolExecutor(max_workers=1) as pool:
+                counted = pool.submit(np.bincount, pair if kept is None else pair[kept], None, size)
+                return np.bincount(pair, weights=w, minlength=size), counted.result()
 
         if n_groups * n_combos <= DENSE_CELLS:
             shape = (n_combos, n_groups)
@@ -595,7 +608,7 @@ class _PairMatrix:
             return _PairMatrix(weights.reshape(shape), counts.reshape(shape))
         from scipy import sparse
 
-        pair, m, distinct = _dense(g * n_combos + u, n_groups * n_combos)
+        pair, m, distinct, _ = _dense(g * n_combos + u, n_groups * n_combos)
         index = np.divmod(distinct, n_combos)
         shape = (n_groups, n_combos)
         weights, counts = sums(pair, m)
@@ -607,13 +620,12 @@ class _PairMatrix:
         """(U, b) quantity values per combination -> (b, G) weighted totals and (b, G) counts of non-zero values."""
         from scipy import sparse
 
-        indicator = (phi != 0).astype(np.float64)
+        indicator = (phi != 0).astype(np.int64)
         if isinstance(self.weights, np.ndarray):
-            if np.count_nonzero(indicator) <= SPARSE_SHARE * indicator.size:
-                phi_t, indicator_t = sparse.csr_matrix(phi.T), sparse.csr_matrix(indicator.T)
-            else:
-                phi_t, indicator_t = phi.T, indicator.T
-            return np.asarray(phi_t @ self.weights), np.asarray(indicator_t @ self.counts)
+            if np.count_nonzero(indicator) <= SPARSE_SHARE * indicator.size:  # integer counts stay integers
+                return np.asarray(sparse.csr_matrix(phi.T) @ self.weights), sparse.csr_matrix(indicator.T) @ self.counts
+            # BLAS: counts below 2**53 multiply exactly in float64
+            return phi.T @ self.weights, indicator.T.astype(np.float64) @ self.counts.astype(np.float64)
         return np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T
 
 
