@@ -95,6 +95,9 @@ QUANTITIES = {
     "y": pl.col("y"),
     "y2|flag": pl.col("y") * pl.col("y") * pl.col("flag").cast(pl.Float64),
     "q in 1,3": pl.col("q").is_in([1, 3]).fill_null(False).cast(pl.Float64),
+    # one answer each, beside quantities of the same column that are not: copied rows, one of them scaled
+    "q=1": (pl.col("q") == 1).fill_null(False).cast(pl.Float64),
+    "-2.5 if q=4": (pl.col("q") == 4).fill_null(False).cast(pl.Float64) * -2.5,
     "1/y": pl.when(pl.col("y") != 0).then(1.0 / pl.col("y")).otherwise(0.0),
     "centred y": pl.col("y") - pl.col("y").mean(),  # not row-wise: evaluated on the full frame
     "previous y": pl.col("y").shift(1).fill_null(0.0),  # not row-wise either

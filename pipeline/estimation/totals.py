@@ -156,18 +156,15 @@ def group_totals(
     w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
     cache: dict[str, _Factor] = {}
     key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
-    blocks: list[tuple[list[int], np.ndarray, np.ndarray]] = []
-    bad = np.zeros(len(names), dtype=np.int64)
+    staged = _Staged.empty(len(names), key.size)
     kept = None if np.all(w != 0) else w != 0
     for cols, ks in _by_columns(quantities).items():
         exprs = [(k, quantities[names[k]]) for k in ks]
         if cols is not None and _few_combinations(frame, cols):
-            parts = _combination_totals(frame, cols, exprs, key=key, w=w, kept=kept, cache=cache)
+            _combination_totals(frame, cols, exprs, key=key, w=w, kept=kept, cache=cache, out=staged)
         else:
-            parts = _row_totals(frame, exprs, key=key, w=w)
-        for batch, weighted, nonzero, missing in parts:
-            blocks.append((batch, weighted, nonzero))
-            bad[batch] = missing
+            _row_totals(frame, exprs, key=key, w=w, out=staged)
+    bad = staged.missing
     problems += [
         Problem(
             rule="missing-quantity",
@@ -182,11 +179,7 @@ def group_totals(
     if psu_ids == "unique" and psu is not None:
         _check_unique_psus(key, psu=psu)
     cls = key.class_index(frame, classes=classes)
-    batches = [b[0] for b in blocks]
-    with ThreadPoolExecutor(max_workers=1) as pool:  # numpy copies release the GIL: both at once on 2 cores
-        pending = pool.submit(_assemble, [b[2] for b in blocks], batches, key.size, np.int64)
-        totals = _assemble([b[1] for b in blocks], batches, key.size, np.float64)
-        counts = pending.result()
+    totals, counts = staged.transposed()
     return GroupTotals(
         stratum=key.stratum,
         psu=key.psu,
@@ -200,27 +193,36 @@ def group_totals(
     )
 
 
-def _assemble(parts: list[np.ndarray], batches: list[list[int]], size: int, dtype: type) -> np.ndarray:
-    """The (G, K) C-ordered matrix of (b, G) blocks, block i holding the quantities `batches[i]` (each k once).
+@dataclass(frozen=True)
+class _Staged:
+    """The results while they are filled: one contiguous row per quantity, (K, G), transposed at the end.
 
-    The blocks' rows are put in quantity order by one concatenation of runs of consecutive rows of
-    one block (contiguous copies), then transposed by one copy. Counts arrive as exact integers in
-    float64 and are cast as they are copied.
+    counts are sums of products of integers below 2**53, so exact in float64 where a product
+    computes them, and stored as integers as they are.
     """
-    if not parts:
-        return np.zeros((size, 0), dtype=dtype)
-    quantity = np.concatenate([np.asarray(b, dtype=np.int64) for b in batches])
-    block = np.repeat(np.arange(len(batches)), [len(b) for b in batches])
-    row = np.concatenate([np.arange(len(b)) for b in batches])
-    source = np.empty_like(quantity)
-    source[quantity] = np.arange(len(quantity))
-    block, row = block[source], row[source]
-    starts = np.flatnonzero(np.r_[True, (block[1:] != block[:-1]) | (row[1:] != row[:-1] + 1)])
-    ends = np.r_[starts[1:], len(block)]
-    runs = [parts[block[a]][row[a] : row[a] + e - a] for a, e in zip(starts.tolist(), ends.tolist(), strict=True)]
-    out = np.empty((size, len(quantity)), dtype=dtype)
-    np.copyto(out, np.concatenate(runs, axis=0).T, casting="unsafe")
-    return out
+
+    totals: np.ndarray  # (K, G) float64
+    counts: np.ndarray  # (K, G) int64
+    missing: np.ndarray  # (K,) rows where the quantity is null or NaN
+
+    @staticmethod
+    def empty(n_quantities: int, n_groups: int) -> _Staged:
+        """Room for K quantities over G groups (every row is written once before `transposed`)."""
+        return _Staged(
+            np.empty((n_quantities, n_groups)),
+            np.empty((n_quantities, n_groups), dtype=np.int64),
+            np.zeros(n_quantities, dtype=np.int64),
+        )
+
+    def put(self, batch: list[int], weighted: np.ndarray, nonzero: np.ndarray) -> None:
+        """Rows `batch` from (b, G) totals and counts."""
+        self.totals[batch], self.counts[batch] = weighted, nonzero
+
+    def transposed(self) -> tuple[np.ndarray, np.ndarray]:
+        """(G, K) C-ordered totals and counts: two transposing copies, run at once (numpy releases the GIL)."""
+        with ThreadPoolExecutor(max_workers=1) as pool:
+            counts = pool.submit(np.ascontiguousarray, self.counts.T)
+            return np.ascontiguousarray(self.totals.T), counts.result()
 
 
 def _design_problems(
@@ -499,9 +501,6 @@ def _few_combinations(frame: pl.DataFrame, columns: tuple[str, ...]) -> bool:
     return sample.n_unique() <= MAX_COMBINATIONS
 
 
-_Part = tuple[list[int], np.ndarray, np.ndarray, np.ndarray]  # indices, (b, G) totals, (b, G) counts, (b,) missing
-
-
 def _combination_totals(
     frame: pl.DataFrame,
     columns: tuple[str, ...],
@@ -511,17 +510,20 @@ def _combination_totals(
     w: np.ndarray,
     kept: np.ndarray | None,
     cache: dict[str, _Factor],
-) -> Iterator[_Part]:
+    out: _Staged,
+) -> None:
     """Totals of row-wise quantities of `columns`: W[g, u] from one bincount, the quantities on the U combinations."""
     combos = _Combos.build(frame, columns, cache=cache)
     pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
     for batch, values in combos.evaluate(frame, exprs):
         missing = np.isnan(values)
-        weighted, nonzero = pairs.totals(np.where(missing, 0.0, values))
-        yield batch, weighted, nonzero, np.rint(combos.rows @ missing).astype(np.int64)
+        out.missing[batch] = np.rint(combos.rows @ missing).astype(np.int64)
+        pairs.put(np.where(missing, 0.0, values), batch, out)
 
 
-def _row_totals(frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, w: np.ndarray) -> Iterator[_Part]:
+def _row_totals(
+    frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, w: np.ndarray, out: _Staged
+) -> None:
     """Totals of quantities evaluated on the full frame (as any polars select would), then summed per group.
 
     A polars group_by on the group index, at most BATCH_CELLS values at a time.
@@ -544,7 +546,9 @@ def _row_totals(frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _
         nonzero = np.zeros((len(batch), key.size), dtype=np.int64)
         weighted[:, index] = grouped.select(names).to_numpy().T
         nonzero[:, index] = grouped.select([q + "_n" for q in names]).to_numpy().T
-        yield [k for k, _ in batch], weighted, nonzero, np.array(missing, dtype=np.int64)
+        rows = [k for k, _ in batch]
+        out.put(rows, weighted, nonzero)
+        out.missing[rows] = missing
 
 
 @dataclass(frozen=True)
@@ -616,17 +620,44 @@ class _PairMatrix:
             sparse.csr_matrix((weights, index), shape=shape), sparse.csr_matrix((counts, index), shape=shape)
         )
 
-    def totals(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(U, b) quantity values per combination -> (b, G) weighted totals and (b, G) counts of non-zero values."""
+    def put(self, phi: np.ndarray, batch: list[int], out: _Staged) -> None:
+        """Rows `batch` of the totals and counts from (U, b) quantity values per combination.
+
+        Y[k, g] = sum_u phi[u, k] W[u, g] and counts sum_u 1[phi[u, k] != 0] N[u, g]. A quantity
+        non-zero on one combination u_k only (a category, in a banner column or not) has rows
+        phi[u_k, k] W[u_k] and N[u_k], copied straight into place from a dense W; the others are
+        matrix products.
+        """
         from scipy import sparse
 
-        indicator = (phi != 0).astype(np.int64)
+        indicator = phi != 0
         if isinstance(self.weights, np.ndarray):
-            if np.count_nonzero(indicator) <= SPARSE_SHARE * indicator.size:  # integer counts stay integers
-                return np.asarray(sparse.csr_matrix(phi.T) @ self.weights), sparse.csr_matrix(indicator.T) @ self.counts
-            # BLAS: counts below 2**53 multiply exactly in float64
-            return phi.T @ self.weights, indicator.T.astype(np.float64) @ self.counts.astype(np.float64)
-        return np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T
+            single = indicator.sum(axis=0) == 1
+            if single.any():
+                self._select(phi[:, single], indicator[:, single].argmax(axis=0), np.asarray(batch)[single], out)
+                if single.all():
+                    return
+                phi, indicator, batch = phi[:, ~single], indicator[:, ~single], np.asarray(batch)[~single].tolist()
+        indicator = indicator.astype(np.int64)
+        if not isinstance(self.weights, np.ndarray):
+            out.put(batch, np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T)
+        elif np.count_nonzero(indicator) <= SPARSE_SHARE * indicator.size:  # integer counts stay integers
+            weighted = np.asarray(sparse.csr_matrix(phi.T) @ self.weights)
+            out.put(batch, weighted, sparse.csr_matrix(indicator.T) @ self.counts)
+        else:  # BLAS: counts below 2**53 multiply exactly in float64
+            weighted = phi.T @ self.weights
+            out.put(batch, weighted, indicator.T.astype(np.float64) @ self.counts.astype(np.float64))
+
+    def _select(self, phi: np.ndarray, chosen: np.ndarray, rows: np.ndarray, out: _Staged) -> None:
+        """Rows rows[i] = phi[chosen[i], i] * W[chosen[i]] and N[chosen[i]], by runs of consecutive rows."""
+        scale = phi[chosen, np.arange(len(chosen))]
+        starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1] + 1])
+        for a, e in zip(starts.tolist(), [*starts[1:].tolist(), len(rows)], strict=True):
+            np.take(self.weights, chosen[a:e], axis=0, out=out.totals[rows[a] : rows[a] + e - a])
+            np.take(self.counts, chosen[a:e], axis=0, out=out.counts[rows[a] : rows[a] + e - a])
+        scaled = np.flatnonzero(scale != 1.0)
+        if len(scaled):
+            out.totals[rows[scaled]] *= scale[scaled, None]
 
 
 def _check_unique_psus(key: _GroupKey, *, psu: str) -> None:
