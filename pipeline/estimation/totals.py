@@ -29,6 +29,7 @@ The result equals the direct sum to rounding (property-tested against it).
 
 from __future__ import annotations
 
+import functools
 import json
 from collections.abc import Iterator
 from concurrent.futures import ThreadPoolExecutor
@@ -474,12 +475,18 @@ def _function_name(function: object) -> str | None:
     return inner if isinstance(inner, str) else None
 
 
+@functools.lru_cache(maxsize=16384)
+def _serialised_row_wise(text: str) -> bool:
+    """`_is_row_wise` of a serialised expression, remembered: the next wave asks about the same expressions."""
+    return _is_row_wise(json.loads(text))
+
+
 def _by_columns(quantities: dict[str, pl.Expr]) -> dict[tuple[str, ...] | None, list[int]]:
     """Quantity indices by the sorted set of columns they read; None collects the not provably row-wise ones."""
     out: dict[tuple[str, ...] | None, list[int]] = {}
     for k, expr in enumerate(quantities.values()):
         try:
-            row_wise = _is_row_wise(json.loads(expr.meta.serialize(format="json")))
+            row_wise = _serialised_row_wise(expr.meta.serialize(format="json"))
         except Exception:  # noqa: BLE001 -- an expression polars cannot serialise takes the full-frame path
             row_wise = False
         key = tuple(sorted(set(expr.meta.root_names()))) if row_wise else None
