@@ -11,19 +11,29 @@ separate "answered" indicator, or either of those multiplied by a domain indicat
 therefore columns of Y, never row subsets, so a domain's variance uses every PSU of the design.
 
 How the pass is computed (the per-respondent work is done once, in a few narrow passes):
-1. the group key g = (stratum, PSU, class) is factorised once to integers 0..G-1, in sorted order;
+1. each column the pass reads is coded once as integers that sort as its values do: an integer
+   column of a narrow range by arithmetic (code = value - min, no sort), any other by dense rank
+   (`_Factor`). Combinations of columns are mixed-radix codes made dense with one bincount, and
+   keep each combination's code in every column, so the values of a combination are decoded
+   from the codes, never looked up in the rows. The group key g = (stratum, PSU, class) is
+   such a combination: integers 0..G-1 in sorted order;
 2. quantities are split by the set S of columns they read (`Expr.meta.root_names`). For a
    row-wise expression y_k = phi_k(x_S), the respondents of g with the same values u of x_S
    share y_k, so Y[g, k] = sum_u W[g, u] phi_k(u) with W[g, u] the weight total of the
-   respondents of g whose x_S equals u. W comes from one weighted bincount over (g, u); phi_k is
-   evaluated on the U distinct value combinations only; Y = W @ Phi is one matrix product
-   (dense, or sparse when G x U is large), the counts likewise from the unweighted bincount of
-   the non-zero-weight respondents and 1[phi_k(u) != 0]. A banner of 10 columns by a question of
-   10 codes is then one bincount over 100 combinations instead of 100 weighted sums over n rows;
+   respondents of g whose x_S equals u. W comes from one weighted bincount over (g, u) and the
+   counts N[g, u] of the non-zero-weight respondents from one unweighted bincount (run beside it
+   in a second thread); phi_k is evaluated on the U distinct value combinations only. A quantity
+   non-zero on one combination (a category, in a banner column or not) takes the row W[., u]
+   times its value, copied into place; the others take Y = W @ Phi, one matrix product (dense,
+   or sparse when G x U is large), the counts likewise with 1[phi_k(u) != 0]. A banner of 10
+   columns by a question of 10 codes is then one bincount over 100 combinations instead of 100
+   weighted sums over n rows;
 3. an expression that is not provably row-wise (any node outside `_ROW_WISE_FUNCTIONS`, e.g. an
    aggregation, a window, a shift), or that reads columns with many distinct value combinations
    (a continuous measure: more than MAX_COMBINATIONS in a sample of rows), is evaluated on the
-   full frame and summed per group index by a polars group_by, at most `BATCH_CELLS` values at a time.
+   full frame and summed per group index by a polars group_by, at most `BATCH_CELLS` values at a time;
+4. results are staged with one contiguous row per quantity, (K, G), and transposed into the
+   C-ordered (G, K) matrices at the end (totals and counts at once, in two threads).
 The result equals the direct sum to rounding (property-tested against it).
 """
 
@@ -522,7 +532,7 @@ def _combination_totals(
     """Totals of row-wise quantities of `columns`: W[g, u] from one bincount, the quantities on the U combinations."""
     combos = _Combos.build(frame, columns, cache=cache)
     pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
-    for batch, values in combos.evaluate(frame, exprs):
+    for batch, values in combos.evaluate(exprs):
         missing = np.isnan(values)
         out.missing[batch] = np.rint(combos.rows @ missing).astype(np.int64)
         pairs.put(np.where(missing, 0.0, values), batch, out)
@@ -571,14 +581,12 @@ class _Combos:
     def build(frame: pl.DataFrame, columns: tuple[str, ...], *, cache: dict[str, _Factor]) -> _Combos:
         factors = [_cached(frame, c, cache) for c in columns]
         u, size, levels, rows = _combine([f.pair for f in factors], frame.height)
-        source = pl.DataFrame([f.values(levels[:, j]).alias(c) for j, (c, f) in enumerate(zip(columns, factors, strict=True))])
+        source = pl.DataFrame([f.values(levels[:, j]).alias(c) for j, (c, f) in enumerate(zip(columns, factors))])
         if not columns:  # a frame of no columns still needs one row per combination
             source = pl.DataFrame({"__combination": np.arange(size)})
         return _Combos(u, size, source, rows.astype(np.float64))
 
-    def evaluate(
-        self, frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]]
-    ) -> Iterator[tuple[list[int], np.ndarray]]:
+    def evaluate(self, exprs: list[tuple[int, pl.Expr]]) -> Iterator[tuple[list[int], np.ndarray]]:
         """(indices, (U, b) values) of the quantities, evaluated on one row per combination, b columns at a time."""
         source = self.source
         step = max(1, BATCH_CELLS // max(self.size, 1))
