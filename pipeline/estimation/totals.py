@@ -581,7 +581,8 @@ class _Combos:
     def build(frame: pl.DataFrame, columns: tuple[str, ...], *, cache: dict[str, _Factor]) -> _Combos:
         factors = [_cached(frame, c, cache) for c in columns]
         u, size, levels, rows = _combine([f.pair for f in factors], frame.height)
-        source = pl.DataFrame([f.values(levels[:, j]).alias(c) for j, (c, f) in enumerate(zip(columns, factors))])
+        pairs = enumerate(zip(columns, factors, strict=True))
+        source = pl.DataFrame([f.values(levels[:, j]).alias(c) for j, (c, f) in pairs])
         if not columns:  # a frame of no columns still needs one row per combination
             source = pl.DataFrame({"__combination": np.arange(size)})
         return _Combos(u, size, source, rows.astype(np.float64))
