@@ -29,13 +29,11 @@ import jinja2
 import polars as pl
 
 from pipeline import __version__
+from pipeline.cells_export import LOW_BASE, PERCENT_KINDS, STATISTIC_NAMES, VERY_LOW_BASE, tidy_cells
 from pipeline.errors import WavebookError
 from pipeline.resources import resource_dir
 from pipeline.spec import Design, Study, Variable, Wave
 
-# Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
-LOW_BASE = 50
-VERY_LOW_BASE = 30
 
 TYPE_LABELS = {
     "single": "Single choice",
@@ -47,7 +45,6 @@ REQUIRED_COLUMNS = (
     "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
 )
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
-PERCENT_KINDS = ("category", "net", "item", "missing")
 ESTIMATED_STATISTICS = ("mean", "median")
 SET_BY_WEIGHTING = "set by weighting"
 SET_BY_WEIGHTING_NOTE = (
@@ -190,8 +187,9 @@ def build_context(
         cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
+    figures = _figures(tidy_cells(cells))
     sections = tuple(
-        _section(index, variable, waves, cells.filter(pl.col("variable") == name), weighted=weighted)
+        _section(index, variable, waves, cells.filter(pl.col("variable") == name), figures, weighted=weighted)
         for index, (name, variable) in enumerate(study.variables.items())
     )
     generated = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
@@ -258,15 +256,29 @@ def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:
     return WaveColumn(id=wave.id, label=wave.label, fieldwork=fieldwork, respondents=respondents)
 
 
+_Figures = dict[tuple[str, str, int, str], dict]
+
+
+def _figures(export: pl.DataFrame) -> _Figures:
+    """The export's rows by (wave, table, row, statistic): every number the book prints comes from here."""
+    return {(r["wave"], r["table"], r["row"], r["statistic"]): r for r in export.iter_rows(named=True)}
+
+
 def _section(
-    index: int, variable: Variable, waves: tuple[WaveColumn, ...], cells: pl.DataFrame, *, weighted: bool
+    index: int,
+    variable: Variable,
+    waves: tuple[WaveColumn, ...],
+    cells: pl.DataFrame,
+    figures: _Figures,
+    *,
+    weighted: bool,
 ) -> Section:
     """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no data)."""
     by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
     layout = cells.unique("row_order", keep="first").sort("row_order").select("row_order", "row_kind", "row_label")
     rows = []
     for order, kind, row_label in layout.iter_rows():
-        row_cells = tuple(_cell(by_key.get((order, w.id)), weighted=weighted) for w in waves)
+        row_cells = tuple(_cell(by_key.get((order, w.id)), figures, weighted=weighted) for w in waves)
         rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
     notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
     if any(c.interval == SET_BY_WEIGHTING for r in rows for c in r.cells):
@@ -282,37 +294,43 @@ def _section(
     )
 
 
-def _cell(row: dict | None, *, weighted: bool) -> Cell:
+def _cell(row: dict | None, figures: _Figures, *, weighted: bool) -> Cell:
     """Format one cell: percentages as whole numbers with the unweighted count beneath, statistics
-    to 2 decimals; in a weighted book the weighted estimate and its interval where the row has one."""
+    to 2 decimals; in a weighted book the weighted estimate and its interval where the row has one.
+
+    `row` (the long cell frame) says what the cell is; its numbers are read from the export rows
+    `figures` (`pipeline.cells_export`), percentages as shares 0-1."""
     if row is None:
         return Cell(text="–")
+    key = (row["wave"], row["variable"], row["row_order"])
     flag = _base_flag(row["base"])
     kind = row["row_kind"]
+    count = figures.get((*key, "count"))
+    detail = f"{_whole(count['estimate']):,}" if count is not None and count["estimate"] is not None else None
     if kind == "base":
-        return Cell(text=f"{row['count']:,}")
-    if weighted and row.get("estimate") is not None:
-        if kind == "missing":
-            return Cell(text=_percent_text(row["estimate"]), detail=f"{row['count']:,}", base_flag=flag)
-        if kind in PERCENT_KINDS and row.get("set_by_weighting"):
-            text = _percent_text(row["estimate"])
-            return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=SET_BY_WEIGHTING)
-        if kind in PERCENT_KINDS:
-            interval = _percent_interval(row["ci_low"], row["ci_high"]) if row["ci_low"] is not None else None
-            text = _percent_text(row["estimate"])
-            return Cell(text=text, detail=f"{row['count']:,}", base_flag=flag, interval=interval, deff=_deff_text(row))
-        if kind == "statistic" and row.get("code") in ESTIMATED_STATISTICS:
-            interval = f"{row['ci_low']:,.2f}–{row['ci_high']:,.2f}" if row["ci_low"] is not None else None
-            return Cell(text=f"{row['estimate']:,.2f}", base_flag=flag, interval=interval, deff=_deff_text(row))
-    if kind == "statistic":
-        value = row["value"]
-        if value is None:
-            return Cell(text="–", base_flag=flag)
-        text = f"{value:,.0f}" if row.get("code") == "n" else f"{value:,.2f}"
-        return Cell(text=text, base_flag=flag)
-    if row["percent"] is None:
-        return Cell(text="–", detail=f"{row['count']:,}", base_flag=flag)
-    return Cell(text=_percent_text(row["percent"]), detail=f"{row['count']:,}", base_flag=flag)
+        return Cell(text=detail or "–")
+    if kind in PERCENT_KINDS:
+        share = figures[(*key, "percent")]
+        if share["estimate"] is None:
+            return Cell(text="–", detail=detail, base_flag=flag)
+        text = _percent_text(100 * share["estimate"])
+        if not (weighted and row.get("estimate") is not None) or kind == "missing":
+            return Cell(text=text, detail=detail, base_flag=flag)
+        if "set-by-weighting" in share["flags"].split(";"):
+            return Cell(text=text, detail=detail, base_flag=flag, interval=SET_BY_WEIGHTING)
+        low, high = share["ci_low"], share["ci_high"]
+        interval = _percent_interval(100 * low, 100 * high) if low is not None else None
+        return Cell(text=text, detail=detail, base_flag=flag, interval=interval, deff=_deff_text(share))
+    statistic = figures.get((*key, STATISTIC_NAMES.get(row.get("code") or "", "")))
+    if kind != "statistic" or statistic is None or statistic["estimate"] is None:
+        return Cell(text="–", base_flag=flag)
+    value = statistic["estimate"]
+    if weighted and row.get("estimate") is not None and row.get("code") in ESTIMATED_STATISTICS:
+        low, high = statistic["ci_low"], statistic["ci_high"]
+        interval = f"{low:,.2f}–{high:,.2f}" if low is not None else None
+        return Cell(text=f"{value:,.2f}", base_flag=flag, interval=interval, deff=_deff_text(statistic))
+    text = f"{value:,.0f}" if row.get("code") == "n" else f"{value:,.2f}"
+    return Cell(text=text, base_flag=flag)
 
 
 def _percent_interval(low: float, high: float) -> str:

@@ -9,12 +9,15 @@ order, are small functions so later stages slot in between staging and rendering
   4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
   5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
                                          effects joined onto the same cells
-  6. `render_book`                       the HTML book, written atomically
+  6. `tidy_cells` + `write_cells`        the tidy export, `<spec stem>_cells.parquet` / `.csv`
+                                         beside the book (`pipeline.cells_export`)
+  7. `render_book`                       the HTML book, written atomically
 """
 
 from __future__ import annotations
 
 import sys
+import time
 from pathlib import Path
 
 import polars as pl
@@ -22,6 +25,7 @@ import polars as pl
 from pipeline import progress
 from pipeline.book import render_book
 from pipeline.book_weighting import variance_lines, weighting_section
+from pipeline.cells_export import tidy_cells, write_cells
 from pipeline.database import load_responses, open_database, staged_waves
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
@@ -71,30 +75,44 @@ def variance_options(study: Study) -> VarianceOptions:
 
 
 def weigh_and_estimate(
-    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False
+    study: Study,
+    cells: pl.DataFrame,
+    options: VarianceOptions,
+    *,
+    quiet: bool = False,
+    timings: dict[str, float] | None = None,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
     (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
     stderr. Each wave's estimates come from one grouped pass over that wave's respondents.
+    timings: when given, receives the seconds spent weighting ("weigh") and estimating
+    ("estimates"), summed over the waves (`bench/bench_study_run.py` reads them).
     """
+    clock = timings if timings is not None else {}
+    clock.setdefault("weigh", 0.0)
+    clock.setdefault("estimates", 0.0)
     wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
     reports: dict[str, WeightingReport] = {}
     estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
     con = open_database(study)
     try:
         for wave_id in wave_ids:
+            start = time.perf_counter()
             with progress.step(f"weighting wave {wave_id}", quiet=quiet):
                 recipe, report = fit_wave(study, wave_id, con=con)
                 store(con, recipe, report)
+            clock["weigh"] += time.perf_counter() - start
             for warning in report.warnings:
                 print(warning.render(), file=sys.stderr)
             reports[wave_id] = report
+            start = time.perf_counter()
             with progress.step(f"estimating wave {wave_id}", quiet=quiet):
                 responses = load_responses(con, study, [wave_id])
                 layout = cells.filter(pl.col("wave") == wave_id)
                 estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
+            clock["estimates"] += time.perf_counter() - start
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
     finally:
@@ -111,7 +129,8 @@ def run_study(
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), and renders the book to `out` (default `default_book_path`).
+    (`weigh_and_estimate`), writes the tidy cells export beside the book and renders the book to
+    `out` (default `default_book_path`).
     Raises SpecError / DataError with every problem found.
     """
     study = load_spec(spec_path)
@@ -132,6 +151,7 @@ def run_study(
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):
+        write_cells(tidy_cells(cells), out_path, study.path.stem)
         return render_book(
             study,
             cells,
