@@ -32,6 +32,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.estimation import estimate_table
+from pipeline.estimation.api import MeanOf
 from pipeline.estimation.intervals import korn_graubard_interval
 from pipeline.estimation.options import VarianceOptions
 from pipeline.spec import Study, Variable
@@ -62,23 +63,30 @@ PERCENT_KINDS = ("category", "net", "item", "missing")
 SET_BY_WEIGHTING_SE = 1e-5
 
 
-def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, str, pl.Expr | None, pl.Expr]]:
-    """(row_order, kind, y, base) per estimable row of one variable's layout.
+_EVERYONE = "__everyone"  # base name of the rows whose base is every respondent of the wave
 
-    y is the 0/1 indicator (percent rows) or the value (mean, median); base is the 0/1 base
-    indicator. y is None for rows estimated from the value column directly (statistics).
+
+def _row_expressions(
+    variable: Variable, rows: pl.DataFrame
+) -> list[tuple[int, str, pl.Expr | None, pl.Expr, str]]:
+    """(row_order, kind, y, base, base name) per estimable row of one variable's layout.
+
+    y is the 0/1 indicator (percent rows); base is the boolean base indicator, and rows with the
+    same base name share it. y is None for rows estimated from the value column (statistics).
     """
-    out: list[tuple[int, str, pl.Expr | None, pl.Expr]] = []
+    out: list[tuple[int, str, pl.Expr | None, pl.Expr, str]] = []
     if variable.type == "multi":
         items = list(variable.items)
         asked = pl.any_horizontal([pl.col(c).is_not_null() for c in items])
         for order, kind, code in rows.select("row_order", "row_kind", "code").iter_rows():
             if kind == "item":
-                out.append((order, kind, pl.col(code).eq(1).fill_null(False), pl.col(code).is_not_null()))
+                item = pl.col(code)
+                out.append((order, kind, item.eq(1).fill_null(False), item.is_not_null(), f"{variable.name}|{code}"))
             elif kind == "net":
-                out.append((order, kind, pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in items]), asked))
+                any_item = pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in items])
+                out.append((order, kind, any_item, asked, f"{variable.name}|asked"))
             elif kind == "missing":
-                out.append((order, kind, asked.not_(), pl.lit(True)))
+                out.append((order, kind, asked.not_(), pl.lit(True), _EVERYONE))
         return out
     col = pl.col(variable.name)
     text = col.cast(pl.String)
@@ -86,23 +94,27 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
     scored = col.is_not_null() & ~col.is_in(list(variable.exclude_from_mean)) if variable.exclude_from_mean else answered
     for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
         if kind == "category":
-            out.append((order, kind, text.eq(code).fill_null(False), answered))
+            out.append((order, kind, text.eq(code).fill_null(False), answered, f"{variable.name}|answered"))
         elif kind == "net":
             members = [str(c) for c in variable.nets[label]]
-            out.append((order, kind, text.is_in(members).fill_null(False), answered))
+            out.append((order, kind, text.is_in(members).fill_null(False), answered, f"{variable.name}|answered"))
         elif kind == "missing":
-            out.append((order, kind, answered.not_(), pl.lit(True)))
+            out.append((order, kind, answered.not_(), pl.lit(True), _EVERYONE))
         elif kind == "statistic" and code in ("mean", "median"):
-            out.append((order, code, None, scored))
+            out.append((order, code, None, scored, f"{variable.name}|scored"))
     return out
 
 
 def _wave_frame(
     responses: pl.DataFrame, study: Study, recipe: FittedRecipe, layout: pl.DataFrame
-) -> tuple[pl.DataFrame, list[str], list[str], dict[str, tuple[str, int, str]]]:
-    """The wave's respondents with one derived column per estimable row, the weight and the class.
+) -> tuple[
+    pl.DataFrame, list[MeanOf], list[str], list[str], dict[str, tuple[str, int, str]], dict[str, pl.Expr]
+]:
+    """The wave's respondents with the weight, the class and one derived column per mean or median
+    of a value; every percentage row is a `MeanOf` request on the answer columns themselves.
 
-    Returns (frame, mean columns, median columns, column -> (variable, row_order, kind)).
+    Returns (frame, percentage requests, mean columns, median columns, name -> (variable,
+    row_order, kind), name -> base expression).
     """
     weights = pl.DataFrame(
         {
@@ -114,21 +126,23 @@ def _wave_frame(
     )
     frame = responses.join(weights, on="respondent_id", how="inner", validate="1:1")
     derived: list[pl.Expr] = []
+    shares: list[MeanOf] = []
     means: list[str] = []
     medians: list[str] = []
     meaning: dict[str, tuple[str, int, str]] = {}
+    bases: dict[str, pl.Expr] = {}
     for name, variable in study.variables.items():
         rows = layout.filter(pl.col("variable") == name)
-        for order, kind, y, base in _row_expressions(variable, rows):
+        for order, kind, y, base, base_name in _row_expressions(variable, rows):
             column = f"__r{len(meaning)}"
             meaning[column] = (name, order, kind)
+            bases[column] = base
             if y is None:
                 derived.append(pl.when(base).then(pl.col(name).cast(pl.Float64)).otherwise(None).alias(column))
                 (medians if kind == "median" else means).append(column)
             else:
-                derived.append(pl.when(base).then(y.cast(pl.Float64)).otherwise(None).alias(column))
-                means.append(column)
-    return frame.with_columns(derived), means, medians, meaning
+                shares.append(MeanOf(column, y, base, base_name, indicator=True))
+    return frame.with_columns(derived), shares, means, medians, meaning, bases
 
 
 def _fpc(study: Study) -> Mapping[str, float] | None:
@@ -153,7 +167,7 @@ def wave_estimates(
     the wave (`pipeline.topline.unweighted_toplines` filtered to the wave).
     Returns a frame with `ESTIMATE_SCHEMA`; percentages on the 0-100 scale.
     """
-    frame, means, medians, meaning = _wave_frame(responses, study, recipe, layout)
+    frame, shares, means, medians, meaning, bases = _wave_frame(responses, study, recipe, layout)
     if not meaning:
         return pl.DataFrame(schema=ESTIMATE_SCHEMA)
     design = study.design
@@ -168,7 +182,8 @@ def wave_estimates(
         single_psu=design.single_psu,
         collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
         second_stage_fraction=design.second_stage_fraction,
-        mean=means,
+        mean=means or None,
+        means_of=shares,
         quantile=[(c, 0.5) for c in medians] or None,
         variance=options.method,
         fay=options.fay,
@@ -180,7 +195,7 @@ def wave_estimates(
         calibration_matrix=None if calibration.shape[1] == 0 else calibration,
         source=f"wave {wave}",
     ).frame
-    weighted_base = _weighted_bases(frame, list(meaning))
+    weighted_base = _weighted_bases(frame, bases)
     kinds = [meaning[v][2] for v in table["variable"]]
     percent = np.array([k in PERCENT_KINDS for k in kinds])
     est = table["estimate"].to_numpy().astype(float)
@@ -220,7 +235,14 @@ def wave_estimates(
     ).with_columns(pl.col(c).fill_nan(None) for c in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff"))
 
 
-def _weighted_bases(frame: pl.DataFrame, columns: list[str]) -> dict[str, float]:
-    """Sum of final weights over each derived column's base (the rows where it is not null)."""
-    row = frame.select([pl.col(_FINAL).filter(pl.col(c).is_not_null()).sum().alias(c) for c in columns]).row(0)
-    return dict(zip(columns, row, strict=True))
+def _weighted_bases(frame: pl.DataFrame, bases: dict[str, pl.Expr]) -> dict[str, float]:
+    """Sum of final weights over each row's base, each distinct base summed once."""
+    distinct: dict[str, pl.Expr] = {}
+    for expr in bases.values():
+        distinct.setdefault(expr.meta.serialize(format="json"), expr)
+    keys = list(distinct)
+    sums = frame.select(
+        pl.col(_FINAL).filter(e.fill_null(False)).sum().alias(f"b{k}") for k, e in enumerate(distinct.values())
+    ).row(0)
+    total = dict(zip(keys, sums, strict=True))
+    return {name: total[expr.meta.serialize(format="json")] for name, expr in bases.items()}
