@@ -20,6 +20,7 @@ import sys
 import time
 from pathlib import Path
 
+import duckdb
 import polars as pl
 
 from pipeline import progress
@@ -29,12 +30,13 @@ from pipeline.cells_export import tidy_cells, write_cells
 from pipeline.database import load_responses, open_database, staged_waves
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
+from pipeline.memory import DEFAULT_BUDGET, variable_batches
 from pipeline.spec import Study, load_spec
 from pipeline.stage import file_sha256, stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
-from pipeline.weighting.store import fit_wave, store
+from pipeline.weighting.store import fit_wave, store, weighting_columns
 
 
 def default_book_path(study: Study) -> Path:
@@ -81,12 +83,16 @@ def weigh_and_estimate(
     *,
     quiet: bool = False,
     timings: dict[str, float] | None = None,
+    memory_budget: int = DEFAULT_BUDGET,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
     (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
-    stderr. Each wave's estimates come from one grouped pass over that wave's respondents.
+    stderr. Each wave's rows are read from the database once: the weighting columns first
+    (`weighting_columns`, kept for the whole wave), then the answer columns in the batches of
+    variables that fit `memory_budget` bytes (`pipeline.memory.variable_batches`), each batch
+    estimated in one grouped pass over the wave's respondents.
     timings: when given, receives the seconds spent weighting ("weigh") and estimating
     ("estimates"), summed over the waves (`bench/bench_study_run.py` reads them).
     """
@@ -101,17 +107,23 @@ def weigh_and_estimate(
         for wave_id in wave_ids:
             start = time.perf_counter()
             with progress.step(f"weighting wave {wave_id}", quiet=quiet):
-                recipe, report = fit_wave(study, wave_id, con=con)
+                held = load_responses(con, study, [wave_id], columns=weighting_columns(study))
+                recipe, report = fit_wave(study, wave_id, con=con, data=held)
                 store(con, recipe, report)
             clock["weigh"] += time.perf_counter() - start
             for warning in report.warnings:
                 print(warning.render(), file=sys.stderr)
             reports[wave_id] = report
             start = time.perf_counter()
-            with progress.step(f"estimating wave {wave_id}", quiet=quiet):
-                responses = load_responses(con, study, [wave_id])
-                layout = cells.filter(pl.col("wave") == wave_id)
-                estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
+            layout = cells.filter(pl.col("wave") == wave_id)
+            batches = variable_batches(study, held.height, memory_budget, held_columns=held.width)
+            for k, names in enumerate(batches):
+                label = f"estimating wave {wave_id}" + (f" ({k + 1} of {len(batches)})" if len(batches) > 1 else "")
+                with progress.step(label, quiet=quiet):
+                    part = _with_columns(con, study, wave_id, held, names)
+                    estimates.append(wave_estimates(part, study, recipe, layout, options, wave=wave_id, variables=names))
+                    del part
+            del held
             clock["estimates"] += time.perf_counter() - start
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
@@ -121,15 +133,34 @@ def weigh_and_estimate(
     return joined, reports
 
 
+def _with_columns(
+    con: duckdb.DuckDBPyConnection, study: Study, wave_id: str, held: pl.DataFrame, names: list[str]
+) -> pl.DataFrame:
+    """`held` (the wave's weighting columns) beside the columns of the variables `names` it lacks,
+    read from the database in the same row order (checked on the respondent ids)."""
+    wanted = [c for n in names for c in study.variables[n].columns if c not in held.columns]
+    if not wanted:
+        return held
+    extra = load_responses(con, study, [wave_id], columns=list(dict.fromkeys(wanted)))
+    if not extra["respondent_id"].equals(held["respondent_id"]):
+        raise AssertionError(f"two reads of wave {wave_id} returned its respondents in different orders")
+    return held.hstack(extra.drop("wave", "respondent_id"))
+
+
 def run_study(
-    spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    restage: bool = False,
+    quiet: bool = False,
+    memory_budget: int = DEFAULT_BUDGET,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), writes the tidy cells export beside the book and renders the book to
+    (`weigh_and_estimate`, within `memory_budget` bytes of respondent-level work), writes the tidy cells export beside the book and renders the book to
     `out` (default `default_book_path`).
     Raises SpecError / DataError with every problem found.
     """
@@ -147,7 +178,7 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet)
+    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet, memory_budget=memory_budget)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):

@@ -26,7 +26,7 @@ the t interval with the design degrees of freedom.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 import polars as pl
@@ -106,7 +106,7 @@ def _row_expressions(
 
 
 def _wave_frame(
-    responses: pl.DataFrame, study: Study, recipe: FittedRecipe, layout: pl.DataFrame
+    responses: pl.DataFrame, study: Study, recipe: FittedRecipe, layout: pl.DataFrame, variables: Sequence[str]
 ) -> tuple[
     pl.DataFrame, list[MeanOf], list[str], list[str], dict[str, tuple[str, int, str]], dict[str, pl.Expr]
 ]:
@@ -131,7 +131,8 @@ def _wave_frame(
     medians: list[str] = []
     meaning: dict[str, tuple[str, int, str]] = {}
     bases: dict[str, pl.Expr] = {}
-    for name, variable in study.variables.items():
+    for name in variables:
+        variable = study.variables[name]
         rows = layout.filter(pl.col("variable") == name)
         for order, kind, y, base, base_name in _row_expressions(variable, rows):
             column = f"__r{len(meaning)}"
@@ -160,14 +161,17 @@ def wave_estimates(
     options: VarianceOptions,
     *,
     wave: str,
+    variables: Sequence[str] | None = None,
 ) -> pl.DataFrame:
     """Design-based estimates of every estimable topline row of one wave (module docstring).
 
-    responses: the wave's staged rows; recipe: its fitted weighting; layout: the topline rows of
-    the wave (`pipeline.topline.unweighted_toplines` filtered to the wave).
+    responses: the wave's staged rows (the design columns and those of `variables`); recipe: its
+    fitted weighting; layout: the topline rows of the wave (`pipeline.topline.unweighted_toplines`
+    filtered to the wave); variables: the variables to estimate (default every one of the study).
     Returns a frame with `ESTIMATE_SCHEMA`; percentages on the 0-100 scale.
     """
-    frame, shares, means, medians, meaning, bases = _wave_frame(responses, study, recipe, layout)
+    names = list(study.variables) if variables is None else list(variables)
+    frame, shares, means, medians, meaning, bases = _wave_frame(responses, study, recipe, layout, names)
     if not meaning:
         return pl.DataFrame(schema=ESTIMATE_SCHEMA)
     design = study.design

@@ -9,7 +9,7 @@ EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --restage, --memory-budget (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
@@ -21,12 +21,22 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         action="store_true",
         help="stage every wave again, even those whose raw file has not changed",
     )
+    from pipeline.memory import parse_size
+
+    parser.add_argument(
+        "--memory-budget",
+        metavar="SIZE",
+        type=parse_size,
+        default="2GB",
+        help="memory for the respondent-level work of one wave, e.g. 2GB or 512MB (default 2GB): "
+        "the answer columns are estimated in batches that fit it",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
     """Run the study and print the book's path."""
     from pipeline.runner import run_study
 
-    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet)
+    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet, memory_budget=args.memory_budget)
     print(path)
     return 0
