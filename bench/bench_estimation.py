@@ -221,7 +221,8 @@ def grouped_phase(rows: int, repeats: int) -> dict:
 
     theta, v_taylor = timed(out, "taylor_after_pass", repeats, taylor)
 
-    for name, method, reps in (("jackknife", "jkn", None), ("bootstrap", "bootstrap", BOOTSTRAP_REPLICATES)):
+    methods = (("jackknife", "stratified-jackknife", None), ("bootstrap", "bootstrap", BOOTSTRAP_REPLICATES))
+    for name, method, reps in methods:
 
         def replicate(method: str = method, reps: int | None = reps) -> tuple[np.ndarray, int]:
             rf = make_replicates(method, gt.psu_stratum, replicates=reps, seed=5)
@@ -259,7 +260,7 @@ def dense_phase(rows: int, sample: int, repeats: int) -> dict:
     population = float(frame["w0"].sum()) * 1.05
     reweight, _ = make_reweight(population)
     gt = group_totals(frame, {"one": pl.lit(1.0)}, weight="w0", strata="stratum", psu="psu", classes="cls")
-    rf = make_replicates("jkn", gt.psu_stratum)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum)
     by_psu_class = np.zeros((gt.n_psus, gt.n_classes))
     np.add.at(by_psu_class, (gt.psu, gt.cls), gt.totals[:, 0])
     f = reweight(rf.factors @ by_psu_class)  # the replay, shared with the grouped method and not counted here
