@@ -6,9 +6,9 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.database import load_responses, open_database
 from pipeline.estimation.options import VarianceOptions, parse_variance
-from pipeline.stage import stage_wave
+from pipeline.staging.database import load_responses, open_database
+from pipeline.staging.stage import stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import wave_estimates
 from pipeline.weighting import fit_recipe, parse_steps

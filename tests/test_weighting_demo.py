@@ -12,7 +12,7 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.recipe import fit_recipe
 from pipeline.weighting.steps import code_order, parse_steps

@@ -9,7 +9,7 @@ import polars as pl
 import pytest
 
 from pipeline.errors import DataError, SpecError
-from pipeline.spec import Design, Study, Variable
+from pipeline.staging.spec import Design, Study, Variable
 from pipeline.weighting.margins import Collapse
 from pipeline.weighting.recipe import fit_recipe
 from pipeline.weighting.steps import RakeStep, TrimStep, parse_steps

@@ -31,7 +31,7 @@ from pipeline.weighting.margins import Collapse
 from pipeline.weighting.targets import TargetTable, inline_targets, read_targets_csv, split_margin
 
 if TYPE_CHECKING:
-    from pipeline.spec import Study
+    from pipeline.staging.spec import Study
 
 
 @dataclass(frozen=True)

@@ -23,7 +23,7 @@ from pipeline.weighting.steps import code_order, parse_steps
 if TYPE_CHECKING:
     import duckdb
 
-    from pipeline.spec import Study
+    from pipeline.staging.spec import Study
 
 TABLES = ("weights", "weighting_steps", "weighting_margins", "weighting_largest", "weighting_response", "weighting_notes")
 ID = "respondent_id"
@@ -40,7 +40,7 @@ def build_report(recipe: FittedRecipe, *, wave: str, n_input: int) -> WeightingR
 
 def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> tuple[FittedRecipe, WeightingReport]:
     """Fit the study's weighting on one staged wave (nothing written); the recipe and its report."""
-    from pipeline.database import load_responses
+    from pipeline.staging.database import load_responses
 
     steps = parse_steps(study.weighting, study)
     data = load_responses(con, study, [wave_id])
