@@ -18,7 +18,7 @@ from pipeline.sqlfiles import sql
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
 from pipeline.weighting.recipe import FittedRecipe, fit_recipe, largest
-from pipeline.weighting.steps import code_order, parse_steps
+from pipeline.weighting.steps import parse_steps
 
 if TYPE_CHECKING:
     import duckdb
@@ -42,10 +42,11 @@ def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> t
     """Fit the study's weighting on one staged wave (nothing written); the recipe and its report."""
     from pipeline.staging.database import load_responses
 
-    steps = parse_steps(study.weighting, study)
+    context = study.step_context()
+    steps = parse_steps(study.weighting, context)
     data = load_responses(con, study, [wave_id])
     base, _ = design_base_weights(data, study, id_column=ID)
-    recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=code_order(study, set(study.variables)))
+    recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=context.code_order(set(study.variables)))
     return recipe, build_report(recipe, wave=wave_id, n_input=data.height)
 
 
