@@ -19,7 +19,7 @@ from conftest import TRACKER_SPEC
 from pipeline.cli import COMMANDS, main
 from pipeline.errors import Problem, SpecError
 from pipeline.renamed import OPTIONS, SPEC_VALUES, VARIABLE_KEYS
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 
 ROOT = Path(__file__).resolve().parents[1]
 DOCUMENTS = ("README.md", "DEVELOPERS.md", "sample_data/study.toml")
