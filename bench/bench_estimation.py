@@ -11,8 +11,8 @@ What each timing counts:
                  bincount per question), kept as a yardstick for `group_totals`.
   Taylor         grouped pass + raking of the full sample on class totals + calibration-residual
                  Taylor variances of the 300 cells (`taylor_variance`).
-  jackknife      grouped pass + 400 JKn replicates, raking replayed in every replicate on class
-                 totals (helper W's raking engine `pipeline.weighting.ipf.rake`, all replicates at
+  jackknife      grouped pass + 400 stratified-jackknife replicates, raking replayed in every
+                 replicate on class totals (helper W's raking engine `pipeline.weighting.ipf.rake`, all replicates at
                  once) + replicate totals (`replicate_totals`) + variances.
   bootstrap      the same with 500 Rao-Wu bootstrap replicates.
   replicate totals alone  `replicate_totals` in its two dense formulations, the (PSU, class)

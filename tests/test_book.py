@@ -186,7 +186,7 @@ def test_text_codes_are_counted(cells: pl.DataFrame, data: pl.DataFrame) -> None
 
 
 @pytest.mark.parametrize("wave", ["W1", "W2"])
-def test_scale_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, data: pl.DataFrame, wave: str) -> None:
+def test_rating_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, data: pl.DataFrame, wave: str) -> None:
     answered = data.filter(pl.col("wave") == wave)["satisfaction"].drop_nulls()
     scored = answered.filter(answered != 99).cast(pl.Float64)
     assert _statistics(cells, wave, "satisfaction") == pytest.approx(_summary(scored), rel=1e-12)
@@ -197,7 +197,7 @@ def test_scale_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, dat
     assert "99 (Don't know)" in _cell(cells, wave, "satisfaction", "statistic", "Mean")["note"]
 
 
-def test_scale_lists_every_code_of_its_range(cells: pl.DataFrame) -> None:
+def test_rating_lists_every_code_of_its_range(cells: pl.DataFrame) -> None:
     labels = (
         _rows(cells, "W1", "satisfaction", "category")
         .sort("row_order")["row_label"]

@@ -46,7 +46,7 @@ def test_single_psu_certainty_contributes_zero() -> None:
     assert row["estimate"] == pytest.approx((frame["w"] * frame["y"]).sum())
 
 
-def test_single_psu_centre_uses_the_grand_mean_of_psu_totals() -> None:
+def test_single_psu_grand_mean_uses_the_grand_mean_of_psu_totals() -> None:
     frame = lone_psu_sample()
     row = estimate(frame, weight="w", strata="h", psu="j", total="y", single_psu="grand-mean").row(0, named=True)
     z = psu_totals(frame)
@@ -65,7 +65,7 @@ def test_single_psu_collapse_merges_with_the_partner() -> None:
     assert row["df"] == 5 - 2
 
 
-def test_fpc_column_must_be_constant_within_stratum_and_not_below_sample() -> None:
+def test_population_size_column_must_be_constant_within_stratum_and_not_below_sample() -> None:
     frame = lone_psu_sample().filter(pl.col("h") != "C").with_columns(N=pl.Series([10.0, 10, 10, 12, 1, 1, 1, 1]))
     with pytest.raises(DataError) as info:
         estimate(frame, weight="w", strata="h", psu="j", total="y", population_size="N")
@@ -189,3 +189,25 @@ def test_replicates_without_a_usable_single_psu_policy_name_the_stratum(policy: 
     with pytest.raises(DataError) as info:
         estimate(lone_psu_sample(), weight="w", strata="h", psu="j", total="y", variance="stratified-jackknife", single_psu=policy)
     assert "e.g. ids C" in info.value.render() and "certainty" in info.value.render()
+
+
+def test_population_size_and_sampling_fraction_are_explicit() -> None:
+    """No value is guessed to be a fraction or a count: each option says which it is."""
+    frame = lone_psu_sample().filter(pl.col("h") != "C")
+    with pytest.raises(SpecError) as info:
+        estimate(frame, weight="w", strata="h", psu="j", total="y", population_size={"A": 10.0, "B": 8.0},
+                 sampling_fraction=0.1)
+    text = info.value.render()
+    assert "give the population size or the sampling fraction, not both" in text
+    with pytest.raises(SpecError, match=r"the sampling fraction must lie in \(0, 1\]"):
+        estimate(frame, weight="w", strata="h", psu="j", total="y", sampling_fraction=1.5)
+    with pytest.raises(DataError, match="a sampling fraction outside"):
+        estimate(frame, weight="w", strata="h", psu="j", total="y", sampling_fraction={"A": 0.5, "B": 2.0})
+    # a population size of 1 is a count (one unit in the stratum's population), not a fraction of 100%
+    with pytest.raises(DataError, match="a population size smaller than the number of sampled PSUs"):
+        estimate(frame, weight="w", strata="h", psu="j", total="y", population_size={"A": 1.0, "B": 8.0})
+    by_fraction = estimate(frame, weight="w", strata="h", psu="j", total="y", sampling_fraction=0.25)
+    n_h = frame.group_by("h").agg(pl.col("j").n_unique()).sort("h")["j"].to_list()
+    by_size = estimate(frame, weight="w", strata="h", psu="j", total="y",
+                       population_size={"A": n_h[0] / 0.25, "B": n_h[1] / 0.25})
+    assert by_fraction["se"][0] == pytest.approx(by_size["se"][0], rel=1e-12)  # N_h = n_h / f_h (identity)

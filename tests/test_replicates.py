@@ -96,7 +96,7 @@ def test_stratified_jackknife_of_linear_total_equals_with_replacement_formula(si
     theta = totals.value(gt.totals.sum(axis=0))
     theta_r = totals.value(replicate_totals(gt, rf))
     psu_z = gt.psu_totals()[:, [0, 2]]
-    # identity: JKn with multipliers (1-f_h)(n_h-1)/n_h on a linear estimator = ultimate-cluster variance
+    # identity: the stratified jackknife with multipliers (1-f_h)(n_h-1)/n_h on a linear estimator = ultimate-cluster variance
     # (Rust & Rao 1996 section 3; Wolter 2007 section 4.5)
     np.testing.assert_allclose(replicate_variance(theta, theta_r, rf), wr_variance(psu_z, gt.psu_stratum, fraction), rtol=1e-10)
     # identity: per-stratum replicate means of a linear total equal the full total, so centres agree
@@ -168,9 +168,9 @@ def test_bootstrap_variance_of_linear_total_is_unbiased_for_with_replacement_for
     np.testing.assert_allclose(replicate_variance(theta, theta_r, rf), expected, rtol=0.04)
 
 
-def test_jk1_multiplier_and_factors():
+def test_unstratified_jackknife_multiplier_and_factors():
     rf = make_replicates("jackknife", np.array([0, 0, 1, 1, 1]))
-    # JK1 (Wolter 2007 section 4.2): factor P/(P-1) except the deleted PSU, multiplier (P-1)/P
+    # unstratified jackknife (Wolter 2007 section 4.2): factor P/(P-1) except the deleted PSU, multiplier (P-1)/P
     assert rf.multiplier == pytest.approx(4 / 5)
     np.testing.assert_allclose(np.diag(rf.factors), 0.0)
     np.testing.assert_allclose(rf.factors[0, 1:], 5 / 4)
