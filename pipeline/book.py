@@ -379,6 +379,15 @@ def _design_lines(design: Design) -> tuple[str, ...]:
     return tuple(lines)
 
 
+MEDIAN_WEIGHTED = (
+    "The median of a rating scale is the interpolated median of grouped answers: each answer k "
+    "counts as spread evenly from k - 0.5 to k + 0.5, and the median is the point with half the "
+    "weight below it. The median of a number is the smallest answer with at least half the weight "
+    "at or below it. Medians carry no design effect."
+)
+MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
+
+
 def _methodology(*, weighted: bool) -> tuple[str, ...]:
     """How the figures in the book were produced."""
     if weighted:
@@ -404,7 +413,7 @@ def _methodology(*, weighted: bool) -> tuple[str, ...]:
         "row counts respondents with no answer to any item.",
         "Rating scales and numbers: the mean, median, minimum and maximum use the answers given, "
         "leaving out codes such as 'don't know' where the codebook says so (noted under the table). "
-        "The median is the middle answer, or the midpoint of the two middle answers.",
+        + (MEDIAN_WEIGHTED if weighted else MEDIAN_UNWEIGHTED),
     ]
     return tuple(paragraphs)
 

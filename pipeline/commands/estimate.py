@@ -70,6 +70,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
     var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
     parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
+    parser.add_argument(
+        "--interval",
+        choices=("korn-graubard", "logit", "t"),
+        default="korn-graubard",
+        help="interval of proportions (default korn-graubard: exact binomial limits on the effective sample size; "
+        "means, totals and ratios always use t, quantiles the Woodruff interval)",
+    )
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
 
 
@@ -119,6 +126,7 @@ def run(args: argparse.Namespace) -> int:
             replicates=args.replicates,
             seed=args.seed,
             level=args.level,
+            interval=args.interval,
             single_psu=args.single_psu,
             second_stage_fraction=args.second_stage_fraction,
             source=str(path),

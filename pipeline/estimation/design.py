@@ -250,6 +250,20 @@ class PsuLayout:
         """Design degrees of freedom: PSUs minus strata (Korn & Graubard 1999 section 5.2, from memory)."""
         return len(self.psu_stratum) - self.n_strata
 
+    def domain_df(self, present: np.ndarray) -> np.ndarray:
+        """Degrees of freedom of domain estimates: PSUs with domain members minus strata with domain members.
+
+        present: (P, m) whether PSU j holds at least one respondent of estimate k's base (the domain's
+        respondents who answered). df_k = #{j : present} - #{h : some PSU of h present}, at least 1
+        (Korn & Graubard 1999, Analysis of Health Surveys, section 5.2 on degrees of freedom for
+        subpopulations, from memory). For a domain found in every PSU it is the design df, PSUs minus
+        strata; a domain living in one stratum with 5 PSUs gets 4.
+        """
+        present = np.asarray(present, dtype=bool)
+        psus = present.sum(axis=0)
+        strata = (sum_by(self.psu_stratum, present.astype(np.float64), self.n_strata) > 0).sum(axis=0)
+        return np.maximum(psus - strata, 1).astype(np.float64)
+
     @property
     def has_fpc(self) -> bool:
         """Whether a finite population correction is applied."""
