@@ -30,7 +30,13 @@ from pipeline.estimation.estimands import Ratios
 from pipeline.estimation.quantiles import WeightedCdf, weighted_cdfs, woodruff_interval
 from pipeline.estimation.result import COLUMNS, EstimateTable
 from pipeline.estimation.result import interval as interval_for
-from pipeline.estimation.taylor import Calibration, SquaredTotals, taylor_variance, within_psu_variance
+from pipeline.estimation.taylor import (
+    Calibration,
+    ProductMoments,
+    SquaredTotals,
+    taylor_variance,
+    within_psu_variance,
+)
 from pipeline.estimation.totals import GroupTotals, group_totals
 
 VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied")
@@ -335,6 +341,38 @@ def _squared_totals(
     cells = plan.cells
     return SquaredTotals(sq.totals * (f**2)[:, None], index([c.s_nn for c in cells]), index([c.s_nd for c in cells]),
                          index([c.s_dd for c in cells]))
+
+
+def product_moments(
+    frame: pl.DataFrame,
+    quantities: Mapping[str, pl.Expr],
+    gt: GroupTotals,
+    pairs: np.ndarray,
+    *,
+    weight: str,
+    strata: str | None,
+    psu: str | None,
+    classes: str | None = None,
+    psu_ids: str = "nested",
+    reweight: Callable[[np.ndarray], np.ndarray] | None = None,
+) -> ProductMoments:
+    """The squared-weight cross-products sum_{i in g} w_i^2 y_ik y_il of `pairs` (from
+    `taylor.product_pairs`), for `taylor.within_psu_covariance`.
+
+    quantities: the expressions `gt` was computed from (same names and order); w = base * f(c)
+    with the recipe's class factors when `reweight` is given, as in `_squared_totals`. One more
+    grouped pass with the squared base weight over the product expressions, in the groups of `gt`.
+    """
+    names = gt.columns
+    exprs = {f"__pair{q}": (quantities[names[k]] * quantities[names[k2]]).cast(pl.Float64)
+             for q, (k, k2) in enumerate(np.asarray(pairs, dtype=np.int64).tolist())}
+    squared_weight = "__squared_weight"
+    sq = group_totals(frame.with_columns((pl.col(weight).cast(pl.Float64) ** 2).alias(squared_weight)), exprs,
+                      weight=squared_weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
+    if not (np.array_equal(sq.psu, gt.psu) and np.array_equal(sq.cls, gt.cls)):
+        raise AssertionError("the squared-weight pass formed different groups")
+    f = _group_factors(gt, reweight)
+    return ProductMoments(pairs, sq.totals * (f**2)[:, None])
 
 
 def estimate(

@@ -305,6 +305,12 @@ class PsuLayout:
         f = self.fraction[self.psu_stratum] * (1.0 - self.second_stage_fraction)
         return (f[:, None] * np.asarray(within, dtype=np.float64)).sum(axis=0)
 
+    def second_stage_covariance(self, within: np.ndarray) -> np.ndarray:
+        """(P, m, m) second-stage covariances of the PSU totals -> (m, m) sum_h f_h (1 - f_2) sum_j c2_j,
+        the covariance form of `second_stage` (same weights)."""
+        f = self.fraction[self.psu_stratum] * (1.0 - self.second_stage_fraction)
+        return np.einsum("j,jab->ab", f, np.asarray(within, dtype=np.float64))
+
     def covariance(self, z: np.ndarray) -> np.ndarray:
         """(P, m) PSU totals -> (m, m) covariance matrix, the same formula with cross-products."""
         dev, factor = self._deviations(np.asarray(z, dtype=np.float64))
