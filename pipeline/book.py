@@ -31,7 +31,7 @@ import polars as pl
 from pipeline import __version__
 from pipeline.errors import WavebookError
 from pipeline.resources import resource_dir
-from pipeline.spec import Design, Study, Variable, Wave
+from pipeline.staging.spec import Design, Study, Variable, Wave
 
 # Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
 LOW_BASE = 50

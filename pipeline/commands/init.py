@@ -22,7 +22,7 @@ def run(args: argparse.Namespace) -> int:
     import tempfile
     from pathlib import Path
 
-    from pipeline.draft import draft_spec
+    from pipeline.staging.draft import draft_spec
     from pipeline.errors import Problem, WavebookError
     from pipeline.progress import step
 
