@@ -370,7 +370,18 @@ def _design_lines(design: Design) -> tuple[str, ...]:
         lines.append(f"Base weights: 1 / selection probability (column '{design.selection_probability}').")
     else:
         lines.append("Base weights: equal for every respondent.")
-    if design.population:
+    if design.first_stage == "pps" and design.psu_inclusion_probability:
+        lines.append(
+            "First-stage units drawn with probability proportional to size: each unit's squared deviation is "
+            f"multiplied by one minus its inclusion probability (column '{design.psu_inclusion_probability}'), "
+            "the usual approximation for such samples."
+        )
+    elif design.first_stage == "pps":
+        lines.append(
+            "First-stage units drawn with probability proportional to size: standard errors use the "
+            "with-replacement formula, with no finite population correction (slightly conservative)."
+        )
+    elif design.population:
         lines.append("Finite population correction from the declared population of first-stage units per stratum.")
     elif design.sampling_fraction:
         lines.append("Finite population correction from the declared sampling fractions per stratum.")

@@ -174,6 +174,8 @@ def wave_estimates(
         single_psu=design.single_psu,
         collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
         second_stage_fraction=design.second_stage_fraction,
+        first_stage=design.first_stage,
+        psu_inclusion=design.psu_inclusion_probability,
         mean=means,
         quantile=[(c, 0.5) for c in medians] or None,
         interpolate_quantiles=[c for c in medians if study.variables[meaning[c][0]].type in RATING_TYPES],

@@ -41,6 +41,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "within-PSU variance term is added in full; 1: whole PSUs were taken)",
     )
     design.add_argument(
+        "--first-stage",
+        choices=("equal", "pps"),
+        default="equal",
+        help="how PSUs were drawn: equal probability within stratum (default) or pps, probability proportional "
+        "to size (no --fpc: with-replacement variance unless --psu-inclusion is given)",
+    )
+    design.add_argument(
+        "--psu-inclusion",
+        metavar="COL",
+        help="with --first-stage pps: each PSU's first-stage inclusion probability, for the (1 - pi) approximation "
+        "(Taylor only; default: none)",
+    )
+    design.add_argument(
         "--single-psu",
         choices=("error", "certainty", "centre"),
         default="error",
@@ -129,6 +142,8 @@ def run(args: argparse.Namespace) -> int:
             interval=args.interval,
             single_psu=args.single_psu,
             second_stage_fraction=args.second_stage_fraction,
+            first_stage=args.first_stage,
+            psu_inclusion=args.psu_inclusion,
             source=str(path),
         ).select(COLUMNS)
     if args.format == "json":

@@ -208,12 +208,14 @@ def estimate_table(
     second_stage_fraction: float = 0.0,
     interval: str = "korn-graubard",
     interpolate_quantiles: str | Sequence[str] | None = None,
+    first_stage: str = "equal",
+    psu_inclusion: str | None = None,
 ) -> EstimateTable:
     """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
     design = SampleDesign(
         weight=weight, strata=strata, psu=psu, psu_ids=psu_ids, fpc=fpc,  # type: ignore[arg-type]
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
-        second_stage_fraction=float(second_stage_fraction),
+        second_stage_fraction=float(second_stage_fraction), first_stage=first_stage, psu_inclusion=psu_inclusion,
     )
     _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
@@ -244,8 +246,9 @@ def estimate_table(
     final = _final_totals(gt, reweight)
     ratios, t = _ratios(plan, gt), final.totals.sum(axis=0)
     fpc_values = design.fpc_values(frame)
+    inclusion = design.inclusion_values(frame, gt)
     if variance == "taylor":
-        layout = design.layout(final, fpc_values=fpc_values)
+        layout = design.layout(final, fpc_values=fpc_values, inclusion=inclusion)
         calibration = None
         if calibration_matrix is not None:
             calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
@@ -259,7 +262,7 @@ def estimate_table(
         df_layout: PsuLayout | None = layout
     else:
         # generated replicates follow the design as the variance sees it: collapsed strata, f_h, lone PSUs
-        layout = None if variance == "supplied" else design.layout(gt, fpc_values=fpc_values)
+        layout = None if variance == "supplied" else design.layout(gt, fpc_values=fpc_values, inclusion=inclusion)
         theta = ratios.value(t)
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
@@ -406,6 +409,8 @@ def estimate(
     second_stage_fraction: float = 0.0,
     interval: str = "korn-graubard",
     interpolate_quantiles: str | Sequence[str] | None = None,
+    first_stage: str = "equal",
+    psu_inclusion: str | None = None,
 ) -> pl.DataFrame:
     """Design-based estimates, one row per estimate, as a polars DataFrame.
 
@@ -413,6 +418,9 @@ def estimate(
     n_eff, reason, method. Options:
       weight (required), strata, psu, fpc (column of stratum population counts N_h, a value <= 1
       read as the sampling fraction; or a mapping stratum -> value), psu_ids ("nested"/"unique");
+      first_stage: "equal" (default) or "pps" (PSUs drawn with probability proportional to size: no
+      FPC, or with psu_inclusion, a column of each PSU's first-stage inclusion probability, the
+      (1 - pi) approximation of `design`, Taylor only);
       second_stage_fraction: with an FPC and PSUs, the share of each selected PSU's units sampled
       (default 0, unknown: the within-PSU term is added in full; 1: whole PSUs, none is added);
       mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
@@ -445,7 +453,7 @@ def estimate(
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
         reweight=reweight, source=source, second_stage_fraction=second_stage_fraction, interval=interval,
-        interpolate_quantiles=interpolate_quantiles,
+        interpolate_quantiles=interpolate_quantiles, first_stage=first_stage, psu_inclusion=psu_inclusion,
     ).frame
 
 
@@ -475,6 +483,9 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         options.append((f"interval must be one of {', '.join(INTERVAL_KINDS)}", str(req["interval"])))
     if req["variance"] == "supplied" and not req["replicate_cols"]:
         options.append(("supplied replicate weights need replicate_cols (a pattern or a list)", None))
+    if req["variance"] != "taylor" and design.psu_inclusion is not None:
+        options.append(("the (1 - pi) approximation of a pps first stage is for Taylor linearization; replicate "
+                        "methods use the with-replacement form: drop the PSU inclusion probabilities", None))
     if req["variance"] == "supplied" and design.fpc is not None:
         options.append(("supplied replicate weights carry their own variance recipe; drop the FPC", None))
     if (req["reweight"] is not None or req["calibration_matrix"] is not None) and req["classes"] is None:
