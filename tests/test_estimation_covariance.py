@@ -86,7 +86,7 @@ def _direct(frame: pl.DataFrame, population: dict[str, int], *, calibrated: bool
 def _taylor(frame: pl.DataFrame, population: dict[str, int], *, calibrated: bool) -> tuple[np.ndarray, ...]:
     gt = group_totals(frame, QUANTITIES, weight="w", strata="h", psu="j", classes="c")
     fpc = {k: float(v[1]) for k, v in population.items()}
-    layout = SampleDesign(weight="w", strata="h", psu="j", fpc=fpc).layout(gt, fpc_values=fpc)
+    layout = SampleDesign(weight="w", strata="h", psu="j", population_size=fpc).layout(gt, fpc_values=fpc)
     ratios = _estimands(gt)
     one = gt.column("one")
     calibration = Calibration(np.eye(3), one) if calibrated else None
@@ -114,7 +114,7 @@ def test_covariance_diagonal_is_the_variance_of_estimate(calibrated: bool) -> No
     *_, cov = _taylor(frame, sizes, calibrated=calibrated)
     fpc = {k: float(v[1]) for k, v in sizes.items()}
     extra = {"classes": "c", "calibration_matrix": np.eye(3)} if calibrated else {}
-    out = estimate(frame, weight="w", strata="h", psu="j", fpc=fpc, mean="y", proportion="big", by="dom", **extra)
+    out = estimate(frame, weight="w", strata="h", psu="j", population_size=fpc, mean="y", proportion="big", by="dom", **extra)
     mean = out.filter((pl.col("statistic") == "mean") & (pl.col("domain") == ""))["se"][0]
     mean_dom = out.filter((pl.col("statistic") == "mean") & (pl.col("domain") == "dom=1"))["se"][0]
     share = out.filter((pl.col("category") == "1") & (pl.col("domain") == "dom=1"))["se"][0]
@@ -129,7 +129,7 @@ def test_large_sample_taylor_covariance_agrees_with_the_stratified_jackknife() -
     sizes = {"A": (40, 80), "B": (40, 80), "C": (40, 80)}
     frame = _two_stage(11, sizes, (12, 21))
     gt, ratios, layout, _, within, cov = _taylor(frame, sizes, calibrated=False)
-    rf = make_replicates("jkn", layout.psu_stratum, sampling_fraction=layout.fraction,
+    rf = make_replicates("stratified-jackknife", layout.psu_stratum, sampling_fraction=layout.fraction,
                          stratum_labels=layout.stratum_labels)
     theta = ratios.value(gt.totals.sum(axis=0))
     jack = replicate_covariance(theta, ratios.value(replicate_totals(gt, rf)), rf) + layout.second_stage_covariance(within)

@@ -51,7 +51,7 @@ def test_pps_first_stage_without_inclusion_probabilities_is_with_replacement() -
     plain = estimate(frame, weight="w", strata="h", psu="j", mean="y", total="y")
     assert pps["se"].to_list() == plain["se"].to_list()  # identity: no FPC is the with-replacement formula
     with pytest.raises(SpecError):
-        estimate(frame, weight="w", strata="h", psu="j", mean="y", first_stage="pps", fpc={"A": 10, "B": 12})
+        estimate(frame, weight="w", strata="h", psu="j", mean="y", first_stage="pps", population_size={"A": 10, "B": 12})
 
 
 def test_pps_inclusion_probabilities_give_the_one_minus_pi_approximation() -> None:
@@ -68,7 +68,7 @@ def test_pps_inclusion_probabilities_give_the_one_minus_pi_approximation() -> No
 def test_equal_inclusion_probabilities_equal_the_fpc_path() -> None:
     frame = _pps_sample().with_columns(pi=pl.when(pl.col("h") == "A").then(4 / 10).otherwise(5 / 12))
     pps = estimate(frame, weight="w", strata="h", psu="j", total="y", first_stage="pps", psu_inclusion="pi")
-    fpc = estimate(frame, weight="w", strata="h", psu="j", total="y", fpc={"A": 10, "B": 12})
+    fpc = estimate(frame, weight="w", strata="h", psu="j", total="y", population_size={"A": 10, "B": 12})
     # identity: pi_hj = n_h / N_h for every PSU of a stratum is the equal-probability first stage
     assert pps["se"][0] == pytest.approx(fpc["se"][0], rel=1e-12)
 
@@ -80,7 +80,7 @@ def test_inclusion_probabilities_are_checked_and_taylor_only() -> None:
         estimate(varying, weight="w", strata="h", psu="j", total="y", first_stage="pps", psu_inclusion="pi")
     with pytest.raises(SpecError):
         estimate(frame, weight="w", strata="h", psu="j", total="y", first_stage="pps", psu_inclusion="pi",
-                 variance="jkn")
+                 variance="stratified-jackknife")
     with pytest.raises(SpecError):
         estimate(frame, weight="w", strata="h", psu="j", total="y", psu_inclusion="pi")  # needs pps
 
