@@ -97,8 +97,8 @@ def _duckdb_load(spec_path: str, results: multiprocessing.Queue) -> None:
 
 
 def _stage(spec_path: str, results: multiprocessing.Queue) -> None:
-    from pipeline.spec import load_spec
-    from pipeline.stage import stage_wave
+    from pipeline.staging.spec import load_spec
+    from pipeline.staging.stage import stage_wave
 
     study = load_spec(spec_path)
     start = time.perf_counter()
@@ -109,8 +109,8 @@ def _stage(spec_path: str, results: multiprocessing.Queue) -> None:
 
 def _weigh(spec_path: str, results: multiprocessing.Queue) -> None:
     """`fit_wave` + `store` of every staged wave, as `wavebook weigh` does."""
-    from pipeline.database import open_database
-    from pipeline.spec import load_spec
+    from pipeline.staging.database import open_database
+    from pipeline.staging.spec import load_spec
     from pipeline.weighting.store import fit_wave, store
 
     study = load_spec(spec_path)
@@ -127,10 +127,10 @@ def _estimates_and_book(spec_path: str, memory_budget: str | None, results: mult
     """Toplines, weighting and estimates (`runner.weigh_and_estimate`), then the export and the book."""
     from pipeline import runner
     from pipeline.book import render_book
-    from pipeline.book_weighting import variance_lines, weighting_section
+    from pipeline.book import variance_lines, weighting_section
     from pipeline.cells_export import tidy_cells, write_cells
-    from pipeline.database import open_database
-    from pipeline.spec import load_spec
+    from pipeline.staging.database import open_database
+    from pipeline.staging.spec import load_spec
     from pipeline.topline import unweighted_toplines
 
     study = load_spec(spec_path)
@@ -202,7 +202,7 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=1_000_000)
     parser.add_argument("--waves", type=int, default=1)
-    parser.add_argument("--variance", default="taylor", help="taylor (default) or a replicate method, e.g. jkn")
+    parser.add_argument("--variance", default="taylor", help="taylor (default) or a replicate method, e.g. stratified-jackknife")
     parser.add_argument("--memory-budget", help="passed to `wavebook run --memory-budget` (default: its own)")
     parser.add_argument("--folder", type=Path, help="where to write the study (default: a temp folder)")
     args = parser.parse_args(argv)

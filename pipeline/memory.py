@@ -14,7 +14,7 @@ import re
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
-    from pipeline.spec import Study
+    from pipeline.staging.spec import Study
 
 DEFAULT_BUDGET = 2 * 2**30
 # bytes held per respondent and answer column of a batch while it is estimated: the value (8),
@@ -45,7 +45,7 @@ def variable_batches(study: Study, rows: int, budget: int, *, held_columns: int 
     batches: list[list[str]] = []
     used = 0
     for name, variable in study.variables.items():
-        cost = per_column * (len(variable.columns) + (2 if variable.type in ("numeric", "scale", "rating") else 0))
+        cost = per_column * (len(variable.columns) + (2 if variable.type in ("numeric", "rating") else 0))
         if not batches or used + cost > room:
             batches.append([])
             used = 0

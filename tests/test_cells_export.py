@@ -20,7 +20,7 @@ from polars.testing import assert_frame_equal
 from pipeline.cells_export import EXPORT_SCHEMA, tidy_cells
 from pipeline.commands.demo import DEMO_SPEC, copy_demo
 from pipeline.runner import run_study
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 
 REFERENCE = Path(__file__).parent / "reference" / "demo_cells.csv"
 COLUMNS = [
@@ -178,7 +178,8 @@ def test_a_sample_of_rendered_cells_shows_the_export_figures(demo: tuple[Path, P
         share = figures.get((wave, variable, label, "percent"))
         if share is not None:
             assert cell["figure"] == _percent(share["estimate"]), (variable, label, wave)
-            assert cell["count"] == f"{_whole(figures[(wave, variable, label, 'count')]['estimate']):,}"
+            # the count is shown as "n 496" (an abbreviation "n" before the number)
+            assert cell["count"].removeprefix("n") == f"{_whole(figures[(wave, variable, label, 'count')]['estimate']):,}"
             if share["ci_low"] is not None and "set-by-weighting" not in share["flags"] and share["ci_high"] >= 0.0195:
                 assert cell["interval"] == f"{_whole(100 * share['ci_low'])}–{_whole(100 * share['ci_high'])}"
             checked += 1

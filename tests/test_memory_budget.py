@@ -14,7 +14,7 @@ from polars.testing import assert_frame_equal
 from pipeline.commands.demo import DEMO_SPEC, copy_demo
 from pipeline.memory import BYTES_PER_VALUE, DEFAULT_BUDGET, parse_size, variable_batches
 from pipeline.runner import run_study
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 
 
 @pytest.mark.parametrize(
@@ -50,7 +50,7 @@ def test_batches_hold_every_variable_once_in_spec_order_within_the_budget() -> N
     batches = variable_batches(study, rows, budget)
     assert [n for b in batches for n in b] == names and 1 < len(batches) < len(names)
     for batch in batches:
-        width = sum(len(study.variables[n].columns) + 2 * (study.variables[n].type in ("numeric", "scale", "rating"))
+        width = sum(len(study.variables[n].columns) + 2 * (study.variables[n].type in ("numeric", "rating"))
                     for n in batch)
         assert len(batch) == 1 or width * rows * BYTES_PER_VALUE <= budget
     # columns held for the whole wave come off the budget first: more, smaller batches
