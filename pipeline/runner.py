@@ -33,7 +33,7 @@ from pipeline.staging.database import load_responses, open_database, staged_wave
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import file_sha256, stage_wave
 from pipeline.topline import unweighted_toplines
-from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
+from pipeline.weighted_cells import ESTIMATE_SCHEMA, RememberedReplay, wave_estimates
 from pipeline.weighting import WeightingReport
 from pipeline.weighting.store import fit_wave, store, weighting_columns
 
@@ -116,11 +116,14 @@ def weigh_and_estimate(
             start = time.perf_counter()
             layout = cells.filter(pl.col("wave") == wave_id)
             batches = variable_batches(study, held.height, memory_budget, held_columns=held.width)
+            replay = RememberedReplay(recipe.replay)
             for k, names in enumerate(batches):
                 label = f"estimating wave {wave_id}" + (f" ({k + 1} of {len(batches)})" if len(batches) > 1 else "")
                 with progress.step(label, quiet=quiet):
                     part = _with_columns(con, study, wave_id, held, names)
-                    estimates.append(wave_estimates(part, study, recipe, layout, options, wave=wave_id, variables=names))
+                    estimates.append(
+                        wave_estimates(part, study, recipe, layout, options, wave=wave_id, variables=names, replay=replay)
+                    )
                     del part
             del held
             clock["estimates"] += time.perf_counter() - start

@@ -31,7 +31,8 @@ the t interval with the design degrees of freedom.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import hashlib
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 import polars as pl
@@ -158,6 +159,24 @@ def _by_stratum(values: Mapping[object, float]) -> dict[str, float] | None:
     return {str(k): float(v) for k, v in values.items()} if values else None
 
 
+class RememberedReplay:
+    """A weighting recipe's `replay`, each result remembered by its input: the batches of one wave
+    (`pipeline.memory`) replay the same replicate class totals, and each is then computed once.
+
+    replay is a pure function of the (R, C) class totals, so a remembered result is the result."""
+
+    def __init__(self, replay: Callable[[np.ndarray], np.ndarray]) -> None:
+        self._replay = replay
+        self._results: dict[tuple[tuple[int, ...], bytes], np.ndarray] = {}
+
+    def __call__(self, class_totals: np.ndarray) -> np.ndarray:
+        totals = np.ascontiguousarray(class_totals, dtype=np.float64)
+        key = (totals.shape, hashlib.blake2b(totals.tobytes(), digest_size=32).digest())
+        if key not in self._results:
+            self._results[key] = np.asarray(self._replay(totals), dtype=np.float64)
+        return self._results[key].copy()
+
+
 def wave_estimates(
     responses: pl.DataFrame,
     study: Study,
@@ -167,12 +186,15 @@ def wave_estimates(
     *,
     wave: str,
     variables: Sequence[str] | None = None,
+    replay: Callable[[np.ndarray], np.ndarray] | None = None,
 ) -> pl.DataFrame:
     """Design-based estimates of every estimable topline row of one wave (module docstring).
 
     responses: the wave's staged rows (the design columns and those of `variables`); recipe: its
     fitted weighting; layout: the topline rows of the wave (`pipeline.topline.unweighted_toplines`
-    filtered to the wave); variables: the variables to estimate (default every one of the study).
+    filtered to the wave); variables: the variables to estimate (default every one of the study);
+    replay: the recipe's replay to use (default `recipe.replay`; a `RememberedReplay` shared by the
+    batches of a wave).
     Returns a frame with `ESTIMATE_SCHEMA`; percentages on the 0-100 scale.
     """
     names = list(study.variables) if variables is None else list(variables)
@@ -204,7 +226,7 @@ def wave_estimates(
         seed=options.seed,
         level=options.level,
         classes=_CLASS,
-        reweight=recipe.replay,
+        reweight=recipe.replay if replay is None else replay,
         calibration_matrix=None if calibration.shape[1] == 0 else calibration,
         source=f"wave {wave}",
     ).frame

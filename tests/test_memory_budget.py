@@ -7,6 +7,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import polars as pl
 import pytest
 from polars.testing import assert_frame_equal
@@ -15,6 +16,7 @@ from pipeline.commands.demo import DEMO_SPEC, copy_demo
 from pipeline.memory import BYTES_PER_VALUE, DEFAULT_BUDGET, parse_size, variable_batches
 from pipeline.runner import run_study
 from pipeline.staging.spec import load_spec
+from pipeline.weighted_cells import RememberedReplay
 
 
 @pytest.mark.parametrize(
@@ -74,3 +76,19 @@ def test_run_refuses_a_bad_memory_budget_as_a_usage_error(tmp_path: Path) -> Non
                             capture_output=True, text=True)
     assert result.returncode == 2
     assert "is not a size such as 2GB" in result.stderr
+
+
+def test_remembered_replay_computes_each_input_once_and_returns_its_result() -> None:
+    calls: list[np.ndarray] = []
+
+    def replay(totals: np.ndarray) -> np.ndarray:
+        calls.append(totals.copy())
+        return totals / totals.sum(axis=1, keepdims=True)
+
+    remembered = RememberedReplay(replay)
+    a = np.array([[1.0, 3.0], [2.0, 2.0]])
+    first = remembered(a)
+    first[0, 0] = 99.0  # a caller changing its copy changes nothing remembered
+    np.testing.assert_array_equal(remembered(a.copy()), [[0.25, 0.75], [0.5, 0.5]])
+    np.testing.assert_array_equal(remembered(a[:1]), [[0.25, 0.75]])
+    assert len(calls) == 2  # a, then its first row (another input); the repeat of a was remembered

@@ -115,9 +115,21 @@ def _frames(recipe: FittedRecipe, report: WeightingReport) -> dict[str, pl.DataF
 
 
 def create_weighting_tables(con: duckdb.DuckDBPyConnection) -> None:
-    """Create `weights` and the `weighting_*` tables when absent."""
+    """Create `weights` and the `weighting_*` tables when absent.
+
+    A `weights` table made by an earlier version with a primary key is rebuilt without it, once,
+    keeping its rows (`sql/weighting_schema_weights.sql` says why there is no index)."""
     for name in ("weights", "steps", "margins", "largest", "response", "notes"):
         con.execute(sql(f"weighting_schema_{name}.sql"))
+    if con.execute(sql("weighting_weights_indexed.sql")).fetchone()[0]:
+        con.begin()
+        try:
+            for step in ("copy", "drop", "rename"):
+                con.execute(sql(f"weighting_rebuild_{step}.sql"))
+            con.commit()
+        except BaseException:
+            con.rollback()
+            raise
 
 
 def store(con: duckdb.DuckDBPyConnection, recipe: FittedRecipe, report: WeightingReport) -> None:
