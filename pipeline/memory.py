@@ -17,10 +17,12 @@ if TYPE_CHECKING:
     from pipeline.staging.spec import Study
 
 DEFAULT_BUDGET = 2 * 2**30
-# bytes held per respondent and answer column of a batch while it is estimated: the value (8),
-# its integer codes, the combination and pair codes of the grouped pass and one float64 working
-# copy (8 each); a planning figure measured with bench/bench_study_run.py, not a bound
-BYTES_PER_VALUE = 40
+# bytes held per respondent and answer column of a batch while it is estimated: the value (8) and
+# its integer codes (8); the grouped pass's other arrays (group and combination codes, weights,
+# bincount scratch) are per set of columns, not per column, and come off the budget once as
+# BATCH_OVERHEAD per respondent. Planning figures checked with bench/bench_study_run.py, not bounds.
+BYTES_PER_VALUE = 16
+BATCH_OVERHEAD = 96
 _UNITS = {"": 1, "B": 1, "K": 2**10, "KB": 2**10, "M": 2**20, "MB": 2**20, "G": 2**30, "GB": 2**30}
 
 
@@ -38,10 +40,10 @@ def variable_batches(study: Study, rows: int, budget: int, *, held_columns: int 
     A variable costs rows x BYTES_PER_VALUE per column it reads (its items for a multiple-response
     set) plus one for each derived statistic column (mean and median of a numeric or rating
     variable); `held_columns` (the weighting columns, held for the whole wave) come off the
-    budget first. Every batch holds at least one variable.
+    budget first, then BATCH_OVERHEAD bytes per respondent. Every batch holds at least one variable.
     """
     per_column = max(rows, 1) * BYTES_PER_VALUE
-    room = max(budget - held_columns * max(rows, 1) * 8, per_column)
+    room = max(budget - (held_columns * 8 + BATCH_OVERHEAD) * max(rows, 1), per_column)
     batches: list[list[str]] = []
     used = 0
     for name, variable in study.variables.items():

@@ -147,7 +147,10 @@ def _wave_frame(
             meaning[column] = (name, order, kind)
             bases[column] = base
             if y is None:
-                derived.append(pl.when(base).then(pl.col(name).cast(pl.Float64)).otherwise(None).alias(column))
+                # the answer itself outside-base nulled, in its own type: whole-number codes stay
+                # integers, which the grouped pass codes by arithmetic (no sort); the estimators
+                # cast to float64 themselves
+                derived.append(pl.when(base).then(pl.col(name)).otherwise(None).alias(column))
                 (medians if kind == "median" else means).append(column)
             else:
                 shares.append(MeanOf(column, y, base, base_name, indicator=True))
