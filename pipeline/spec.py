@@ -216,6 +216,16 @@ def load_spec(path: str | Path) -> Study:
             f"cannot read the study spec {spec_path}",
             [Problem("missing-file", f"the spec file {spec_path} does not exist", file=str(spec_path))],
         ) from None
+    except IsADirectoryError:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("not-a-file", "this is a folder; name the study's .toml file", file=str(spec_path))],
+        ) from None
+    except OSError as exc:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("unreadable-file", f"{exc.strerror or exc}", file=str(spec_path))],
+        ) from None
     except UnicodeDecodeError as exc:
         raise SpecError(
             f"cannot read the study spec {spec_path}",
