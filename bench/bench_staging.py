@@ -100,8 +100,8 @@ def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
 
 def _measure(task: str, wave: str, spec_path: str, results: multiprocessing.Queue) -> None:
     """Child process: run one task on one wave, report (seconds, peak RSS in MiB, detail)."""
-    from pipeline.spec import load_spec
-    from pipeline.stage import check_wave, stage_wave
+    from pipeline.staging.spec import load_spec
+    from pipeline.staging.stage import check_wave, stage_wave
 
     study = load_spec(spec_path)
     start = time.perf_counter()

@@ -30,7 +30,7 @@ from pipeline import __version__
 from pipeline.errors import WavebookError
 from pipeline.outputs import write_text_output
 from pipeline.resources import resource_dir
-from pipeline.spec import Design, Study, Variable, Wave
+from pipeline.staging.spec import Design, Study, Variable, Wave
 
 # Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
 LOW_BASE = 50

@@ -15,7 +15,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Study
+from pipeline.staging.spec import Study
 from pipeline.weighting import WeightingReport
 from pipeline.weighting.targets import split_category, split_margin
 

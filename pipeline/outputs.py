@@ -30,7 +30,7 @@ from typing import TYPE_CHECKING
 from pipeline.errors import Problem, WavebookError
 
 if TYPE_CHECKING:
-    from pipeline.spec import Study
+    from pipeline.staging.spec import Study
 
 MARKER = ".wavebook-outputs"
 

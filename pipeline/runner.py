@@ -22,12 +22,12 @@ import polars as pl
 from pipeline import progress
 from pipeline.book import render_book
 from pipeline.book_weighting import variance_lines, weighting_section
-from pipeline.database import load_responses, open_database, staged_waves
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.outputs import check_output, file_sha256, study_inputs
-from pipeline.spec import Study, load_spec
-from pipeline.stage import stage_wave
+from pipeline.staging.database import load_responses, open_database, staged_waves
+from pipeline.staging.spec import Study, load_spec
+from pipeline.staging.stage import stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport

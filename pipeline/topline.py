@@ -37,8 +37,8 @@ from dataclasses import dataclass
 import duckdb
 import polars as pl
 
-from pipeline.spec import Code, Study, Variable
 from pipeline.sqlfiles import sql
+from pipeline.staging.spec import Code, Study, Variable
 
 CELL_SCHEMA: dict[str, pl.DataType] = {
     "wave": pl.String(),

@@ -34,7 +34,7 @@ import polars as pl
 from pipeline.estimation import estimate_table
 from pipeline.estimation.intervals import korn_graubard_interval
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Study, Variable
+from pipeline.staging.spec import Study, Variable
 from pipeline.weighting import FittedRecipe
 
 ESTIMATE_SCHEMA: dict[str, pl.DataType] = {

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.spec import Study, load_spec
+from pipeline.staging.spec import Study, load_spec
 
 REFERENCE_DIR = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
 

@@ -25,7 +25,7 @@ from pipeline import book as book_module
 from pipeline import outputs as outputs_module
 from pipeline.book import LOW_BASE, VERY_LOW_BASE, build_context, render_book
 from pipeline.errors import WavebookError
-from pipeline.spec import Design, Study, Variable, Wave
+from pipeline.staging.spec import Design, Study, Variable, Wave
 from pipeline.topline import CELL_SCHEMA, unweighted_toplines
 
 SCRIPT_LABEL = "Preferred <script>alert('x')</script> kettle"

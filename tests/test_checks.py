@@ -8,10 +8,10 @@ from pathlib import Path
 import pytest
 
 from conftest import TRACKER_COLUMNS, TRACKER_SPEC, Tracker, tracker_rows
-from pipeline.checks import DRIFT_CODE_MIN_SHARE, DRIFT_SHARE_THRESHOLD, MAX_PROBLEMS_PER_COLUMN
 from pipeline.cli import main
 from pipeline.errors import Problem
-from pipeline.stage import check_wave, stage_wave
+from pipeline.staging.checks import DRIFT_CODE_MIN_SHARE, DRIFT_SHARE_THRESHOLD, MAX_PROBLEMS_PER_COLUMN
+from pipeline.staging.stage import check_wave, stage_wave
 
 
 def check_rows(tracker: Tracker, rows: list[dict[str, str]], columns: list[str] | None = None) -> list[Problem]:

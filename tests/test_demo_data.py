@@ -131,7 +131,7 @@ def test_systematic_pps_draws_distinct_areas(sizes: list[int], fraction: float, 
 
 def test_spec_loads_with_the_project_loader() -> None:
     """The demo spec passes the project's own spec validation."""
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
 
     study = load_spec(DEMO / "study.toml")
     assert [w.id for w in study.waves] == ["W1", "W2", "W3"]

@@ -13,10 +13,10 @@ from hypothesis import strategies as st
 
 from conftest import tracker_rows, write_csv
 from pipeline.cli import main
-from pipeline.draft import draft_spec
 from pipeline.errors import DataError
-from pipeline.spec import load_spec
-from pipeline.stage import check_wave
+from pipeline.staging.draft import draft_spec
+from pipeline.staging.spec import load_spec
+from pipeline.staging.stage import check_wave
 
 
 def draft_and_load(data: Path, **options: object):

@@ -133,7 +133,7 @@ def test_spec_second_stage_fraction_is_read_and_checked(tmp_path: Path) -> None:
     from conftest import TRACKER_SPEC
 
     from pipeline.errors import SpecError
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
 
     design = 'population = { 1 = 220, 2 = 180 }\n'
     good = tmp_path / "good.toml"

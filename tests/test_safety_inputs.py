@@ -54,8 +54,8 @@ def test_database_naming_the_spec_is_refused(tracker: Tracker, capsys: pytest.Ca
 
 @pytest.mark.parametrize("name", ["wave[1].csv", "wave*.csv", "wave?.csv"])
 def test_wave_file_names_are_literal_never_patterns(tracker: Tracker, name: str) -> None:
-    from pipeline.database import open_database
-    from pipeline.stage import stage_wave
+    from pipeline.staging.database import open_database
+    from pipeline.staging.stage import stage_wave
 
     tracker.write_wave(name, tracker_rows(5, prefix="literal"))  # beside wave1.csv and wave2.csv (12 rows each)
     tracker.write_spec(TRACKER_SPEC.replace('file = "waves/wave1.csv"', f'file = "waves/{name}"'))

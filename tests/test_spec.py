@@ -9,7 +9,7 @@ import pytest
 
 from conftest import TRACKER_SPEC
 from pipeline.errors import Problem, SpecError
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 
 
 def problems_of(tmp_path: Path, text: str) -> list[Problem]:

@@ -13,13 +13,13 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from polars.testing import assert_frame_equal
 
-import pipeline.stage
-from pipeline.spec import load_spec
+import pipeline.staging.stage
+from pipeline.staging.spec import load_spec
 from conftest import TRACKER_SPEC, Tracker, tracker_rows
 from pipeline.cli import main
-from pipeline.database import load_responses, open_database
 from pipeline.errors import DataError
-from pipeline.stage import stage_wave
+from pipeline.staging.database import load_responses, open_database
+from pipeline.staging.stage import stage_wave
 
 
 def snapshot(tracker: Tracker) -> dict[str, list[tuple]]:
@@ -137,13 +137,13 @@ def test_exception_mid_insert_rolls_everything_back(tracker: Tracker, monkeypatc
     study = tracker.study()
     stage_wave(study, "W1", quiet=True)
     before = snapshot(tracker)
-    original = pipeline.stage._insert_rows
+    original = pipeline.staging.stage._insert_rows
 
     def insert_then_fail(*args: object, **kwargs: object) -> None:
         original(*args, **kwargs)  # the old rows are deleted and the new ones inserted by now
         raise RuntimeError("disk full (simulated)")
 
-    monkeypatch.setattr(pipeline.stage, "_insert_rows", insert_then_fail)
+    monkeypatch.setattr(pipeline.staging.stage, "_insert_rows", insert_then_fail)
     tracker.write_wave("wave1.csv", tracker_rows(5, prefix="z"))
     with pytest.raises(RuntimeError, match="simulated"):
         stage_wave(study, "W1", quiet=True)

@@ -6,9 +6,9 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.database import load_responses, open_database
 from pipeline.estimation.options import VarianceOptions, parse_variance
-from pipeline.stage import stage_wave
+from pipeline.staging.database import load_responses, open_database
+from pipeline.staging.stage import stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import wave_estimates
 from pipeline.weighting import fit_recipe, parse_steps
@@ -150,7 +150,7 @@ def test_percentages_of_a_raking_margin_are_flagged_as_set_by_weighting(wave):
     """Raking to region shares makes the region percentages equal their targets exactly (the
     calibration equations), so they carry no sampling error; other variables keep theirs."""
     study, responses, layout, _ = wave
-    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study)
+    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study.step_context())
     base, _ = design_base_weights(responses, study)
     recipe = fit_recipe(responses, steps, base_weights=base)
     est = wave_estimates(responses, study, recipe, layout, VarianceOptions(), wave="W1")
@@ -172,7 +172,7 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     from pipeline.weighting.store import build_report
 
     study, responses, layout, _ = wave
-    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study)
+    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study.step_context())
     base, _ = design_base_weights(responses, study)
     recipe = fit_recipe(responses, steps, base_weights=base)
     report = build_report(recipe, wave="W1", n_input=responses.height)

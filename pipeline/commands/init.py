@@ -20,9 +20,9 @@ def run(args: argparse.Namespace) -> int:
     """Write the draft spec to --out (temp file, then rename); refuse to overwrite without --force."""
     from pathlib import Path
 
-    from pipeline.draft import draft_spec
     from pipeline.outputs import Input, check_output, write_text_output
     from pipeline.progress import step
+    from pipeline.staging.draft import draft_spec
 
     out = check_output(args.out, [Input(Path(args.data), "the wave file being profiled")], force=args.force, option="--out")
     with step(f"profiling {Path(args.data).name}", quiet=args.quiet):

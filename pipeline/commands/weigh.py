@@ -21,11 +21,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     """Weigh each selected wave (each stored in its own transaction), print its diagnostics, export if asked."""
     from pipeline.commands.stage import selected_waves
-    from pipeline.database import open_database, staged_waves
     from pipeline.errors import DataError, Problem
     from pipeline.outputs import check_output, study_inputs
+    from pipeline.staging.database import open_database, staged_waves
     from pipeline.progress import step
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
     from pipeline.weighting.store import export_weights, weigh_wave
 
     study = load_spec(args.spec)

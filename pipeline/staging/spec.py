@@ -16,9 +16,12 @@ import re
 import tomllib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 from pipeline.errors import Problem, SpecError
+
+if TYPE_CHECKING:
+    from pipeline.weighting.steps import StepContext
 
 Code = int | str
 VariableType = Literal["single", "multi", "numeric", "scale"]
@@ -144,6 +147,19 @@ class Study:
         """The study database file."""
         return self.database if self.database is not None else self.path.with_suffix(".duckdb")
 
+    def step_context(self) -> StepContext:
+        """What the `[[weighting]]` steps are checked against: plain facts, never the spec itself."""
+        from pipeline.weighting.steps import StepContext
+
+        coded = {name for name, v in self.variables.items() if v.type in ("single", "scale")}
+        return StepContext(
+            folder=self.path.parent,
+            source=str(self.path),
+            variable_types={name: v.type for name, v in self.variables.items()},
+            coded=frozenset(coded | ({self.design.strata} if self.design.strata else set())),
+            codes={name: tuple(str(c) for c in v.valid_codes) for name, v in self.variables.items() if v.valid_codes},
+        )
+
     def wave(self, wave_id: str) -> Wave:
         """The wave with id `wave_id` (KeyError naming the known ids otherwise)."""
         for w in self.waves:
@@ -262,7 +278,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
         problems += parse_variance(variance)[1]
     if study is not None:
         try:
-            parse_steps(study.weighting, study)
+            parse_steps(study.weighting, study.step_context())
         except SpecError as exc:
             problems += exc.problems
     return problems

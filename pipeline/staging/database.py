@@ -13,9 +13,9 @@ import duckdb
 import polars as pl
 
 from pipeline.errors import DataError, Problem
-from pipeline.readers import prepare_connection
-from pipeline.spec import Study
 from pipeline.sqlfiles import sql
+from pipeline.staging.readers import prepare_connection
+from pipeline.staging.spec import Study
 
 DESIGN_TEXT = "VARCHAR"
 

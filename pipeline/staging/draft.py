@@ -21,8 +21,8 @@ from pathlib import Path
 import duckdb
 
 from pipeline.errors import DataError, Problem
-from pipeline.readers import file_format, read_raw, read_sav
 from pipeline.sqlfiles import sql
+from pipeline.staging.readers import file_format, read_raw, read_sav
 
 MAX_SINGLE_CODES = 20  # a column with more distinct values is drafted as numeric (or left out if text)
 _RAW = "__wavebook_draft"

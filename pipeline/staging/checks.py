@@ -3,7 +3,7 @@
 Each rule is one query in `sql/check_*.sql` returning rows of (col, value, n, examples, detail);
 this module turns them into `Problem`s with readable messages. Errors stop staging; warnings are
 printed and recorded. Speed: the per-respondent work is a few grouped passes over the raw text
-table (see pipeline.readers). The coded columns are counted once per distinct value
+table (see pipeline.staging.readers). The coded columns are counted once per distinct value
 (`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items, integer codes) and the
 drift rules then work on that small table, and example ids are looked up in one more pass
 (`check_examples.sql`) only when a rule found something. Numeric and design columns are checked
@@ -25,10 +25,10 @@ from dataclasses import dataclass, replace
 import duckdb
 import polars as pl
 
-from pipeline.database import table_columns
 from pipeline.errors import Problem
-from pipeline.spec import Study, Variable
 from pipeline.sqlfiles import sql
+from pipeline.staging.database import table_columns
+from pipeline.staging.spec import Study, Variable
 
 # A category's unweighted share of the answers moving by more than this between the latest
 # earlier wave and this one is reported (share-shift warning). 15 percentage points: common
