@@ -85,12 +85,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     one line naming the exception type, the traceback only with --debug (exit 3). Usage errors
     found by argparse exit 2 through SystemExit.
     """
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    from pipeline.errors import WavebookError
-
     try:
-        return int(args._run(args) or 0)
+        return _run(argv)
     except KeyboardInterrupt:
         print(
             "interrupted; nothing was half-written (every wave and every file is written all-or-nothing; "
@@ -98,6 +94,16 @@ def main(argv: Sequence[str] | None = None) -> int:
             file=sys.stderr,
         )
         return EXIT_INTERRUPTED
+
+
+def _run(argv: Sequence[str] | None) -> int:
+    """Parse the arguments and run the command; every error but Ctrl-C becomes its exit code here."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    from pipeline.errors import WavebookError
+
+    try:
+        return int(args._run(args) or 0)
     except WavebookError as exc:
         print(exc.render(), file=sys.stderr)
         return exc.exit_code
@@ -114,7 +120,6 @@ def main(argv: Sequence[str] | None = None) -> int:
         if getattr(args, "debug", False):
             traceback.print_exc()
         return EXIT_BUG
-
 
 def _first_line(exc: BaseException) -> str:
     text = str(exc).strip()

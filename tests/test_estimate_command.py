@@ -133,7 +133,7 @@ def test_bad_input_exits_1_with_every_problem(tmp_path: Path, capsys: pytest.Cap
                             "--psu-ids", "unique"], capsys)
     assert code == 1 and "psu-in-several-strata" in err and "nested" in err
     code, _, err = run_cli([str(path), "--weight", "wt", "--quantile", "spend", "half", "--level", "95"], capsys)
-    assert code == 1 and "not a number" in err and "--level" in err
+    assert code == 2 and "not a number" in err and "--level" in err  # option values: a usage error
 
 
 def test_command_module_imports_no_heavy_library() -> None:

@@ -78,7 +78,7 @@ def run(args: argparse.Namespace) -> int:
     import json
     from pathlib import Path
 
-    from pipeline.errors import Problem, SpecError
+    from pipeline.errors import Problem, UsageError
     from pipeline.estimation.api import estimate
     from pipeline.estimation.result import COLUMNS
     from pipeline.progress import step
@@ -94,7 +94,7 @@ def run(args: argparse.Namespace) -> int:
     if not 0.0 < args.level < 1.0:
         problems.append(Problem(rule="bad-option", message="--level must be between 0 and 1", value=str(args.level)))
     if problems:
-        raise SpecError("the estimate options are invalid", problems)
+        raise UsageError("the estimate options are invalid", problems)
     path = Path(args.data)
     with step(f"reading {path.name}", quiet=args.quiet):
         frame = _read(path)

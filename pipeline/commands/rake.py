@@ -51,7 +51,7 @@ def run(args: argparse.Namespace) -> int:
     import numpy as np
     import polars as pl
 
-    from pipeline.errors import DataError, Problem, SpecError
+    from pipeline.errors import DataError, Problem, SpecError, UsageError
     from pipeline.outputs import Input, check_output
     from pipeline.weighting.recipe import fit_recipe
     from pipeline.weighting.steps import RakeStep, TrimStep
@@ -65,7 +65,7 @@ def run(args: argparse.Namespace) -> int:
         ("--max-iterations", args.max_iterations, args.max_iterations >= 1, "at least 1"),
     ) if not ok]
     if bad:
-        raise SpecError("invalid options", bad)
+        raise UsageError("invalid options", bad)
     inputs = [Input(Path(args.data), "DATA"), Input(Path(args.targets), "the --targets file")]
     out = check_output(args.out, inputs, force=args.force, option="--out") if args.out else None
     data = read_data(args.data)
