@@ -55,6 +55,8 @@ class Design:
     second_stage_fraction: with PSUs and a finite population correction, the share of each selected
     PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
     taken), for the within-PSU term of the two-stage variance (pipeline.estimation.design).
+    extreme_weight_ratio: staging warns (extreme-weight, naming the ids) about a design weight above
+    this multiple of the wave's median weight (default 1,000: common practice, no source).
     """
 
     kind: Literal["probability", "nonprobability"] = "probability"
@@ -68,6 +70,7 @@ class Design:
     single_psu: Literal["error", "certainty", "centre", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
+    extreme_weight_ratio: float = 1000.0
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -186,6 +189,7 @@ _DESIGN_KEYS = (
     "single_psu",
     "collapse_with",
     "second_stage_fraction",
+    "extreme_weight_ratio",
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
     "single": ("label", "type", "values", "nets"),
@@ -614,6 +618,10 @@ class _Checker:
             self.add("conflicting-keys", "design.second_stage_fraction",
                      "second_stage_fraction only applies with design.psu and a finite population correction "
                      "(population or sampling_fraction)")
+        ratio = self.typed(raw, "design", "extreme_weight_ratio", float)
+        if ratio is not None and not ratio > 1:
+            self.add("bad-value", "design.extreme_weight_ratio", f"must be above 1, not {ratio}", value=ratio)
+            ratio = None
         return Design(
             kind=kind,  # type: ignore[arg-type]
             strata=strata,
@@ -626,6 +634,7 @@ class _Checker:
             single_psu=single_psu,  # type: ignore[arg-type]
             collapse_with=collapse,
             second_stage_fraction=float(second) if second is not None else 0.0,
+            extreme_weight_ratio=float(ratio) if ratio is not None else 1000.0,
         )
 
     def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:
