@@ -41,7 +41,9 @@ class Problem:
             text += f" ({where})"
         if self.count is not None:
             text += f"; {self.count} row{'s' if self.count != 1 else ''}"
-        if self.examples:
+        if self.examples and all(e.startswith("row ") for e in self.examples):
+            text += "; e.g. rows " + ", ".join(e.removeprefix("row ") for e in self.examples[:5])
+        elif self.examples:
             text += "; e.g. ids " + ", ".join(self.examples[:5])
         return text
 

@@ -38,7 +38,9 @@ def read_data(path: str) -> object:
         raise FileNotFoundError(f"no data file at {file}")
     suffix = file.suffix.lower()
     if suffix == ".csv":
-        return pl.read_csv(file, infer_schema=False)
+        from pipeline.staging.readers import checked_csv_header
+
+        return pl.read_csv(file, infer_schema=False, new_columns=checked_csv_header(file))
     if suffix == ".parquet":
         return pl.read_parquet(file)
     raise WavebookError(f"cannot read {file}: DATA must be a .csv or .parquet file")
@@ -82,7 +84,7 @@ def run(args: argparse.Namespace) -> int:
                         [Problem("missing-column", "no such column in the data", file=args.data, column=c) for c in missing])
     if "weight" in data.columns:
         raise DataError(f"{args.data} already has a column 'weight'; rename it before raking")
-    rows = data.with_columns(pl.int_range(1, data.height + 1).cast(pl.String).alias(ROW))
+    rows = data.with_columns(pl.format("row {}", pl.int_range(1, data.height + 1)).alias(ROW))  # messages name rows
     base = weights_array(data, args.weight) if args.weight else np.ones(data.height)
     steps: list = [RakeStep(0, margins, targets, tolerance=args.tolerance, max_iterations=args.max_iterations)]
     if args.trim_max is not None or args.trim_min is not None:

@@ -108,6 +108,26 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
     return [c["name"] for c in columns]
 
 
+def checked_csv_header(path: Path) -> list[str]:
+    """The column names of a CSV file after one strict reading pass over the whole file (DuckDB,
+    nothing kept): DataError listing every ragged row, non-UTF-8 line, duplicate name, or an empty
+    file. For readers that are not strict themselves (polars pads short rows); polars also keeps
+    a doubled quote in a quoted header name, so callers use these names."""
+    header = csv_header(path)
+    con = duckdb.connect()
+    try:
+        con.execute(sql("load_csv_check.sql"), {"path": literal_path(path), "columns": dict.fromkeys(header, "VARCHAR")})
+    except duckdb.Error as exc:
+        problems = csv_problems(path, len(header))
+        raise DataError(
+            f"cannot read {path}",
+            problems or [Problem("unreadable-file", f"the csv file cannot be read: {_reader_message(exc)}", file=str(path))],
+        ) from None
+    finally:
+        con.close()
+    return header
+
+
 def csv_header(path: Path) -> list[str]:
     """The column names of a CSV file's header line; DataError for an empty file, a header that is
     not UTF-8, or a name given twice (rule duplicate-column, naming its positions)."""
