@@ -66,3 +66,30 @@ def test_weighting_steps_are_numbered_from_one(tracker: Tracker, capsys: pytest.
     code, _, err = wavebook(["check", str(tracker.spec_path)], capsys)
     assert code == 1
     assert "weighting step 2, upper" in err and "weighting[1]" not in err
+
+
+def _rake_study(tracker: Tracker, targets: str) -> None:
+    tracker.write_spec(TRACKER_SPEC + '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band", "channel"]\ntargets = "targets.csv"\n')
+    (tracker.folder / "targets.csv").write_text(targets, encoding="utf-8")
+
+
+def test_check_finds_a_misspelled_margin_in_the_targets_file(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    _rake_study(tracker, AGE_TARGETS.replace("age_band", "age_bnd") + "channel,shop,0.5\nchannel,web,0.5\n")
+    code, _, err = wavebook(["check", str(tracker.spec_path)], capsys)
+    assert code == 1
+    assert "'age_bnd' is not a codebook variable; did you mean 'age_band'?" in err
+
+
+def test_check_rehearses_the_weighting_run_would_do(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    """A target category the data and codebook lack ('phone') only shows once the data is read:
+    `check` fits the weighting in memory as `run` does, and fails where `run` would."""
+    _rake_study(tracker, AGE_TARGETS + "channel,shop,0.5\nchannel,web,0.3\nchannel,phone,0.2\n")
+    before = fingerprint(tracker.folder)
+    code, out, _ = wavebook(["check", str(tracker.spec_path)], capsys)
+    assert code == 1
+    assert "[target-unknown-category]" in out and "'phone'" in out
+    assert fingerprint(tracker.folder) == before  # check writes nothing
+    code_run, _, err_run = wavebook(["run", str(tracker.spec_path), "--quiet"], capsys)
+    assert code_run == 1 and "[target-unknown-category]" in err_run
+    _rake_study(tracker, AGE_TARGETS + "channel,shop,0.5\nchannel,web,0.5\n")
+    assert wavebook(["check", str(tracker.spec_path)], capsys)[0] == 0

@@ -214,6 +214,22 @@ def _margins(r: _Reader, key: str, known: set[str], *, required: bool) -> tuple[
     return margins
 
 
+def _unknown_target_variables(r: _Reader, targets: TargetTable, variables: set[str]) -> None:
+    """A margin of the targets naming a variable the codebook lacks (a misspelling, say) is an
+    error here, before any data is read, with the closest codebook names as a hint."""
+    import difflib
+
+    if not variables:  # no codebook to compare with
+        return
+    key = "targets" if "targets" in r.raw else "totals"
+    for margin in targets.margins:
+        for name in split_margin(margin):
+            if name not in variables:
+                close = difflib.get_close_matches(name, sorted(variables), n=2)
+                hint = f"; did you mean {' or '.join(repr(c) for c in close)}?" if close else ""
+                r.bad(key, f"the targets name margin '{margin}', but '{name}' is not a codebook variable{hint}")
+
+
 def _targets(r: _Reader, folder: Path) -> TargetTable:
     has_file, has_inline = "targets" in r.raw, "totals" in r.raw
     if has_file == has_inline:
@@ -295,6 +311,7 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
         return TrimStep(i, upper, lower, relative_to, r.integer("max_rounds", 100))
     collapse = _collapse(r, known)
     targets = _targets(r, folder)
+    _unknown_target_variables(r, targets, set(context.variable_types))
     total = r.number("total", None)
     if kind == "poststratify":
         if "cells" not in raw:
