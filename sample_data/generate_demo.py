@@ -50,8 +50,8 @@ from memory). The small regions Quillby Coast and Veskar Vale get about twice th
 the areas (a boost for regional reporting); Harrowmere, Fennick Lowlands and Oradel get fewer
 than their share: see `REGIONS` and area_frame.csv.
 
-`area` is the area number WITHIN its region (1..N_h): PSU ids are NESTED in strata
-(`psu_ids = "nested"` in study.toml). `p_select` is the selection probability of the issued
+`area` is the area number WITHIN its region (1..N_h): PSU ids restart WITHIN each stratum
+(`psu_ids = "within-stratum"` in study.toml). `p_select` is the selection probability of the issued
 adult. Design weights 1 / p_select of the issued sample add up to the region's adults exactly.
 
 Nonresponse: an issued adult completes with a probability that rises with age and education and
@@ -71,8 +71,9 @@ Files written
 - population_truth.csv: `wave,measure,variable,category,value,base`: the population's true
   value of each main measure in each wave (measure "proportion" or "mean"; `base` names who it is
   computed over). Proportions of `aware` are per item (category = the item column).
-- area_frame.csv: per region, its label, the areas and adults in the population (the FPC uses the
-  areas), and the areas selected per wave.
+- area_frame.csv: per region, its label, the areas and adults in the population, and the areas
+  selected per wave (areas are drawn with probability proportional to adults: the spec's
+  `first_stage = "pps"`).
 - area_sizes.csv: every area of the frame: region, area, urban_rural, adults.
 """
 

@@ -2,7 +2,8 @@
 
 `load_spec(path)` reads and validates the file and returns a `Study`. Validation collects every
 problem (unknown keys, wrong types, references to undeclared variables) into one `SpecError`,
-each problem naming the key (e.g. `variables.satisfaction.exclude_from_mean`).
+each problem naming the key (e.g. `variables.satisfaction.exclude_from_statistics`). A key or value
+with a retired name is refused naming its replacement (`pipeline.renamed`).
 
 This module defines the objects every later stage reads; sections owned by later stages
 (`[[weighting]]`, `[variance]`) are parsed by those stages' own modules and kept here as raw
@@ -19,12 +20,13 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Literal
 
 from pipeline.errors import Problem, SpecError
+from pipeline.renamed import renamed_key, renamed_value
 
 if TYPE_CHECKING:
     from pipeline.weighting.steps import StepContext
 
 Code = int | str
-VariableType = Literal["single", "multi", "numeric", "scale"]
+VariableType = Literal["single", "multi", "numeric", "rating"]
 
 
 @dataclass(frozen=True)
@@ -45,16 +47,20 @@ class Design:
     kind: "probability" (strata/PSU/weights known) or "nonprobability" (quota or online panel:
     equal base weights; the book carries the non-probability caution).
     strata, psu: column names (None = unstratified / each respondent is its own PSU).
-    psu_ids: "nested" (PSU ids restart within each stratum) or "unique" (unique across strata).
+    psu_ids: "within-stratum" (PSU ids restart within each stratum) or "unique" (unique across strata).
     base_weight / selection_probability: at most one column name; base weight = 1 / probability.
     population: first-stage population size per stratum code (PSUs in the stratum; respondents
     in a single-stage design), for the finite population correction.
     sampling_fraction: alternatively, the first-stage sampling fraction per stratum code.
-    single_psu: policy for strata with one PSU: "error", "certainty", "centre" or "collapse".
+    single_psu: policy for strata with one PSU: "error", "certainty", "grand-mean" or "collapse".
     collapse_with: for "collapse", stratum code -> partner stratum code.
     second_stage_fraction: with PSUs and a finite population correction, the share of each selected
     PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
     taken), for the within-PSU term of the two-stage variance (pipeline.estimation.design).
+    first_stage: "equal" (PSUs drawn with equal probability within stratum, default) or "pps"
+    (probability proportional to size: no finite population correction, with-replacement variance,
+    unless psu_inclusion_probability names a column of each PSU's first-stage inclusion
+    probability, which gives the (1 - pi) approximation of pipeline.estimation.design).
     extreme_weight_ratio: staging warns (extreme-weight, naming the ids) about a design weight above
     this multiple of the wave's median weight (default 1,000: common practice, no source).
     """
@@ -62,21 +68,26 @@ class Design:
     kind: Literal["probability", "nonprobability"] = "probability"
     strata: str | None = None
     psu: str | None = None
-    psu_ids: Literal["nested", "unique"] = "nested"
+    psu_ids: Literal["within-stratum", "unique"] = "within-stratum"
     base_weight: str | None = None
     selection_probability: str | None = None
     population: dict[Code, float] = field(default_factory=dict)
     sampling_fraction: dict[Code, float] = field(default_factory=dict)
-    single_psu: Literal["error", "certainty", "centre", "collapse"] = "error"
+    single_psu: Literal["error", "certainty", "grand-mean", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
+    first_stage: Literal["equal", "pps"] = "equal"
+    psu_inclusion_probability: str | None = None
     extreme_weight_ratio: float = 1000.0
 
     @property
     def columns(self) -> tuple[str, ...]:
         """The data columns the design reads."""
         return tuple(
-            c for c in (self.strata, self.psu, self.base_weight, self.selection_probability) if c is not None
+            c
+            for c in (self.strata, self.psu, self.base_weight, self.selection_probability,
+                      self.psu_inclusion_probability)
+            if c is not None
         )
 
 
@@ -88,9 +99,10 @@ class Variable:
     type "multi": a multiple-response set; `items` maps each item column to its label, an item
     column holds 1 (selected) or 0 (not selected); missing means not asked.
     type "numeric": a number; optional `minimum` / `maximum` bounds are checked at staging.
-    type "scale": a rating scale; `values` labels the codes, `exclude_from_mean` lists codes such
-    as "don't know" that are shown in distributions but excluded from means.
-    nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "scale".
+    type "rating": a rating scale; `values` labels the codes, `exclude_from_statistics` lists codes
+    such as "don't know" that are shown in distributions but left out of the mean, median, minimum,
+    maximum and number of answers.
+    nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "rating".
     """
 
     name: str
@@ -99,7 +111,7 @@ class Variable:
     values: dict[Code, str] = field(default_factory=dict)
     items: dict[str, str] = field(default_factory=dict)
     nets: dict[str, tuple[Code, ...]] = field(default_factory=dict)
-    exclude_from_mean: tuple[Code, ...] = ()
+    exclude_from_statistics: tuple[Code, ...] = ()
     minimum: float | None = None
     maximum: float | None = None
 
@@ -110,22 +122,22 @@ class Variable:
 
     @property
     def int_coded(self) -> bool:
-        """Whether the codes are integers (every key of `values` an integer literal; always for a scale)."""
-        return self.type in ("single", "scale") and all(isinstance(c, int) for c in self.values)
+        """Whether the codes are integers (every key of `values` an integer literal; always for a rating)."""
+        return self.type in ("single", "rating") and all(isinstance(c, int) for c in self.values)
 
     @property
     def valid_codes(self) -> tuple[Code, ...]:
         """The codes a response may hold, in order.
 
-        single: the labelled codes. scale: the labelled codes plus every integer between the
-        lowest and the highest labelled code that is not excluded from the mean (so 1..9 need
-        no label on a 0-10 scale). Other types have no codes.
+        single: the labelled codes. rating: the labelled codes plus every integer between the
+        lowest and the highest labelled code that is not excluded from the statistics (so 1..9
+        need no label on a 0-10 scale). Other types have no codes.
         """
         if self.type == "single":
             return tuple(self.values)
-        if self.type != "scale" or not self.values:
+        if self.type != "rating" or not self.values:
             return ()
-        on_scale = [c for c in self.values if c not in self.exclude_from_mean]
+        on_scale = [c for c in self.values if c not in self.exclude_from_statistics]
         filled = set(range(min(on_scale), max(on_scale) + 1)) if on_scale else set()
         return tuple(sorted(filled | set(self.values)))
 
@@ -154,7 +166,7 @@ class Study:
         """What the `[[weighting]]` steps are checked against: plain facts, never the spec itself."""
         from pipeline.weighting.steps import StepContext
 
-        coded = {name for name, v in self.variables.items() if v.type in ("single", "scale")}
+        coded = {name for name, v in self.variables.items() if v.type in ("single", "rating")}
         return StepContext(
             folder=self.path.parent,
             source=str(self.path),
@@ -189,18 +201,20 @@ _DESIGN_KEYS = (
     "single_psu",
     "collapse_with",
     "second_stage_fraction",
+    "first_stage",
+    "psu_inclusion_probability",
     "extreme_weight_ratio",
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
     "single": ("label", "type", "values", "nets"),
-    "scale": ("label", "type", "values", "exclude_from_mean", "nets"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "nets"),
     "multi": ("label", "type", "items"),
     "numeric": ("label", "type", "minimum", "maximum"),
 }
 _ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
 _VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "single": ("label", "values"),
-    "scale": ("label", "values"),
+    "rating": ("label", "values"),
     "multi": ("label", "items"),
     "numeric": ("label",),
 }
@@ -221,8 +235,9 @@ def load_spec(path: str | Path) -> Study:
     """Read and validate a study spec (TOML); return the `Study`.
 
     Every problem is collected and raised together as one `SpecError`; each `Problem` names the
-    dotted key (`variables.satisfaction.exclude_from_mean`) and has one of the rules
-    toml-syntax, missing-file, unknown-key, missing-key, wrong-type, bad-value, key-not-for-type,
+    dotted key (`variables.satisfaction.exclude_from_statistics`) and has one of the rules
+    toml-syntax, missing-file, unknown-key, missing-key, wrong-type, bad-value, renamed-key,
+    renamed-value, key-not-for-type,
     conflicting-keys, undeclared-code, duplicate-column, reserved-name. Wave files are resolved
     against the spec's folder but not opened (staging checks them). The insides of `[variance]`
     and `[[weighting]]` are validated by their own modules (`pipeline.estimation.options.
@@ -351,6 +366,10 @@ class _Checker:
         value = self.typed(table, key, name, str)
         if value is None:
             return default
+        renamed = renamed_value(f"{key}.{name}", value, file=self.file)
+        if renamed is not None:
+            self.problems.append(renamed)
+            return default
         if value not in options:
             self.add("bad-value", f"{key}.{name}", f"'{value}' is not one of: {', '.join(options)}", value=value)
             return default
@@ -458,13 +477,20 @@ class _Checker:
         return out
 
     def variable(self, name: str, table: dict, key: str) -> Variable | None:
+        retired = [p for k in table if (p := renamed_key(key, k, file=self.file)) is not None]
+        self.problems += retired
+        if retired:
+            table = {k: v for k, v in table.items() if renamed_key(key, k) is None}
         vtype = self.typed(table, key, "type", str)
         if "type" not in table:
-            self.add("missing-key", f"{key}.type", "required key 'type' is missing (single, multi, scale or numeric)")
+            self.add("missing-key", f"{key}.type", "required key 'type' is missing (single, multi, rating or numeric)")
             return None
         if vtype not in _VARIABLE_KEYS:
-            if vtype is not None:
-                self.add("bad-value", f"{key}.type", f"'{vtype}' is not one of: single, multi, scale, numeric", value=vtype)
+            renamed = renamed_value(f"{key}.type", vtype, file=self.file)
+            if renamed is not None:
+                self.problems.append(renamed)
+            elif vtype is not None:
+                self.add("bad-value", f"{key}.type", f"'{vtype}' is not one of: single, multi, rating, numeric", value=vtype)
             return None
         allowed = _VARIABLE_KEYS[vtype]
         for k in table:
@@ -485,16 +511,18 @@ class _Checker:
             return None
         codes = _codes_from_keys(list(labels))
         values = dict(zip(codes, labels.values(), strict=True))
-        if vtype == "scale" and not all(isinstance(c, int) for c in codes):
-            self.add("wrong-type", f"{key}.values", "the codes of a scale must all be integers")
+        if vtype == "rating" and not all(isinstance(c, int) for c in codes):
+            self.add("wrong-type", f"{key}.values", "the codes of a rating must all be integers")
             return None
         base = Variable(name, vtype, label, values=values)  # type: ignore[arg-type]
         exclude: tuple[Code, ...] = ()
-        if vtype == "scale" and "exclude_from_mean" in table:
-            exclude = self.code_list(table["exclude_from_mean"], f"{key}.exclude_from_mean", base, tuple(values))
-        scaled = Variable(name, vtype, label, values=values, exclude_from_mean=exclude)  # type: ignore[arg-type]
-        nets = self.nets(table, key, scaled)
-        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_mean=exclude)  # type: ignore[arg-type]
+        if vtype == "rating" and "exclude_from_statistics" in table:
+            exclude = self.code_list(
+                table["exclude_from_statistics"], f"{key}.exclude_from_statistics", base, tuple(values)
+            )
+        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        nets = self.nets(table, key, rated)
+        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_statistics=exclude)  # type: ignore[arg-type]
 
     def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
         low = self.typed(table, key, "minimum", float)
@@ -578,10 +606,10 @@ class _Checker:
         kind = self.choice(raw, "design", "kind", ("probability", "nonprobability"), "probability")
         strata = self.typed(raw, "design", "strata", str)
         psu = self.typed(raw, "design", "psu", str)
-        psu_ids = self.choice(raw, "design", "psu_ids", ("nested", "unique"), "nested")
+        psu_ids = self.choice(raw, "design", "psu_ids", ("within-stratum", "unique"), "within-stratum")
         base_weight = self.typed(raw, "design", "base_weight", str)
         probability = self.typed(raw, "design", "selection_probability", str)
-        single_psu = self.choice(raw, "design", "single_psu", ("error", "certainty", "centre", "collapse"), "error")
+        single_psu = self.choice(raw, "design", "single_psu", ("error", "certainty", "grand-mean", "collapse"), "error")
         if base_weight is not None and probability is not None:
             self.add(
                 "conflicting-keys",
@@ -614,10 +642,19 @@ class _Checker:
         if second is not None and not 0 <= second <= 1:
             self.add("bad-value", "design.second_stage_fraction", f"must lie between 0 and 1, not {second}", value=second)
             second = None
-        if second is not None and (psu is None or not (population or fraction)):
+        first_stage = self.choice(raw, "design", "first_stage", ("equal", "pps"), "equal")
+        inclusion = self.typed(raw, "design", "psu_inclusion_probability", str)
+        if first_stage == "pps" and (population or fraction):
+            self.add("conflicting-keys", "design.population" if population else "design.sampling_fraction",
+                     "a size-proportional first stage (first_stage = \"pps\") takes no equal-probability correction "
+                     "1 - n_h/N_h: drop it (with-replacement variance) or give psu_inclusion_probability")
+        if inclusion is not None and (first_stage != "pps" or psu is None):
+            self.add("conflicting-keys", "design.psu_inclusion_probability",
+                     "psu_inclusion_probability applies to first_stage = \"pps\" with design.psu")
+        if second is not None and (psu is None or not (population or fraction or inclusion)):
             self.add("conflicting-keys", "design.second_stage_fraction",
                      "second_stage_fraction only applies with design.psu and a finite population correction "
-                     "(population or sampling_fraction)")
+                     "(population, sampling_fraction or psu_inclusion_probability)")
         ratio = self.typed(raw, "design", "extreme_weight_ratio", float)
         if ratio is not None and not ratio > 1:
             self.add("bad-value", "design.extreme_weight_ratio", f"must be above 1, not {ratio}", value=ratio)
@@ -634,6 +671,8 @@ class _Checker:
             single_psu=single_psu,  # type: ignore[arg-type]
             collapse_with=collapse,
             second_stage_fraction=float(second) if second is not None else 0.0,
+            first_stage=first_stage,  # type: ignore[arg-type]
+            psu_inclusion_probability=inclusion,
             extreme_weight_ratio=float(ratio) if ratio is not None else 1000.0,
         )
 
