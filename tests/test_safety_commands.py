@@ -93,3 +93,12 @@ def test_check_rehearses_the_weighting_run_would_do(tracker: Tracker, capsys: py
     assert code_run == 1 and "[target-unknown-category]" in err_run
     _rake_study(tracker, AGE_TARGETS + "channel,shop,0.5\nchannel,web,0.5\n")
     assert wavebook(["check", str(tracker.spec_path)], capsys)[0] == 0
+
+
+def test_check_finds_a_target_category_without_respondents(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    tracker.write_wave("wave1.csv", [r for r in tracker_rows(12, prefix="a") if r["age_band"] != "3"])
+    tracker.write_spec(TRACKER_SPEC + '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band"]\ntargets = "targets.csv"\n')
+    (tracker.folder / "targets.csv").write_text(AGE_TARGETS, encoding="utf-8")
+    code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
+    assert code == 1
+    assert "[target-empty-cell]" in out and "category '3' of margin 'age_band'" in out
