@@ -102,3 +102,37 @@ def test_check_finds_a_target_category_without_respondents(tracker: Tracker, cap
     code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
     assert code == 1
     assert "[target-empty-cell]" in out and "category '3' of margin 'age_band'" in out
+
+
+TRIM_CASES = {
+    "upper, mean": {"upper": 3.0},
+    "upper and lower, mean": {"upper": 3.0, "lower": 0.3},
+    "upper, median": {"upper": 3.0, "relative_to": "median"},
+    "upper, absolute": {"upper": 8.0, "relative_to": "absolute"},
+    "lower only": {"lower": 0.5},
+}
+
+
+@pytest.mark.parametrize("after_rake", [False, True], ids=["trim only", "rake then trim"])
+@pytest.mark.parametrize("bounds", list(TRIM_CASES.values()), ids=list(TRIM_CASES))
+def test_trim_counts_every_weight_at_a_bound(bounds: dict, after_rake: bool) -> None:
+    """The trim step's 'weights at a bound' equals the weights lying on a bound (within 1e-9 relative)."""
+    import numpy as np
+    import polars as pl
+
+    from pipeline.weighting.recipe import fit_recipe
+    from pipeline.weighting.steps import RakeStep, TrimStep
+    from pipeline.weighting.targets import TargetTable
+
+    rng = np.random.default_rng(20260301)
+    n = 500
+    data = pl.DataFrame({"id": [str(i) for i in range(n)], "g": rng.choice(["1", "2", "3"], n).tolist()})
+    base = rng.lognormal(0.0, 1.0, n)
+    targets = TargetTable({"g": {("1",): 0.3, ("2",): 0.3, ("3",): 0.4}}, source="test")
+    steps = [RakeStep(0, (("g",),), targets), TrimStep(1, **bounds)] if after_rake else [TrimStep(0, **bounds)]
+    recipe = fit_recipe(data, steps, base_weights=base, id_column="id")
+    (report,) = [r for r in recipe.reports if r.kind == "trim"]
+    lower, upper = report.bounds
+    w = recipe.weights
+    on_bound = np.isclose(w, upper, rtol=1e-9, atol=0) | np.isclose(w, lower, rtol=1e-9, atol=0)
+    assert report.trimmed == int(on_bound.sum()) > 0
