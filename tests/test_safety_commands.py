@@ -136,3 +136,17 @@ def test_trim_counts_every_weight_at_a_bound(bounds: dict, after_rake: bool) -> 
     w = recipe.weights
     on_bound = np.isclose(w, upper, rtol=1e-9, atol=0) | np.isclose(w, lower, rtol=1e-9, atol=0)
     assert report.trimmed == int(on_bound.sum()) > 0
+
+
+def test_check_warns_of_a_weighting_category_inside_one_psu(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    rows = tracker_rows(12, prefix="a")
+    for row in rows:  # age band 3 only in region 1, area 1
+        row["age_band"] = "3" if (row["region"], row["area"]) == ("1", "1") else str(1 + int(row["resp_id"][1:]) % 2)
+    tracker.write_wave("wave1.csv", rows)
+    step = '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band"]\ntargets = "targets.csv"\n'
+    (tracker.folder / "targets.csv").write_text(AGE_TARGETS, encoding="utf-8")
+    for method, warned in (("jackknife", True), ("taylor", False)):
+        tracker.write_spec(TRACKER_SPEC + f'\n[variance]\nmethod = "{method}"\n' + step)
+        code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
+        assert code == 0, out
+        assert ("[category-in-one-psu]" in out and "category '3' of margin 'age_band'" in out) == warned, method
