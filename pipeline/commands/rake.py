@@ -40,9 +40,9 @@ def read_data(path: str) -> object:
     if suffix == ".csv":
         from pipeline.staging.readers import checked_csv_header
 
-        return pl.read_csv(file, infer_schema=False, new_columns=checked_csv_header(file))
+        return pl.read_csv(file, infer_schema=False, new_columns=checked_csv_header(file), glob=False)
     if suffix == ".parquet":
-        return pl.read_parquet(file)
+        return pl.read_parquet(file, glob=False)
     raise WavebookError(f"cannot read {file}: DATA must be a .csv or .parquet file")
 
 
