@@ -84,7 +84,7 @@ def is_own_output(path: Path) -> bool:
 
 def output_problems(path: Path, inputs: Iterable[Input], *, force: bool, option: str) -> list[Problem]:
     """Every reason not to write `path` (empty when it may be written); `option` names the flag."""
-    for item in inputs:
+    for item in [*inputs, Input(path.parent / MARKER, "wavebook's record of the files it wrote")]:
         if same_file(path, item.path):
             return [
                 Problem(
