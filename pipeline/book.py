@@ -47,7 +47,7 @@ REQUIRED_COLUMNS = (
     "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
 )
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
-PERCENT_KINDS = ("category", "net", "item", "missing")
+PERCENT_KINDS = ("category", "net", "item", "missing", "not-asked")
 ESTIMATED_STATISTICS = ("mean", "median")
 SET_BY_WEIGHTING = "set by weighting"
 SET_BY_WEIGHTING_NOTE = (
@@ -187,7 +187,7 @@ def build_context(
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
     weighted = all(c in cells.columns for c in ESTIMATE_COLUMNS) and cells["estimate"].is_not_null().any()
     respondents = dict(
-        cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
+        cells.filter(pl.col("row_kind").is_in(["missing", "not-asked"])).group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
     sections = tuple(
@@ -292,7 +292,7 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if kind == "base":
         return Cell(text=f"{row['count']:,}")
     if weighted and row.get("estimate") is not None:
-        if kind == "missing":
+        if kind in ("missing", "not-asked"):
             return Cell(text=_percent_text(row["estimate"]), detail=f"{row['count']:,}", base_flag=flag)
         if kind in PERCENT_KINDS and row.get("set_by_weighting"):
             text = _percent_text(row["estimate"])

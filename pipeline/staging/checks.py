@@ -12,8 +12,10 @@ with one filtered pass per column, all in one query per rule.
 Rules (severity): missing-column (error), extra-column (warning), empty-file (error),
 missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
 out-of-bounds, missing-design-value, bad-design-weight, psu-in-several-strata,
-stratum-without-population, population-too-small (errors), and the drift rules against the
-earlier staged waves: code-gone, code-new, share-shift (warnings).
+stratum-without-population, population-too-small (errors), answered-not-asked (warning: an
+answer from a respondent the variable's `asked_if` routes past it, a routing error in the data;
+those answers are treated as not asked), and the drift rules against the earlier staged waves:
+code-gone, code-new, share-shift (warnings).
 """
 
 from __future__ import annotations
@@ -27,6 +29,7 @@ import polars as pl
 
 from pipeline.errors import Problem
 from pipeline.sqlfiles import sql
+from pipeline.staging.conditions import to_duckdb
 from pipeline.staging.database import table_columns
 from pipeline.staging.spec import Study, Variable
 
@@ -124,6 +127,7 @@ def run_checks(
     _setup_tables(con, study, raw, columns)
     context = _Context(con, study, file, raw, columns)
     problems += context.rule_problems()
+    problems += context.routing_problems(present)
     if previous:
         problems += context.drift_problems(previous)
     return problems
@@ -252,6 +256,45 @@ class _Context:
             count=int(n) if rule.counts_rows else None,
             examples=tuple(str(e) for e in examples or ()),
         )
+
+    def routing_problems(self, present: set[str]) -> list[Problem]:
+        """answered-not-asked: respondents outside a variable's `asked_if` who answered it anyway.
+
+        The condition is compiled to a DuckDB expression over the raw text columns read through the
+        typing macros (pipeline.staging.conditions.to_duckdb), never to SQL text.
+        """
+        import duckdb
+
+        def typed(column: str) -> duckdb.Expression:
+            owner = self.owner[column]
+            macro = "wb_text" if owner.type in ("single", "scale") and not owner.int_coded else "wb_number"
+            return duckdb.FunctionExpression(macro, duckdb.ColumnExpression(column))
+
+        problems: list[Problem] = []
+        raw = self.con.table(self.raw)
+        for variable in self.study.variables.values():
+            condition = variable.asked_if
+            columns = [c for c in variable.columns if c in present]
+            if condition is None or not columns or not set(condition.names) <= present:
+                continue
+            answered = [duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(c)).isnotnull() for c in columns]
+            any_answer = answered[0]
+            for more in answered[1:]:
+                any_answer = any_answer | more
+            routed_past = raw.filter(~to_duckdb(condition.tree, typed) & any_answer)
+            n = int(routed_past.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+            if not n:
+                continue
+            ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
+            examples = [str(r[0]) for r in routed_past.select(ids).order("id").limit(5).fetchall()]
+            problems.append(Problem(
+                "answered-not-asked",
+                f"{n} respondent{'s' if n != 1 else ''} answered '{variable.name}' although its asked_if "
+                f"\"{condition.text}\" routes them past it (a routing error in the data); "
+                "their answers are treated as not asked",
+                severity="warning", file=self.file, column=variable.name, count=n, examples=tuple(examples),
+            ))
+        return problems
 
     def rule_problems(self) -> list[Problem]:
         """The error rules, each one query over all the columns it concerns."""

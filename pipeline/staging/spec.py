@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Literal
 
 from pipeline.errors import Problem, SpecError
+from pipeline.staging.conditions import NAME_PATTERN, ColumnInfo, Condition, ConditionError, bind, name_positions, parse
 
 if TYPE_CHECKING:
     from pipeline.weighting.steps import StepContext
@@ -88,6 +89,10 @@ class Variable:
     type "scale": a rating scale; `values` labels the codes, `exclude_from_mean` lists codes such
     as "don't know" that are shown in distributions but excluded from means.
     nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "scale".
+    asked_if: who was asked (pipeline.staging.conditions); the others are "Not asked", out of
+    every base of the variable. waves: the waves that asked it (None: every wave); in other
+    waves its columns need not exist. item_waves: for a multi set, item -> the waves that
+    asked that item.
     """
 
     name: str
@@ -99,6 +104,26 @@ class Variable:
     exclude_from_mean: tuple[Code, ...] = ()
     minimum: float | None = None
     maximum: float | None = None
+    asked_if: Condition | None = None
+    waves: tuple[str, ...] | None = None
+    item_waves: dict[str, tuple[str, ...]] = field(default_factory=dict)
+
+    def asked_in(self, wave_id: str, item: str | None = None) -> bool:
+        """Whether the wave asked the variable (and, for a multi set, the item)."""
+        if self.waves is not None and wave_id not in self.waves:
+            return False
+        return item is None or item not in self.item_waves or wave_id in self.item_waves[item]
+
+    def wave_columns(self, wave_id: str) -> tuple[str, ...]:
+        """The columns this variable reads in a wave's file (none in a wave that did not ask it)."""
+        if self.waves is not None and wave_id not in self.waves:
+            return ()
+        return tuple(c for c in self.columns if self.asked_in(wave_id, c if self.type == "multi" else None))
+
+    @property
+    def routed(self) -> bool:
+        """Whether some respondents may not have been asked (a filter or a wave list)."""
+        return self.asked_if is not None or self.waves is not None or bool(self.item_waves)
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -187,12 +212,14 @@ _DESIGN_KEYS = (
     "collapse_with",
     "second_stage_fraction",
 )
+_ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
-    "single": ("label", "type", "values", "nets"),
-    "scale": ("label", "type", "values", "exclude_from_mean", "nets"),
-    "multi": ("label", "type", "items"),
-    "numeric": ("label", "type", "minimum", "maximum"),
+    "single": ("label", "type", "values", "nets", *_ROUTING_KEYS),
+    "scale": ("label", "type", "values", "exclude_from_mean", "nets", *_ROUTING_KEYS),
+    "multi": ("label", "type", "items", *_ROUTING_KEYS),
+    "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS),
 }
+_ITEM_KEYS = ("label", "waves")
 _ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
 _VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "single": ("label", "values"),
@@ -361,6 +388,7 @@ class _Checker:
         database = self.typed(data, "", "database", str)
         waves = self.waves(data.get("waves"), spec_path.parent) if "waves" in data else ()
         variables = self.variables(data.get("variables", {}))
+        variables = self.routing(data.get("variables", {}), variables, tuple(w.id for w in waves))
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
@@ -462,10 +490,10 @@ class _Checker:
         if vtype == "numeric":
             return self.numeric(name, table, key, label)
         if vtype == "multi":
-            items = self.labels(table, key, "items")
+            items, item_waves = self.items(table, key)
             if label is None or items is None:
                 return None
-            return Variable(name, "multi", label, items=dict(items))
+            return Variable(name, "multi", label, items=items, item_waves=item_waves)
         labels = self.labels(table, key, "values")
         if labels is None or label is None:
             return None
@@ -496,6 +524,74 @@ class _Checker:
             minimum=None if low is None else float(low),
             maximum=None if high is None else float(high),
         )
+
+    def items(self, table: dict, key: str) -> tuple[dict[str, str] | None, dict[str, tuple[str, ...]]]:
+        """A multi set's items: column -> label, or column -> { label, waves } (the waves that asked it)."""
+        value = self.typed(table, key, "items", dict)
+        if value is None:
+            return None, {}
+        if not value:
+            self.add("bad-value", f"{key}.items", "is empty; list at least one entry")
+            return None, {}
+        items: dict[str, str] = {}
+        item_waves: dict[str, tuple[str, ...]] = {}
+        for column, entry in value.items():
+            where = f"{key}.items.{column}"
+            if isinstance(entry, str):
+                items[column] = entry
+            elif isinstance(entry, dict):
+                self.keys(entry, where, _ITEM_KEYS, ("label",))
+                label = self.typed(entry, where, "label", str)
+                if label is not None:
+                    items[column] = label
+                if "waves" in entry:
+                    item_waves[column] = self.string_list(entry, where, "waves")
+            else:
+                self.add("wrong-type", where, f"must be a label or a table {{ label, waves }}, not {entry!r}", value=entry)
+        return (items if len(items) == len(value) else None), item_waves
+
+    def routing(self, raw: object, variables: dict[str, Variable], wave_ids: tuple[str, ...]) -> dict[str, Variable]:
+        """Read `asked_if` and `waves` once every variable is known (a condition may name a later one)."""
+        if not isinstance(raw, dict):
+            return variables
+        columns = _condition_columns(variables)
+        out = dict(variables)
+        for name, variable in variables.items():
+            table = raw[name]
+            key = f"variables.{name}"
+            waves = self.wave_list(table, key, wave_ids) if "waves" in table else None
+            item_waves = {
+                item: self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids)
+                for item, waves_of_item in variable.item_waves.items()
+            }
+            condition = self.condition(table, key, columns, variable) if "asked_if" in table else None
+            out[name] = replace(variable, asked_if=condition, waves=waves, item_waves=item_waves)
+        return out
+
+    def wave_list(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> tuple[str, ...] | None:
+        listed = self.string_list(table, key, "waves")
+        unknown = [w for w in listed if w not in wave_ids]
+        for w in unknown:
+            self.add("bad-value", f"{key}.waves", f"'{w}' is not a wave of the spec ({', '.join(wave_ids)})", value=w)
+        if "waves" in table and isinstance(table["waves"], list) and not table["waves"]:
+            self.add("bad-value", f"{key}.waves", "lists no wave; list the waves that asked it, or drop the key")
+        return tuple(w for w in listed if w in wave_ids) or None
+
+    def condition(
+        self, table: dict, key: str, columns: dict[str, ColumnInfo], variable: Variable, *, name: str = "asked_if"
+    ) -> Condition | None:
+        text = self.typed(table, key, name, str)
+        if text is None:
+            return None
+        try:
+            parsed = parse(text)
+            for column, position in name_positions(parsed.tree):
+                if column in variable.columns:
+                    raise ConditionError(f"'{variable.name}' cannot be filtered on its own answers", text, position)
+            return bind(parsed, columns)
+        except ConditionError as exc:
+            self.add("bad-condition", f"{key}.{name}", exc.render(), value=text)
+            return None
 
     def labels(self, table: dict, key: str, name: str) -> dict[str, str] | None:
         value = self.typed(table, key, name, dict)
@@ -716,6 +812,19 @@ class _Checker:
             column = getattr(design, name)
             if column in owner and variables[owner[column]].type == "multi":
                 self.add("duplicate-column", f"design.{name}", f"'{column}' is an item of a multi-response set")
+
+
+def _condition_columns(variables: dict[str, Variable]) -> dict[str, ColumnInfo]:
+    """What a condition may read: coded variables with their codes, numeric variables, 0/1 items."""
+    columns: dict[str, ColumnInfo] = {}
+    for name, variable in variables.items():
+        if variable.type == "multi":
+            columns.update({item: ColumnInfo("int", frozenset({0, 1})) for item in variable.items})
+        elif variable.type == "numeric":
+            columns[name] = ColumnInfo("number")
+        else:
+            columns[name] = ColumnInfo("int" if variable.int_coded else "text", frozenset(variable.valid_codes))
+    return {c: info for c, info in columns.items() if NAME_PATTERN.match(c)}
 
 
 def _ranges(codes: tuple[Code, ...]) -> list[str]:
