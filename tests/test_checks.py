@@ -172,7 +172,7 @@ def test_base_weights_positive(tmp_path: Path) -> None:
 
 
 def test_unique_psu_ids_in_one_stratum(tmp_path: Path) -> None:
-    tracker = Tracker(tmp_path, TRACKER_SPEC.replace('psu_ids = "nested"', 'psu_ids = "unique"'))
+    tracker = Tracker(tmp_path, TRACKER_SPEC.replace('psu_ids = "within-stratum"', 'psu_ids = "unique"'))
     rows = tracker_rows(12, prefix="a")  # areas 1 and 2 both occur in regions 1 and 2
     (problem,) = check_rows(tracker, rows)
     assert problem.rule == "psu-in-several-strata"

@@ -1,5 +1,5 @@
 """stage_wave: typed rows, atomic replace, untouched neighbours, rollback on failure, same table
-from CSV / Parquet / SPSS, schema growth, and staging real reference files in place."""
+from CSV / Parquet, schema growth, and staging real reference files in place."""
 
 from __future__ import annotations
 
@@ -186,10 +186,8 @@ def test_codebook_type_change_is_refused(tracker: Tracker) -> None:
 
 
 def _write_formats(tracker: Tracker) -> None:
-    """The same 12 respondents as CSV (W1), Parquet with native types (W2) and SPSS (W3)."""
-    import pandas as pd
-    import pyreadstat
-
+    """The same 12 respondents as CSV (W1), Parquet with native types (W2) and Parquet with every
+    number stored as a float (W3, as many export tools write it: 3.0 must stage as code 3)."""
     rows = tracker_rows(12, prefix="a")
     tracker.write_wave("wave1.csv", rows)
     typed = pl.DataFrame(rows).with_columns(
@@ -199,15 +197,13 @@ def _write_formats(tracker: Tracker) -> None:
     )
     typed.write_parquet(tracker.folder / "waves" / "wave2.parquet")
     numeric = [c for c, t in typed.schema.items() if t != pl.String]
-    frame = pd.DataFrame({c: typed[c].to_list() for c in typed.columns})
-    frame[numeric] = frame[numeric].astype("float64")
-    pyreadstat.write_sav(frame, str(tracker.folder / "waves" / "wave3.sav"))
+    typed.with_columns(pl.col(numeric).cast(pl.Float64)).write_parquet(tracker.folder / "waves" / "wave3.parquet")
     spec = TRACKER_SPEC.replace('file = "waves/wave2.csv"', 'file = "waves/wave2.parquet"')
-    spec = spec.replace("[design]", '[waves.W3]\nlabel = "Wave 3"\nfile = "waves/wave3.sav"\n\n[design]')
+    spec = spec.replace("[design]", '[waves.W3]\nlabel = "Wave 3"\nfile = "waves/wave3.parquet"\n\n[design]')
     tracker.write_spec(spec)
 
 
-def test_csv_parquet_and_spss_stage_the_same_rows(tracker: Tracker) -> None:
+def test_csv_parquet_and_float_parquet_stage_the_same_rows(tracker: Tracker) -> None:
     _write_formats(tracker)
     study = tracker.study()
     reports = [stage_wave(study, w, quiet=True) for w in ("W1", "W2", "W3")]

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import polars as pl
 import pytest
@@ -126,7 +128,7 @@ def test_every_estimable_row_has_an_estimate_and_interval_around_it(wave):
 
 
 def test_replicate_method_from_the_variance_table(wave):
-    options, problems = parse_variance({"method": "jkn"})
+    options, problems = parse_variance({"method": "stratified-jackknife"})
     assert problems == []
     taylor = _estimates(wave)
     jack = _estimates(wave, options)
@@ -212,4 +214,5 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     assert "weighting" in parser.ids
     text = " ".join(parser.text)
     assert "set by weighting" in text
+    assert re.search(r"\bdeff\s+\d+\.\d\d\b", text)  # the design effect's label is text in the page, not CSS
     assert not any(rid in text for rid in responses["respondent_id"].to_list())  # no respondent ids

@@ -52,7 +52,7 @@ MAX_PROBLEMS_PER_COLUMN = 10
 class _Columns:
     """The spec's columns that are present in the file, grouped by what the checks do with them."""
 
-    codes: list[str]  # single and scale
+    codes: list[str]  # single and rating
     int_codes: list[str]
     items: list[str]
     numbers: list[str]  # numeric variables
@@ -141,7 +141,7 @@ def _present_columns(study: Study, present: set[str]) -> _Columns:
     variables = list(study.variables.values())
     design = study.design
     return _Columns(
-        codes=[v.name for v in variables if v.type in ("single", "scale") and v.name in present],
+        codes=[v.name for v in variables if v.type in ("single", "rating") and v.name in present],
         int_codes=[v.name for v in variables if v.int_coded and v.name in present],
         items=[c for v in variables if v.type == "multi" for c in v.items if c in present],
         numbers=[v.name for v in variables if v.type == "numeric" and v.name in present],
@@ -267,7 +267,7 @@ class _Context:
 
         def typed(column: str) -> duckdb.Expression:
             owner = self.owner[column]
-            macro = "wb_text" if owner.type in ("single", "scale") and not owner.int_coded else "wb_number"
+            macro = "wb_text" if owner.type in ("single", "rating") and not owner.int_coded else "wb_number"
             return duckdb.FunctionExpression(macro, duckdb.ColumnExpression(column))
 
         problems: list[Problem] = []
@@ -404,7 +404,7 @@ class _Context:
                     "psu-in-several-strata",
                     "error",
                     lambda r: f"{r[4]} PSU id(s) appear in more than one stratum (e.g. PSU '{r[1]}') but "
-                    'design.psu_ids = "unique"; set psu_ids = "nested" if PSU ids restart within each stratum',
+                    'design.psu_ids = "unique"; set psu_ids = "within-stratum" if PSU ids restart within each stratum',
                 ),
                 "check_psu_unique.sql",
                 {"column": design.psu},

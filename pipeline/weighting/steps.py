@@ -193,7 +193,7 @@ def _variables(r: _Reader, key: str, value: object, known: set[str]) -> tuple[st
         return ()
     for n in names:
         if n not in known:
-            r.bad(key, f"'{n}' is not a single-choice or scale variable of the codebook (nor the strata column)")
+            r.bad(key, f"'{n}' is not a single-choice or rating variable of the codebook (nor the strata column)")
     return tuple(names)
 
 
@@ -244,7 +244,7 @@ def _collapse(r: _Reader, known: set[str]) -> Collapse | None:
     order: dict[str, tuple[tuple[str, ...], ...] | str] = {}
     for var, rule in dict(value.get("order", {})).items():
         if var not in known:
-            r.bad(f"collapse.order.{var}", "is not a single-choice or scale variable of the codebook")
+            r.bad(f"collapse.order.{var}", "is not a single-choice or rating variable of the codebook")
         if rule == "adjacent":
             order[var] = "adjacent"
         elif isinstance(rule, list) and all(isinstance(g, list) and len(g) >= 2 for g in rule):
