@@ -66,8 +66,11 @@ class _Columns:
         return _unique([*self.codes, *self.items])
 
 
-def expected_columns(study: Study) -> dict[str, str]:
-    """Every column the spec requires in a wave file -> where the spec declares it."""
+def expected_columns(study: Study, wave_id: str) -> dict[str, str]:
+    """Every column (spec name) the spec requires in a wave's file -> where the spec declares it.
+
+    Columns of variables (and multi items) the wave did not ask (`waves`) are not required.
+    """
     out = {study.respondent_id: "respondent_id"}
     design = study.design
     for key in ("strata", "psu", "base_weight", "selection_probability"):
@@ -75,8 +78,10 @@ def expected_columns(study: Study) -> dict[str, str]:
         if column is not None:
             out.setdefault(column, f"design.{key}")
     for variable in study.variables.values():
-        for column in variable.columns:
+        for column in variable.wave_columns(wave_id):
             where = f"variables.{variable.name}" + (".items" if variable.type == "multi" else "")
+            if wave_id in variable.column:
+                where += f".column.{wave_id}"
             out.setdefault(column, where)
     return out
 
@@ -89,25 +94,31 @@ def run_checks(
     file_columns: list[str],
     file: str,
     previous: list[str],
+    wave: str,
+    sources: dict[str, str] | None = None,
+    ignored: tuple[str, ...] = (),
 ) -> list[Problem]:
     """Every problem of the raw table `raw` (read from `file`), errors and warnings together.
 
+    `raw` holds the wave's columns under their spec names (pipeline.staging.wave_columns);
+    sources: spec column -> its name in the file, for messages; ignored: file columns left out.
     previous: the earlier staged waves (spec order) the drift rules compare with, read from the
     `responses` table of `con`; empty to skip drift.
     """
-    expected = expected_columns(study)
+    expected = expected_columns(study, wave)
     present = set(file_columns)
+    named = sources or {}
     problems = [
         Problem(
             "missing-column",
-            f"column '{column}' (declared at {where}) is not in the file",
+            f"column '{named.get(column, column)}' (declared at {where}) is not in the file",
             file=file,
-            column=column,
+            column=named.get(column, column),
         )
         for column, where in expected.items()
         if column not in present
     ]
-    extra = [c for c in file_columns if c not in expected]
+    extra = [c for c in file_columns if c not in expected] + list(ignored)
     if extra:
         problems.append(
             Problem(
@@ -123,6 +134,7 @@ def run_checks(
         return [*problems, Problem("empty-file", "the file has no data rows", file=file, count=0)]
     if study.respondent_id not in present:
         return problems
+    present &= set(expected)
     columns = _present_columns(study, present)
     _setup_tables(con, study, raw, columns)
     context = _Context(con, study, file, raw, columns)

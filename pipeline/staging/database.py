@@ -85,6 +85,7 @@ def create_tables(con: duckdb.DuckDBPyConnection, study: Study) -> None:
     """Create the staging tables when absent (a new `responses` gets every column of the spec)."""
     columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items()]
     con.execute(sql("schema_waves.sql"))
+    con.execute(sql("schema_waves_signature.sql"))
     con.execute(sql("schema_responses.sql", columns=columns))
     con.execute(sql("schema_problems.sql"))
 
@@ -121,8 +122,10 @@ def add_new_columns(con: duckdb.DuckDBPyConnection, study: Study) -> list[str]:
 
 
 def staged_waves(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
-    """The `waves` table in spec order (wave, position, label, fieldwork dates, file, sha256, rows, time)."""
-    return con.sql(sql("load_staged_waves.sql")).pl()
+    """The `waves` table in spec order (wave, position, label, fieldwork dates, file, sha256, rows, time,
+    spec signature)."""
+    signed = "spec_signature" in table_columns(con, "waves")
+    return con.sql(sql("load_staged_waves.sql", signed=signed)).pl()
 
 
 def load_responses(

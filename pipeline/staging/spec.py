@@ -96,6 +96,9 @@ class Variable:
     every base of the variable. waves: the waves that asked it (None: every wave); in other
     waves its columns need not exist. item_waves: for a multi set, item -> the waves that
     asked that item.
+    column: wave -> the column's name in that wave's file (default: the variable's name).
+    recode: wave -> {code in that wave's file: codebook code}, applied before checking and
+    staging (so drift checks compare recoded values).
     """
 
     name: str
@@ -110,6 +113,8 @@ class Variable:
     asked_if: Condition | None = None
     waves: tuple[str, ...] | None = None
     item_waves: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    column: dict[str, str] = field(default_factory=dict)
+    recode: dict[str, dict[Code, Code]] = field(default_factory=dict)
 
     def asked_in(self, wave_id: str, item: str | None = None) -> bool:
         """Whether the wave asked the variable (and, for a multi set, the item)."""
@@ -217,10 +222,10 @@ _DESIGN_KEYS = (
 )
 _ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
-    "single": ("label", "type", "values", "nets", *_ROUTING_KEYS),
-    "rating": ("label", "type", "values", "exclude_from_statistics", "nets", *_ROUTING_KEYS),
+    "single": ("label", "type", "values", "nets", *_ROUTING_KEYS, "column", "recode"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "nets", *_ROUTING_KEYS, "column", "recode"),
     "multi": ("label", "type", "items", *_ROUTING_KEYS),
-    "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS),
+    "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS, "column"),
 }
 _ITEM_KEYS = ("label", "waves")
 _ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
@@ -582,7 +587,44 @@ class _Checker:
                 for item, waves_of_item in variable.item_waves.items()
             }
             condition = self.condition(table, key, columns, variable) if "asked_if" in table else None
-            out[name] = replace(variable, asked_if=condition, waves=waves, item_waves=item_waves)
+            column = self.wave_columns(table, key, wave_ids) if "column" in table else {}
+            recode = self.recodes(table, key, wave_ids, variable) if "recode" in table else {}
+            out[name] = replace(
+                variable, asked_if=condition, waves=waves, item_waves=item_waves, column=column, recode=recode
+            )
+        return out
+
+    def wave_columns(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> dict[str, str]:
+        raw = self.typed(table, key, "column", dict)
+        out: dict[str, str] = {}
+        for wave_id, column in (raw or {}).items():
+            where = f"{key}.column.{wave_id}"
+            if wave_id not in wave_ids:
+                self.add("bad-value", where, f"'{wave_id}' is not a wave of the spec ({', '.join(wave_ids)})", value=wave_id)
+            elif not isinstance(column, str) or not column:
+                self.add("wrong-type", where, f"must be the column's name in that wave's file, not {column!r}", value=column)
+            else:
+                out[wave_id] = column
+        return out
+
+    def recodes(self, table: dict, key: str, wave_ids: tuple[str, ...], variable: Variable) -> dict[str, dict[Code, Code]]:
+        raw = self.typed(table, key, "recode", dict)
+        out: dict[str, dict[Code, Code]] = {}
+        for wave_id, mapping in (raw or {}).items():
+            where = f"{key}.recode.{wave_id}"
+            if wave_id not in wave_ids:
+                self.add("bad-value", where, f"'{wave_id}' is not a wave of the spec ({', '.join(wave_ids)})", value=wave_id)
+                continue
+            if not isinstance(mapping, dict) or not mapping:
+                self.add("wrong-type", where, "must be a table {code in the file = codebook code}, e.g. { 6 = 5, 7 = 5 }")
+                continue
+            codes: dict[Code, Code] = {}
+            for source, target in mapping.items():
+                old = self.code(source, f"{where}.{source}", variable)
+                new = self.code_list([target], f"{where}.{source}", variable, variable.valid_codes)
+                if old is not None and new:
+                    codes[old] = new[0]
+            out[wave_id] = codes
         return out
 
     def wave_list(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> tuple[str, ...] | None:
