@@ -11,7 +11,7 @@ The long frame has one row per (wave, variable, row) with the columns of `CELL_S
 
   wave        wave id
   variable    variable name (for a multiple-response set, the set's name)
-  row_kind    "base" | "category" | "net" | "item" | "statistic" | "missing" | "not-asked"
+  row_kind    "base" | "category" | "excluded" | "net" | "item" | "statistic" | "missing" | "not-asked"
   row_order   position of the row in the variable's table (same for every wave)
   row_label   the label shown in the book
   code        category code as text; item column for items; statistic name ("n", "mean",
@@ -62,9 +62,9 @@ CELL_SCHEMA: dict[str, pl.DataType] = {
     "note": pl.String(),
 }
 
-ROW_KINDS = ("base", "category", "net", "item", "statistic", "missing", "not-asked")
+ROW_KINDS = ("base", "category", "excluded", "net", "item", "statistic", "missing", "not-asked")
 STATISTICS = {"n": "Number of answers", "mean": "Mean", "median": "Median", "min": "Minimum", "max": "Maximum"}
-BASE_LABEL = "Base: answered"
+BASE_LABELS = {"asked": "Base: all asked", "answered": "Base: all giving an answer"}
 MISSING_LABEL = {"multi": "Not asked", "default": "No answer"}
 NOT_ASKED_LABEL = "Not asked"
 ROUTED_VIEW = "__wavebook_routed"
@@ -150,7 +150,7 @@ def _statistics(
     """(wave, variable) -> {"answered", "n", "mean", "median", "min", "max"} from one grouped query."""
     if not variables:
         return {}
-    excluded = [(v.name, float(code)) for v in variables for code in v.exclude_from_statistics]
+    excluded = [(v.name, float(code)) for v in variables for code in v.unscored]
     params = {
         "waves": wave_ids,
         "excluded_variable": [name for name, _ in excluded],
@@ -196,7 +196,7 @@ def _category_rows(variable: Variable, seen_codes: Iterable[str]) -> list[_Row]:
     in the codebook are appended, labelled as such, so that no answer is dropped.
     """
     labels = {_code_text(code): label for code, label in variable.values.items()}
-    scored = [c for c in variable.values if c not in variable.exclude_from_statistics]
+    scored = [c for c in variable.values if c not in variable.unscored]
     if variable.type == "rating" and scored and all(isinstance(c, int) for c in scored):
         order = [str(c) for c in range(min(scored), max(scored) + 1)]
         order += [code for code in labels if code not in order]
@@ -220,10 +220,13 @@ def _coded_rows(
 ) -> pl.DataFrame:
     """The rows of a single-choice, rating or numeric variable for every wave that asked it."""
     coded = variable.type in ("single", "rating")
-    layout: list[_Row] = [_Row("base", BASE_LABEL)]
+    outside = {_code_text(c) for c in variable.exclude_from_base}
+    layout: list[_Row] = [_Row("base", base_label(variable))]
     if coded:
         seen = {code for w in waves for code in code_counts.get((w, variable.name), {})}
-        layout += _category_rows(variable, seen)
+        categories = _category_rows(variable, seen)
+        layout += [row for row in categories if row.code not in outside]
+        layout += [_Row("excluded", row.label, row.code) for row in categories if row.code in outside]
         layout += [
             _Row("net", label, members=tuple(_code_text(c) for c in codes)) for label, codes in variable.nets.items()
         ]
@@ -239,14 +242,17 @@ def _coded_rows(
         counts = code_counts.get((wave, variable.name), {})
         stats = statistics.get((wave, variable.name), {})
         answered = sum(counts.values()) if coded else int(stats.get("answered") or 0)
+        in_base = answered - sum(counts.get(code, 0) for code in outside)
         for order, row in enumerate(layout):
             if row.kind == "base":
-                records.append(_record(wave, variable, order, row, count=answered, base=answered))
+                records.append(_record(wave, variable, order, row, count=in_base, base=in_base))
             elif row.kind == "category":
-                records.append(_record(wave, variable, order, row, count=counts.get(row.code, 0), base=answered))
+                records.append(_record(wave, variable, order, row, count=counts.get(row.code, 0), base=in_base))
+            elif row.kind == "excluded":
+                records.append(_record(wave, variable, order, row, count=counts.get(row.code, 0), base=asked[wave]))
             elif row.kind == "net":
                 count = sum(counts.get(code, 0) for code in set(row.members))
-                records.append(_record(wave, variable, order, row, count=count, base=answered))
+                records.append(_record(wave, variable, order, row, count=count, base=in_base))
             elif row.kind == "statistic":
                 n = int(stats.get("n") or 0)
                 value = float(n) if row.code == "n" else stats.get(row.code)
@@ -269,7 +275,7 @@ def _multi_rows(
     wave asked), "any" net, then "not asked" (no item answered), or with an `asked_if` "no answer"
     (asked, no item answered) and "not asked" (outside the filter)."""
     note = "Percentages of respondents asked; respondents could choose more than one, so items add to more than 100%."
-    layout = [_Row("base", BASE_LABEL, note=note)]
+    layout = [_Row("base", base_label(variable), note=note)]
     layout += [_Row("item", label, code=column) for column, label in variable.items.items()]
     layout += [_Row("net", ANY_LABEL)]
     if variable.asked_if is not None:
@@ -296,13 +302,24 @@ def _multi_rows(
     return pl.DataFrame(records, schema=CELL_SCHEMA, orient="row")
 
 
+def base_label(variable: Variable) -> str:
+    """Which base the percentages use: all asked (a multi set: anyone answering an item), all giving
+    an answer, or all giving an answer excluding the `exclude_from_base` codes (named by label)."""
+    if variable.type == "multi":
+        return BASE_LABELS["asked"]
+    if not variable.exclude_from_base:
+        return BASE_LABELS["answered"]
+    labels = [str(variable.values.get(code, code)) for code in variable.exclude_from_base]
+    return "Base: excluding " + ", ".join(label[:1].lower() + label[1:] for label in labels)
+
+
 def _exclusion_note(variable: Variable) -> str | None:
     """The note saying which codes a rating's statistics leave out, or None."""
-    if not variable.exclude_from_statistics:
+    if not variable.unscored:
         return None
     labels = {_code_text(code): label for code, label in variable.values.items()}
     parts = [f"{code} ({labels[_code_text(code)]})" if _code_text(code) in labels else str(code)
-             for code in variable.exclude_from_statistics]
+             for code in variable.unscored]
     return "Statistics exclude code " + ", ".join(parts) + "."
 
 
@@ -318,6 +335,6 @@ def _record(
 ) -> tuple:
     """One output row in `CELL_SCHEMA` order; percent = 100 * count / base for counted rows."""
     percent = None
-    if row.kind in ("category", "net", "item", "missing", "not-asked") and base:
+    if row.kind in ("category", "excluded", "net", "item", "missing", "not-asked") and base:
         percent = 100.0 * count / base
     return (wave, variable.name, row.kind, order, row.label, row.code, count, base, percent, value, row.note)

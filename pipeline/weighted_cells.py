@@ -7,7 +7,9 @@ the fitted weighting recipe of each wave and the `[variance]` options, and retur
   category / net / item / missing rows: a weighted percentage, 100 * p with
       p = sum_i w_i a_i y_i / sum_i w_i a_i,   y_i = 1 when i's answer is in the row, a_i = 1 when
       i is in the row's base (answered; for "missing" rows the respondents asked, for
-      "not-asked" rows every respondent of the wave; pipeline.staging.routing);
+      "not-asked" rows every respondent of the wave; pipeline.staging.routing; for categories and
+      nets of a variable with `exclude_from_base` the answers outside those codes, for the
+      "excluded" rows of those codes the respondents asked);
   statistic "mean": the weighted mean of the answers (codes excluded from the statistics left out);
   statistic "median": the weighted median with its Woodruff (1952) interval; for a rating scale
       the interpolated median of grouped data (each answer k spread evenly over k -/+ 1/2,
@@ -61,7 +63,7 @@ ESTIMATE_SCHEMA: dict[str, pl.DataType] = {
 _WEIGHT = "__base_weight"
 _CLASS = "__class"
 _FINAL = "__final_weight"
-PERCENT_KINDS = ("category", "net", "item", "missing", "not-asked")
+PERCENT_KINDS = ("category", "excluded", "net", "item", "missing", "not-asked")
 RATING_TYPES = ("scale", "rating")  # whole-number answers: medians by the grouped-data rule
 # A percentage of a weighting variable whose standard error (on the 0-1 scale) is below this is
 # a figure the weighting sets to its population target: calibration residuals are then exactly 0
@@ -94,14 +96,17 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
     col = pl.col(variable.name)
     text = col.cast(pl.String)
     answered = col.is_not_null()
-    excluded = list(variable.exclude_from_statistics)
+    excluded = list(variable.unscored)
     scored = col.is_not_null() & ~col.is_in(excluded) if excluded else answered
+    in_base = col.is_not_null() & ~col.is_in(list(variable.exclude_from_base)) if variable.exclude_from_base else answered
     for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
         if kind == "category":
-            out.append((order, kind, text.eq(code).fill_null(False), answered))
+            out.append((order, kind, text.eq(code).fill_null(False), in_base))
+        elif kind == "excluded":
+            out.append((order, kind, text.eq(code).fill_null(False), asked))
         elif kind == "net":
             members = [str(c) for c in variable.nets[label]]
-            out.append((order, kind, text.is_in(members).fill_null(False), answered))
+            out.append((order, kind, text.is_in(members).fill_null(False), in_base))
         elif kind == "missing":
             out.append((order, kind, answered.not_(), asked))
         elif kind == "not-asked":

@@ -47,7 +47,7 @@ REQUIRED_COLUMNS = (
     "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
 )
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
-PERCENT_KINDS = ("category", "net", "item", "missing", "not-asked")
+PERCENT_KINDS = ("category", "excluded", "net", "item", "missing", "not-asked")
 ESTIMATED_STATISTICS = ("mean", "median")
 SET_BY_WEIGHTING = "set by weighting"
 NOT_ASKED_IN_WAVE = "not asked in this wave"
@@ -302,7 +302,7 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if kind == "base":
         return Cell(text=f"{row['count']:,}")
     if weighted and row.get("estimate") is not None:
-        if kind in ("missing", "not-asked"):
+        if kind in ("missing", "not-asked", "excluded"):
             return Cell(text=_percent_text(row["estimate"]), detail=f"{row['count']:,}", base_flag=flag)
         if kind in PERCENT_KINDS and row.get("set_by_weighting"):
             text = _percent_text(row["estimate"])

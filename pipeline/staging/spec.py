@@ -101,6 +101,8 @@ class Variable:
     such as "don't know" that are shown in distributions but left out of the mean, median, minimum,
     maximum and number of answers.
     nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "rating".
+    exclude_from_base: codes (e.g. 99 "don't know") shown as their own rows but outside the base
+    of the percentages (and of the statistics), for "single" and "rating".
     asked_if: who was asked (pipeline.staging.conditions); the others are "Not asked", out of
     every base of the variable. waves: the waves that asked it (None: every wave); in other
     waves its columns need not exist. item_waves: for a multi set, item -> the waves that
@@ -117,6 +119,7 @@ class Variable:
     items: dict[str, str] = field(default_factory=dict)
     nets: dict[str, tuple[Code, ...]] = field(default_factory=dict)
     exclude_from_statistics: tuple[Code, ...] = ()
+    exclude_from_base: tuple[Code, ...] = ()
     minimum: float | None = None
     maximum: float | None = None
     asked_if: Condition | None = None
@@ -136,6 +139,11 @@ class Variable:
         if self.waves is not None and wave_id not in self.waves:
             return ()
         return tuple(c for c in self.columns if self.asked_in(wave_id, c if self.type == "multi" else None))
+
+    @property
+    def unscored(self) -> tuple[Code, ...]:
+        """Codes left out of the statistics: those excluded from the statistics or from the base."""
+        return tuple(dict.fromkeys((*self.exclude_from_statistics, *self.exclude_from_base)))
 
     @property
     def routed(self) -> bool:
@@ -164,7 +172,7 @@ class Variable:
             return tuple(self.values)
         if self.type != "rating" or not self.values:
             return ()
-        on_scale = [c for c in self.values if c not in self.exclude_from_statistics]
+        on_scale = [c for c in self.values if c not in self.unscored]
         filled = set(range(min(on_scale), max(on_scale) + 1)) if on_scale else set()
         return tuple(sorted(filled | set(self.values)))
 
@@ -233,8 +241,9 @@ _DESIGN_KEYS = (
 )
 _ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
-    "single": ("label", "type", "values", "nets", *_ROUTING_KEYS, "column", "recode"),
-    "rating": ("label", "type", "values", "exclude_from_statistics", "nets", *_ROUTING_KEYS, "column", "recode"),
+    "single": ("label", "type", "values", "nets", "exclude_from_base", *_ROUTING_KEYS, "column", "recode"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "exclude_from_base", "nets", *_ROUTING_KEYS,
+               "column", "recode"),
     "multi": ("label", "type", "items", *_ROUTING_KEYS),
     "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS, "column"),
 }
@@ -539,9 +548,17 @@ class _Checker:
             exclude = self.code_list(
                 table["exclude_from_statistics"], f"{key}.exclude_from_statistics", base, tuple(values)
             )
-        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        outside = self.code_list(table["exclude_from_base"], f"{key}.exclude_from_base", base, tuple(values)) if (
+            "exclude_from_base" in table) else ()
+        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude,  # type: ignore[arg-type]
+                         exclude_from_base=outside)
         nets = self.nets(table, key, rated)
-        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        for net, members in nets.items():
+            inside = [c for c in members if c in outside]
+            if inside:
+                self.add("conflicting-keys", f"{key}.nets.{net}",
+                         f"code {inside[0]!r} is excluded from the base (exclude_from_base); a net cannot count it")
+        return replace(rated, nets=nets)
 
     def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
         low = self.typed(table, key, "minimum", float)
