@@ -14,7 +14,8 @@ missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
 out-of-bounds, missing-design-value, bad-design-weight, psu-in-several-strata,
 stratum-without-population, population-too-small (errors), answered-not-asked (warning: an
 answer from a respondent the variable's `asked_if` routes past it, a routing error in the data;
-those answers are treated as not asked), and the drift rules against the earlier staged waves:
+those answers are treated as not asked), derived-overlap (error: a respondent matching two `when`
+conditions of a derived variable), and the drift rules against the earlier staged waves:
 code-gone, code-new, share-shift (warnings).
 """
 
@@ -30,6 +31,7 @@ import polars as pl
 from pipeline.errors import Problem
 from pipeline.sqlfiles import sql
 from pipeline.staging.conditions import to_duckdb
+from pipeline.staging.wave_columns import typed_raw
 from pipeline.staging.database import table_columns
 from pipeline.staging.spec import Study, Variable
 
@@ -118,7 +120,8 @@ def run_checks(
         for column, where in expected.items()
         if column not in present
     ]
-    extra = [c for c in file_columns if c not in expected] + list(ignored)
+    derived = {v.name for v in study.variables.values() if v.derived}
+    extra = [c for c in file_columns if c not in expected and c not in derived] + list(ignored)
     if extra:
         problems.append(
             Problem(
@@ -277,11 +280,7 @@ class _Context:
         """
         import duckdb
 
-        def typed(column: str) -> duckdb.Expression:
-            owner = self.owner[column]
-            macro = "wb_text" if owner.type in ("single", "rating") and not owner.int_coded else "wb_number"
-            return duckdb.FunctionExpression(macro, duckdb.ColumnExpression(column))
-
+        typed = typed_raw(self.study)
         problems: list[Problem] = []
         raw = self.con.table(self.raw)
         for variable in self.study.variables.values():
@@ -305,6 +304,35 @@ class _Context:
                 f"\"{condition.text}\" routes them past it (a routing error in the data); "
                 "their answers are treated as not asked",
                 severity="warning", file=self.file, column=variable.name, count=n, examples=tuple(examples),
+            ))
+        return problems + self.overlap_problems(present)
+
+    def overlap_problems(self, present: set[str]) -> list[Problem]:
+        """derived-overlap: respondents matching two `when` conditions of one derived variable."""
+        import duckdb
+
+        typed = typed_raw(self.study)
+        problems: list[Problem] = []
+        raw = self.con.table(self.raw)
+        one, zero = duckdb.ConstantExpression(1), duckdb.ConstantExpression(0)
+        for variable in self.study.variables.values():
+            if not variable.derived or not all(set(c.names) <= present for c in variable.when.values()):
+                continue
+            matches = [duckdb.CaseExpression(to_duckdb(c.tree, typed), one).otherwise(zero) for c in variable.when.values()]
+            total = matches[0]
+            for more in matches[1:]:
+                total = total + more
+            twice = raw.filter(total >= duckdb.ConstantExpression(2))
+            n = int(twice.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+            if not n:
+                continue
+            ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
+            examples = [str(r[0]) for r in twice.select(ids).order("id").limit(5).fetchall()]
+            problems.append(Problem(
+                "derived-overlap",
+                f"{n} respondent{'s' if n != 1 else ''} match more than one `when` condition of derived.{variable.name}; "
+                "make the conditions exclusive",
+                file=self.file, column=variable.name, count=n, examples=tuple(examples),
             ))
         return problems
 

@@ -127,6 +127,12 @@ class Variable:
     item_waves: dict[str, tuple[str, ...]] = field(default_factory=dict)
     column: dict[str, str] = field(default_factory=dict)
     recode: dict[str, dict[Code, Code]] = field(default_factory=dict)
+    when: dict[Code, Condition] = field(default_factory=dict)
+
+    @property
+    def derived(self) -> bool:
+        """Whether the variable is derived (`[derived.<name>]`): computed at staging, in no file."""
+        return bool(self.when)
 
     def asked_in(self, wave_id: str, item: str | None = None) -> bool:
         """Whether the wave asked the variable (and, for a multi set, the item)."""
@@ -135,8 +141,9 @@ class Variable:
         return item is None or item not in self.item_waves or wave_id in self.item_waves[item]
 
     def wave_columns(self, wave_id: str) -> tuple[str, ...]:
-        """The columns this variable reads in a wave's file (none in a wave that did not ask it)."""
-        if self.waves is not None and wave_id not in self.waves:
+        """The columns this variable reads in a wave's file (none in a wave that did not ask it,
+        none for a derived variable)."""
+        if self.derived or (self.waves is not None and wave_id not in self.waves):
             return ()
         return tuple(c for c in self.columns if self.asked_in(wave_id, c if self.type == "multi" else None))
 
@@ -222,7 +229,10 @@ class Study:
 # Loading and validation
 # ---------------------------------------------------------------------------------------------
 
-_TOP_KEYS = ("title", "notes", "respondent_id", "database", "waves", "design", "variables", "weighting", "variance")
+_TOP_KEYS = (
+    "title", "notes", "respondent_id", "database", "waves", "design", "variables", "derived", "weighting", "variance",
+)
+_DERIVED_KEYS = ("label", "type", "values", "nets", "when")
 _WAVE_KEYS = ("label", "file", "fieldwork")
 _DESIGN_KEYS = (
     "kind",
@@ -422,6 +432,7 @@ class _Checker:
         waves = self.waves(data.get("waves"), spec_path.parent) if "waves" in data else ()
         variables = self.variables(data.get("variables", {}))
         variables = self.routing(data.get("variables", {}), variables, tuple(w.id for w in waves))
+        variables = {**variables, **self.derived(data.get("derived", {}), variables)}
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
@@ -620,6 +631,42 @@ class _Checker:
             out[name] = replace(
                 variable, asked_if=condition, waves=waves, item_waves=item_waves, column=column, recode=recode
             )
+        return out
+
+    def derived(self, raw: object, variables: dict[str, Variable]) -> dict[str, Variable]:
+        """`[derived.<name>]`: single-choice variables whose code is the first `when` condition that holds."""
+        if not isinstance(raw, dict):
+            self.add("wrong-type", "derived", "must be a table of derived variables ([derived.<name>] blocks)")
+            return {}
+        columns = _condition_columns(variables)
+        out: dict[str, Variable] = {}
+        for name, table in raw.items():
+            key = f"derived.{name}"
+            if not isinstance(table, dict):
+                self.add("wrong-type", key, "must be a table with label, type, values and when")
+                continue
+            if name in variables:
+                self.add("duplicate-column", key, f"'{name}' is already a codebook variable (variables.{name})")
+                continue
+            self.keys(table, key, _DERIVED_KEYS, ("label", "type", "values", "when"))
+            if table.get("type", "single") != "single":
+                self.add("bad-value", f"{key}.type", "a derived variable is single-choice (type = \"single\")",
+                         value=table.get("type"))
+                continue
+            variable = self.variable(name, {k: v for k, v in table.items() if k in _DERIVED_KEYS[:4]}, key)
+            when = self.typed(table, key, "when", dict)
+            if variable is None or when is None:
+                continue
+            conditions: dict[Code, Condition] = {}
+            for code_key, text in when.items():
+                code = self.code_list([code_key], f"{key}.when.{code_key}", variable, variable.valid_codes)
+                condition = self.condition(when, f"{key}.when", columns, variable, name=code_key)
+                if code and condition is not None:
+                    conditions[code[0]] = condition
+            if not when:
+                self.add("bad-value", f"{key}.when", "give a condition for at least one code")
+            if conditions:
+                out[name] = replace(variable, when=conditions)
         return out
 
     def wave_columns(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> dict[str, str]:

@@ -220,7 +220,8 @@ def _insert_rows(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> No
     Columns of variables the wave did not ask are left NULL (not in the file).
     """
     view, file_columns, _ = wave_view(con, study, wave.id, RAW_TABLE, list(con.table(RAW_TABLE).columns))
-    present = set(file_columns) & (set(study.design.columns) | set(wave_sources(study, wave.id)))
+    derived = {v.name for v in study.variables.values() if v.derived}
+    present = set(file_columns) & (set(study.design.columns) | set(wave_sources(study, wave.id)) | derived)
     columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items() if name in present]
     con.execute(
         sql("stage_insert_responses.sql", raw=view, id=study.respondent_id, columns=columns),
