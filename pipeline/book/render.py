@@ -274,6 +274,12 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     kind = row["row_kind"]
     if kind == "base":
         return Cell(text=f"{row['count']:,}")
+    if kind == "balance":
+        if weighted and row.get("estimate") is not None:
+            interval = (f"{_balance_text(row['ci_low'])} to {_balance_text(row['ci_high'])}"
+                        if row["ci_low"] is not None else None)
+            return Cell(text=_balance_text(row["estimate"]), base_flag=flag, interval=interval, deff=_deff_text(row))
+        return Cell(text="–" if row["value"] is None else _balance_text(row["value"]), base_flag=flag)
     if weighted and row.get("estimate") is not None:
         if kind in ("missing", "not-asked", "excluded"):
             return Cell(text=_percent_text(row["estimate"]), detail=f"{row['count']:,}", base_flag=flag)
@@ -296,6 +302,12 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if row["percent"] is None:
         return Cell(text="–", detail=f"{row['count']:,}", base_flag=flag)
     return Cell(text=_percent_text(row["percent"]), detail=f"{row['count']:,}", base_flag=flag)
+
+
+def _balance_text(points: float) -> str:
+    """A balance score in points, rounded half up, with its sign ("+12", "-3", "0")."""
+    whole = _whole(points)
+    return f"{whole:+d}" if whole else "0"
 
 
 def _percent_interval(low: float, high: float) -> str:
