@@ -6,8 +6,8 @@ from __future__ import annotations
 from pathlib import Path
 
 from conftest import TRACKER_SPEC
-from pipeline.book import _status
-from pipeline.book_weighting import variance_lines
+from pipeline.book.render import _status
+from pipeline.book.weighting import variance_lines
 from pipeline.estimation.options import VarianceOptions
 from pipeline.staging.spec import load_spec
 

@@ -9,7 +9,7 @@ import polars as pl
 import pytest
 
 from conftest import TRACKER_SPEC
-from pipeline.book import _design_lines
+from pipeline.book.render import _design_lines
 from pipeline.errors import SpecError
 from pipeline.estimation import estimate
 from pipeline.staging.spec import load_spec

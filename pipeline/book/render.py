@@ -128,7 +128,7 @@ class BookContext:
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
     version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book_weighting`), None for an unweighted book. status: the one-line heading of
+    meet (`pipeline.book.weighting`), None for an unweighted book. status: the one-line heading of
     what the figures are (weighted by the weighting steps, by the design weights only, or unweighted).
     """
 
