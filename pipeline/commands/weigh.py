@@ -14,6 +14,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--wave", action="append", dest="waves", metavar="ID",
                         help="a wave to weigh (repeatable; default: every staged wave)")
     parser.add_argument("--export", metavar="FILE", help="also write respondent_id, wave, weight to FILE (.csv or .parquet)")
+    parser.add_argument(
+        "--replicates",
+        action="store_true",
+        help="with --export and one --wave: add every re-weighted replicate weight (replicate_1 ... replicate_R) "
+        "of the [variance] replicate method, and write its method, multipliers, centre and df to "
+        "FILE.replicates.json, so that `wavebook estimate --variance supplied` reproduces the book's SEs",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -24,7 +31,8 @@ def run(args: argparse.Namespace) -> int:
     from pipeline.staging.database import open_database, staged_waves
     from pipeline.progress import step
     from pipeline.staging.spec import load_spec
-    from pipeline.weighting.store import export_weights, weigh_wave
+    from pipeline.errors import Problem, SpecError
+    from pipeline.weighting.store import export_replicates, export_weights, weigh_wave
 
     study = load_spec(args.spec)
     con = open_database(study)
@@ -35,7 +43,15 @@ def run(args: argparse.Namespace) -> int:
             with step(f"weighing {wave_id}", quiet=args.quiet):
                 report = weigh_wave(study, wave_id, con=con)
             print(report.render())
-        if args.export:
+        if args.replicates:
+            if not args.export or len(waves) != 1:
+                raise SpecError("--replicates needs --export FILE and exactly one wave (--wave ID)", [Problem(
+                    rule="bad-option", message="replicate weights are exported one wave at a time, with --export")])
+            path = Path(args.export)
+            count = export_replicates(study, waves[0], con=con, path=path)
+            print(f"wrote {count:,} replicate weights per respondent to {path} (variance recipe in "
+                  f"{path.name}.replicates.json)")
+        elif args.export:
             rows = export_weights(con, waves, Path(args.export))
             print(f"wrote {rows:,} weights to {args.export}")
     finally:
