@@ -23,9 +23,10 @@ from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
+from pipeline.outputs import check_output, file_sha256, study_inputs
 from pipeline.staging.database import load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
-from pipeline.staging.stage import file_sha256, stage_wave
+from pipeline.staging.stage import stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -35,6 +36,19 @@ from pipeline.weighting.store import fit_wave, store
 def default_book_path(study: Study) -> Path:
     """`<spec folder>/book/<spec stem>.html`."""
     return study.path.parent / "book" / f"{study.path.stem}.html"
+
+
+def book_path(study: Study, out: str | Path | None, *, force: bool = False) -> Path:
+    """Where the book goes: `out` (an existing folder gets `<folder>/<spec stem>.html`) or
+    `default_book_path`; checked by `pipeline.outputs.check_output` against every input of the
+    study before any work is done (WavebookError output-is-input / output-exists / output-not-a-file)."""
+    if out is None:
+        path = default_book_path(study)
+    else:
+        path = Path(out)
+        if path.is_dir():
+            path = path / f"{study.path.stem}.html"
+    return check_output(path, study_inputs(study), force=force, option="--out")
 
 
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
@@ -107,17 +121,23 @@ def weigh_and_estimate(
 
 
 def run_study(
-    spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    restage: bool = False,
+    quiet: bool = False,
+    force: bool = False,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), and renders the book to `out` (default `default_book_path`).
-    Raises SpecError / DataError with every problem found.
+    (`weigh_and_estimate`), and renders the book to `book_path(study, out, force=force)`, which is
+    checked first. Raises SpecError / DataError with every problem found.
     """
     study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
     options = variance_options(study)
     for wave_id in waves_to_stage(study, restage=restage):
         report = stage_wave(study, wave_id, quiet=quiet)
@@ -133,7 +153,6 @@ def run_study(
             con.close()
     cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
-    out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
