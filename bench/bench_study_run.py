@@ -142,7 +142,8 @@ def _estimates_and_book(spec_path: str, memory_budget: str | None, results: mult
     from pipeline.memory import parse_size
 
     budget = {} if memory_budget is None else {"memory_budget": parse_size(memory_budget)}
-    cells, reports = runner.weigh_and_estimate(study, cells, options, quiet=True, timings=timings, **budget)
+    cells, reports, adjustments = runner.weigh_and_estimate(study, cells, options, quiet=True, timings=timings,
+                                                            **budget)
     figures = {"estimates": (timings["estimates"], _peak_mib())}
     start = time.perf_counter()
     out = runner.default_book_path(study)

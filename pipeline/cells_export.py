@@ -13,8 +13,9 @@ Columns, one row per (wave, table, row, banner, column, statistic):
   row, row_label            the row's position in its table and its label
   banner, column,           the banner and its column; "total" / "total" / "Total" for toplines
   column_label
-  statistic                 "percent" (a share 0-1), "mean", "median", "minimum", "maximum" or
-                            "count" (the unweighted respondents of a row: a base row, the count
+  statistic                 "percent" (a share 0-1), "mean", "median", "minimum", "maximum",
+                            "balance" (a share of one side minus a share of the other, -1 to 1)
+                            or "count" (the unweighted respondents of a row: a base row, the count
                             shown beneath a percentage, the number of answers of a statistic)
   estimate, se,             the figure; in a weighted book the design-based estimate with its
   ci_low, ci_high,          standard error, interval, degrees of freedom and design effect
@@ -58,7 +59,7 @@ EXPORT_SCHEMA: dict[str, pl.DataType] = {
 }
 TOTAL = "total"
 TOTAL_LABEL = "Total"
-PERCENT_KINDS = ("category", "net", "item", "missing")
+PERCENT_KINDS = ("category", "excluded", "net", "item", "missing", "not-asked")
 STATISTIC_NAMES = {"n": "count", "mean": "mean", "median": "median", "min": "minimum", "max": "maximum"}
 ESTIMATED = ("estimate", "se", "ci_low", "ci_high", "df", "deff", "n_eff", "weighted_base", "set_by_weighting")
 # Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases);
@@ -126,7 +127,15 @@ def tidy_cells(cells: pl.DataFrame) -> pl.DataFrame:
         pl.col("base").alias("base_unweighted"), pl.col("weighted_base").alias("base_weighted"),
         pl.col("n_eff").alias("base_effective"), flag_base.alias("flags"),
     )
-    out = pl.concat([percent, counts, statistics], how="vertical_relaxed").sort("__order", "__part")
+    balance = c.filter(kind == "balance").select(
+        "__order", pl.lit(0).alias("__part"), *common, pl.lit("balance").alias("statistic"),
+        (pl.when(weighted).then(pl.col("estimate")).otherwise(pl.col("value")) / 100).alias("estimate"),
+        *[pl.when(weighted).then(pl.col(k) / 100).alias(k) for k in ("se", "ci_low", "ci_high")],
+        *[pl.when(weighted).then(pl.col(k)).alias(k) for k in ("df", "deff")],
+        pl.col("base").alias("base_unweighted"), pl.col("weighted_base").alias("base_weighted"),
+        pl.col("n_eff").alias("base_effective"), flag_base.alias("flags"),
+    )
+    out = pl.concat([percent, counts, statistics, balance], how="vertical_relaxed").sort("__order", "__part")
     return out.with_columns(pl.col("flags").fill_null("")).select(
         [pl.col(name).cast(dtype) for name, dtype in EXPORT_SCHEMA.items()]
     )

@@ -29,9 +29,11 @@ from pipeline.cells_export import tidy_cells, write_cells
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.memory import DEFAULT_BUDGET, variable_batches
-from pipeline.staging.database import load_responses, open_database, staged_waves
+from pipeline.outputs import check_output, file_sha256, study_inputs
+from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
-from pipeline.staging.stage import file_sha256, stage_wave
+from pipeline.staging.stage import stage_wave
+from pipeline.staging.wave_columns import wave_signature
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, RememberedReplay, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -43,11 +45,31 @@ def default_book_path(study: Study) -> Path:
     return study.path.parent / "book" / f"{study.path.stem}.html"
 
 
+def book_path(study: Study, out: str | Path | None, *, force: bool = False) -> Path:
+    """Where the book goes: `out` (an existing folder gets `<folder>/<spec stem>.html`) or
+    `default_book_path`; checked by `pipeline.outputs.check_output` against every input of the
+    study before any work is done (WavebookError output-is-input / output-exists / output-not-a-file)."""
+    if out is None:
+        path = default_book_path(study)
+    else:
+        path = Path(out)
+        if path.is_dir():
+            path = path / f"{study.path.stem}.html"
+    return check_output(path, study_inputs(study), force=force, option="--out")
+
+
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
-    """Ids of the waves to (re)stage, in spec order.
+    """Ids of the waves to (re)stage, in spec order (see `stage_reasons`)."""
+    return list(stage_reasons(study, restage=restage))
+
+
+def stage_reasons(study: Study, *, restage: bool = False) -> dict[str, str]:
+    """The waves to (re)stage, in spec order, each with why.
 
     A wave is staged when `restage` is set, when it is not in the database's `waves` table yet,
-    or when the SHA-256 of its raw file differs from the one recorded at its last staging.
+    when the SHA-256 of its raw file differs from the one recorded at its last staging, or when
+    the spec no longer says what its staged rows hold (its column set, file names, types, codes
+    or recodes changed: `pipeline.staging.wave_columns.wave_signature`).
     Raises DataError listing every wave whose raw file is missing.
     """
     missing = [
@@ -57,14 +79,26 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     ]
     if missing:
         raise DataError(f"cannot run {study.path}: wave files are missing", missing)
-    if restage or not study.database_path.is_file():
-        return [w.id for w in study.waves]
+    if restage:
+        return {w.id: "restage requested" for w in study.waves}
+    if not study.database_path.is_file():
+        return {w.id: "not staged yet" for w in study.waves}
     con = open_database(study, read_only=True)
     try:
-        recorded = dict(staged_waves(con).select("wave", "sha256").iter_rows())
+        recorded = {wave: (sha, signature) for wave, sha, signature in
+                    staged_waves(con).select("wave", "sha256", "spec_signature").iter_rows()}
     finally:
         con.close()
-    return [w.id for w in study.waves if recorded.get(w.id) != file_sha256(w.file)]
+    types = column_types(study)
+    reasons: dict[str, str] = {}
+    for w in study.waves:
+        if w.id not in recorded:
+            reasons[w.id] = "not staged yet"
+        elif recorded[w.id][0] != file_sha256(w.file):
+            reasons[w.id] = f"its file {w.file.name} changed"
+        elif recorded[w.id][1] != wave_signature(study, w.id, types):
+            reasons[w.id] = "the spec changed what it holds (columns, names, codes or recodes)"
+    return reasons
 
 
 def variance_options(study: Study) -> VarianceOptions:
@@ -83,13 +117,14 @@ def weigh_and_estimate(
     quiet: bool = False,
     timings: dict[str, float] | None = None,
     memory_budget: int = DEFAULT_BUDGET,
-) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
+) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
-    (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
-    stderr. Each wave's rows are read from the database once: the weighting columns first
-    (`weighting_columns`, kept for the whole wave), then the answer columns in the batches of
+    (wave, variable, row_order), the weighting report of each wave, and for replicate methods
+    each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting
+    warnings go to stderr. Each wave's rows are read from the database once: the weighting columns
+    first (`weighting_columns`, kept for the whole wave), then the answer columns in the batches of
     variables that fit `memory_budget` bytes (`pipeline.memory.variable_batches`), each batch
     estimated in one grouped pass over the wave's respondents.
     timings: when given, receives the seconds spent weighting ("weigh") and estimating
@@ -100,6 +135,7 @@ def weigh_and_estimate(
     clock.setdefault("estimates", 0.0)
     wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
     reports: dict[str, WeightingReport] = {}
+    adjustments: dict[str, dict[str, int]] = {}
     estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
     con = open_database(study)
     try:
@@ -129,10 +165,12 @@ def weigh_and_estimate(
             clock["estimates"] += time.perf_counter() - start
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
+            if options.method != "taylor":
+                adjustments[wave_id] = recipe.replicate_adjustments()
     finally:
         con.close()
     joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")
-    return joined, reports
+    return joined, reports, adjustments
 
 
 def _with_columns(
@@ -141,12 +179,13 @@ def _with_columns(
     """`held` (the wave's weighting columns) beside the columns of the variables `names` it lacks,
     read from the database in the same row order (checked on the respondent ids)."""
     wanted = [c for n in names for c in study.variables[n].columns if c not in held.columns]
+    # (routing flags come with every read: `load_responses` adds them)
     if not wanted:
         return held
     extra = load_responses(con, study, [wave_id], columns=list(dict.fromkeys(wanted)))
     if not extra["respondent_id"].equals(held["respondent_id"]):
         raise AssertionError(f"two reads of wave {wave_id} returned its respondents in different orders")
-    return held.hstack(extra.drop("wave", "respondent_id"))
+    return held.hstack(extra.drop(c for c in extra.columns if c in held.columns))
 
 
 def run_study(
@@ -155,6 +194,7 @@ def run_study(
     out: str | Path | None = None,
     restage: bool = False,
     quiet: bool = False,
+    force: bool = False,
     memory_budget: int = DEFAULT_BUDGET,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
@@ -162,13 +202,17 @@ def run_study(
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`, within `memory_budget` bytes of respondent-level work), writes the tidy cells export beside the book and renders the book to
-    `out` (default `default_book_path`).
-    Raises SpecError / DataError with every problem found.
+    (`weigh_and_estimate`, within `memory_budget` bytes of respondent-level work), writes the tidy
+    cells export beside the book and renders the book to `book_path(study, out, force=force)`,
+    which is checked first. Raises SpecError / DataError with every problem found.
     """
     study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
     options = variance_options(study)
-    for wave_id in waves_to_stage(study, restage=restage):
+    for wave_id, reason in stage_reasons(study, restage=restage).items():
+        if reason.startswith("the spec changed"):
+            print(f"wave {wave_id}: {reason} since it was staged; restaging it from {study.wave(wave_id).file}",
+                  file=sys.stderr)
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
             print(report.summary(), file=sys.stderr)
@@ -180,9 +224,8 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet, memory_budget=memory_budget)
+    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet, memory_budget=memory_budget)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
-    out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):
         write_cells(tidy_cells(cells), out_path, study.path.stem)
         return render_book(
@@ -190,6 +233,8 @@ def run_study(
             cells,
             out_path=out_path,
             weighting=weighting_section(study, reports),
-            variance=variance_lines(options, study, calibrated=calibrated),
+            variance=variance_lines(options, study, calibrated=calibrated, replicate_adjustments=adjustments,
+                                    replicates={w: options.replicates or 500 for w in adjustments}
+                                    if options.method == "bootstrap" else None),
             level=options.level,
         )

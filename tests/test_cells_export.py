@@ -82,7 +82,7 @@ def test_percentages_are_shares_and_flags_are_listed(demo: tuple[Path, Path]) ->
     export = _export(demo[0])
     percent = export.filter(pl.col("statistic") == "percent")
     assert percent["estimate"].min() >= 0 and percent["estimate"].max() <= 1
-    assert set(export["statistic"].unique()) == {"percent", "mean", "median", "minimum", "maximum", "count"}
+    assert set(export["statistic"].unique()) == {"percent", "mean", "median", "minimum", "maximum", "count", "balance"}
     assert set(export["banner"].unique()) == {"total"} and set(export["column"].unique()) == {"total"}
     flags = {f for text in export["flags"].to_list() for f in text.split(";") if f}
     assert "set-by-weighting" in flags
@@ -173,15 +173,17 @@ def test_a_sample_of_rendered_cells_shows_the_export_figures(demo: tuple[Path, P
     waves = [w.id for w in study.waves]
     shown = [(v, label, w, cell) for v, rows in tables.items() for label, cells in rows
              for w, cell in zip(waves, cells, strict=True)]
-    checked = 0
+    checked = intervals = 0
     for variable, label, wave, cell in random.Random(20261202).sample(shown, 120):
         share = figures.get((wave, variable, label, "percent"))
         if share is not None:
             assert cell["figure"] == _percent(share["estimate"]), (variable, label, wave)
             # the count is shown as "n 496" (an abbreviation "n" before the number)
             assert cell["count"].removeprefix("n") == f"{_whole(figures[(wave, variable, label, 'count')]['estimate']):,}"
-            if share["ci_low"] is not None and "set-by-weighting" not in share["flags"] and share["ci_high"] >= 0.0195:
+            # intervals are shown for percentages of answers (not for "No answer" / "Not asked" rows)
+            if "interval" in cell and "set-by-weighting" not in share["flags"] and share["ci_high"] >= 0.0195:
                 assert cell["interval"] == f"{_whole(100 * share['ci_low'])}–{_whole(100 * share['ci_high'])}"
+                intervals += 1
             checked += 1
             continue
         for statistic in ("mean", "median"):
@@ -189,4 +191,4 @@ def test_a_sample_of_rendered_cells_shows_the_export_figures(demo: tuple[Path, P
                 assert cell["figure"] == f"{row['estimate']:,.2f}", (variable, label, wave)
                 assert cell["interval"] == f"{row['ci_low']:,.2f}–{row['ci_high']:,.2f}"
                 checked += 1
-    assert checked >= 60
+    assert checked >= 60 and intervals >= 30

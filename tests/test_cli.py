@@ -101,6 +101,15 @@ def test_demo_builds_a_book_with_one_table_per_variable(demo_run: tuple[Path, Pa
     assert "script" not in parser.tags
 
 
+def test_demo_book_shows_not_asked_rows_and_a_balance_score(demo_run: tuple[Path, Path]) -> None:
+    """The demo routes its spend question (asked_if) and scores a recommendation balance."""
+    _, book = demo_run
+    html = book.read_text(encoding="utf-8")
+    assert html.count('<tr class="row-not-asked">') == 1  # spend
+    assert html.count('<tr class="row-balance">') == 1  # recommend
+    assert "Recommend balance (9-10 minus 0-6)" in html
+
+
 def test_demo_copies_the_study_but_not_run_artefacts(demo_run: tuple[Path, Path]) -> None:
     from pipeline.resources import resource_dir
 
@@ -108,7 +117,8 @@ def test_demo_copies_the_study_but_not_run_artefacts(demo_run: tuple[Path, Path]
     source = resource_dir("sample_data")
     for name in ("study.toml", "population_margins.csv", "population_truth.csv", "generate_demo.py"):
         assert (folder / name).read_bytes() == (source / name).read_bytes()
-    assert sorted(p.name for p in (folder / "waves").iterdir()) == sorted(p.name for p in (source / "waves").iterdir())
+    copied = sorted(p.name for p in (folder / "waves").iterdir() if p.name != ".wavebook-outputs")
+    assert copied == sorted(p.name for p in (source / "waves").iterdir())
     assert (folder / ".wavebook-demo").is_file()
 
 

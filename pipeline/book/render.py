@@ -3,7 +3,7 @@
 `render_book(study, cells, out_path=...)` turns the cells (see `pipeline.topline` for their
 columns) into a `BookContext` (the documented object every template receives), renders
 `templates/book.html.j2` with autoescaping forced on and strict undefined variables, and writes
-the page atomically (a temporary file in the same folder, then `os.replace`).
+the page atomically through `pipeline.outputs` (a temporary file in the same folder, then a rename).
 
 When the cells carry weighted estimates (the columns `estimate`, `ci_low`, `ci_high` added to
 the same rows by the estimation stage), percentages, means and medians show the weighted
@@ -18,9 +18,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-import os
 import re
-import tempfile
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -31,6 +29,7 @@ import polars as pl
 from pipeline import __version__
 from pipeline.cells_export import LOW_BASE, PERCENT_KINDS, STATISTIC_NAMES, VERY_LOW_BASE, tidy_cells
 from pipeline.errors import WavebookError
+from pipeline.outputs import write_text_output
 from pipeline.resources import resource_dir
 from pipeline.staging.spec import Design, Study, Variable, Wave
 
@@ -47,6 +46,7 @@ REQUIRED_COLUMNS = (
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
 ESTIMATED_STATISTICS = ("mean", "median")
 SET_BY_WEIGHTING = "set by weighting"
+NOT_ASKED_IN_WAVE = "not asked in this wave"
 SET_BY_WEIGHTING_NOTE = (
     "Percentages marked 'set by weighting' equal the population figures the weights were "
     "calibrated to; they carry no sampling error of their own."
@@ -125,7 +125,8 @@ class BookContext:
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
     version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book.weighting`), None for an unweighted book.
+    meet (`pipeline.book.weighting`), None for an unweighted book. status: the one-line heading of
+    what the figures are (weighted by the weighting steps, by the design weights only, or unweighted).
     """
 
     title: str
@@ -141,6 +142,7 @@ class BookContext:
     generated_at: str
     version: str
     weighting: WeightingSection | None = None
+    status: str = "Unweighted counts and percentages"
 
 
 def render_book(
@@ -154,16 +156,15 @@ def render_book(
 ) -> Path:
     """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
 
-    The page is rendered completely in memory first; only then is it written to a temporary
-    file in the destination folder and moved over `out_path` with `os.replace` (atomic on one
-    file system), so a failure never leaves a half-written or missing book. Returns `out_path`.
+    The page is rendered completely in memory first; only then is it written through
+    `pipeline.outputs.write_text_output` (a temporary file in the destination folder moved over
+    `out_path`, recorded as wavebook's own output), so a failure never leaves a half-written or
+    missing book. The caller checks `out_path` first (`pipeline.outputs.check_output`). Returns
+    `out_path`.
     """
     context = build_context(study, cells, weighting=weighting, variance=variance, level=level)
     html = _environment().get_template("book.html.j2").render(book=context)
-    out_path = Path(out_path)
-    out_path.parent.mkdir(parents=True, exist_ok=True)
-    _write_atomically(out_path, html)
-    return out_path
+    return write_text_output(Path(out_path), html)
 
 
 def build_context(
@@ -184,7 +185,7 @@ def build_context(
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
     weighted = all(c in cells.columns for c in ESTIMATE_COLUMNS) and cells["estimate"].is_not_null().any()
     respondents = dict(
-        cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
+        cells.filter(pl.col("row_kind").is_in(["missing", "not-asked"])).group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
     figures = _figures(tidy_cells(cells))
@@ -197,6 +198,7 @@ def build_context(
         title=study.title,
         notes=tuple(study.notes),
         weighted=weighted,
+        status=_status(study, weighted=weighted),
         waves=waves,
         design=_design_lines(study.design),
         methodology=_methodology(weighted=weighted) + (variance if weighted else ()),
@@ -224,31 +226,6 @@ def _environment() -> jinja2.Environment:
     return env
 
 
-def _write_atomically(path: Path, text: str) -> None:
-    """Write `text` to a temporary file beside `path`, then replace `path` with it.
-
-    The temporary file gets the permissions of a normally created file (0o666 minus the umask).
-    """
-    handle, temp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            out.write(text)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(temp_name, 0o666 & ~_umask())
-        os.replace(temp_name, path)
-    except BaseException:
-        Path(temp_name).unlink(missing_ok=True)
-        raise
-
-
-def _umask() -> int:
-    """The process's file-creation mask (read by setting it and restoring it at once)."""
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
 def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:
     """A wave with its fieldwork dates as text ("2 Mar 2026 to 21 Mar 2026")."""
     dates = [d for d in (wave.fieldwork_start, wave.fieldwork_end) if d is not None]
@@ -273,12 +250,21 @@ def _section(
     *,
     weighted: bool,
 ) -> Section:
-    """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no data)."""
+    """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no
+    data; NOT_ASKED_IN_WAVE where the wave did not ask the variable or the multi item)."""
     by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
-    layout = cells.unique("row_order", keep="first").sort("row_order").select("row_order", "row_kind", "row_label")
+    layout = cells.unique("row_order", keep="first").sort("row_order").select(
+        "row_order", "row_kind", "row_label", "code"
+    )
     rows = []
-    for order, kind, row_label in layout.iter_rows():
-        row_cells = tuple(_cell(by_key.get((order, w.id)), figures, weighted=weighted) for w in waves)
+    for order, kind, row_label, code in layout.iter_rows():
+        item = code if kind == "item" else None
+        row_cells = tuple(
+            Cell(text=NOT_ASKED_IN_WAVE)
+            if (order, w.id) not in by_key and not variable.asked_in(w.id, item)
+            else _cell(by_key.get((order, w.id)), figures, weighted=weighted)
+            for w in waves
+        )
         rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
     notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
     if any(c.interval == SET_BY_WEIGHTING for r in rows for c in r.cells):
@@ -309,12 +295,20 @@ def _cell(row: dict | None, figures: _Figures, *, weighted: bool) -> Cell:
     detail = f"{_whole(count['estimate']):,}" if count is not None and count["estimate"] is not None else None
     if kind == "base":
         return Cell(text=detail or "–")
+    if kind == "balance":
+        score = figures.get((*key, "balance"))
+        if score is None or score["estimate"] is None:
+            return Cell(text="–", base_flag=flag)
+        low, high = score["ci_low"], score["ci_high"]
+        interval = f"{_balance_text(100 * low)} to {_balance_text(100 * high)}" if low is not None else None
+        return Cell(text=_balance_text(100 * score["estimate"]), base_flag=flag, interval=interval,
+                    deff=_deff_text(score))
     if kind in PERCENT_KINDS:
         share = figures[(*key, "percent")]
         if share["estimate"] is None:
             return Cell(text="–", detail=detail, base_flag=flag)
         text = _percent_text(100 * share["estimate"])
-        if not (weighted and row.get("estimate") is not None) or kind == "missing":
+        if not (weighted and row.get("estimate") is not None) or kind in ("missing", "not-asked", "excluded"):
             return Cell(text=text, detail=detail, base_flag=flag)
         if "set-by-weighting" in share["flags"].split(";"):
             return Cell(text=text, detail=detail, base_flag=flag, interval=SET_BY_WEIGHTING)
@@ -331,6 +325,12 @@ def _cell(row: dict | None, figures: _Figures, *, weighted: bool) -> Cell:
         return Cell(text=f"{value:,.2f}", base_flag=flag, interval=interval, deff=_deff_text(statistic))
     text = f"{value:,.0f}" if row.get("code") == "n" else f"{value:,.2f}"
     return Cell(text=text, base_flag=flag)
+
+
+def _balance_text(points: float) -> str:
+    """A balance score in points, rounded half up, with its sign ("+12", "-3", "0")."""
+    whole = _whole(points)
+    return f"{whole:+d}" if whole else "0"
 
 
 def _percent_interval(low: float, high: float) -> str:
@@ -415,6 +415,17 @@ MEDIAN_WEIGHTED = (
     "at or below it. Medians carry no design effect."
 )
 MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
+
+
+def _status(study: Study, *, weighted: bool) -> str:
+    """The book's heading line: only a study with weighting steps is headed as weighted estimates."""
+    if not weighted:
+        return "Unweighted counts and percentages"
+    if study.weighting:
+        return "Weighted estimates with confidence intervals"
+    if study.design.base_weight or study.design.selection_probability:
+        return "Estimates with design weights (no weighting adjustments) and confidence intervals"
+    return "Estimates with equal weights and confidence intervals"
 
 
 def _methodology(*, weighted: bool) -> tuple[str, ...]:

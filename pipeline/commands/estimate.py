@@ -12,6 +12,8 @@ if TYPE_CHECKING:
 
     import polars as pl
 
+    from pipeline.errors import Problem
+
 HELP = "estimate means, totals, proportions, ratios or quantiles with design-based standard errors"
 EXAMPLE = "wavebook estimate wave3.csv --weight wt --strata region --psu area --proportion q1 --by age_band"
 # the same choices as pipeline.estimation (design.SINGLE_PSU_POLICIES, api.VARIANCE_METHODS; kept literal so
@@ -100,14 +102,41 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="Taylor linearization (default) or a replicate method",
     )
     var.add_argument(
-        "--replicate-cols", metavar="PATTERN", help="regular expression matching whole replicate-weight column names"
+        "--replicate-cols",
+        metavar="PATTERN",
+        help="with --variance supplied: regular expression matching whole replicate-weight column names (it must "
+        "not match the --weight column)",
     )
     var.add_argument(
-        "--replicate-multiplier", type=float, metavar="X", help="variance multiplier of the replicate weights"
+        "--replicate-method",
+        choices=("sdr", "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap"),
+        metavar="METHOD",
+        help="with --variance supplied: how the replicate weights were made (default sdr): sdr, jackknife, "
+        "stratified-jackknife, brr, fay or bootstrap; sets the default multiplier (Wolter 2007): sdr 4/R, "
+        "jackknife (R-1)/R, brr 1/R, fay 1/(R (1-RHO)^2), bootstrap 1/R (stratified-jackknife: give "
+        "--replicate-multiplier)",
     )
-    var.add_argument("--fay", type=float, default=0.0, metavar="RHO", help="Fay coefficient for BRR (default 0)")
-    var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
-    var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
+    var.add_argument(
+        "--replicate-df",
+        type=int,
+        metavar="N",
+        help="with --variance supplied: degrees of freedom of the replicate weights (default R - 1; brr and fay "
+        "need it: the number of half-sample pairs)",
+    )
+    var.add_argument(
+        "--replicate-multiplier",
+        type=float,
+        metavar="X",
+        help="variance multiplier of the replicate weights (default: that of the method)",
+    )
+    var.add_argument(
+        "--fay", type=float, default=0.0, metavar="RHO",
+        help="Fay coefficient, for --variance fay or --replicate-method fay only (default 0: none)",
+    )
+    var.add_argument(
+        "--replicates", type=int, metavar="N", help="number of bootstrap replicates (--variance bootstrap only; default 500)"
+    )
+    var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed (--variance bootstrap only; default 0)")
     parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     parser.add_argument(
         "--interval",
@@ -123,9 +152,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     """Read DATA, estimate, print one row per estimate (CSV or a JSON array)."""
     import json
+    import sys
     from pathlib import Path
 
-    from pipeline.errors import Problem, SpecError
+    from pipeline.errors import Problem, UsageError
     from pipeline.estimation.api import estimate
     from pipeline.estimation.result import COLUMNS
     from pipeline.progress import step
@@ -150,10 +180,12 @@ def run(args: argparse.Namespace) -> int:
     if collapse and args.single_psu != "collapse":
         problems.append(Problem(rule="bad-option", message="--collapse-with needs --single-psu collapse"))
     if problems:
-        raise SpecError("the estimate options are invalid", problems)
+        raise UsageError("the estimate options are invalid", problems)
     path = Path(args.data)
     with step(f"reading {path.name}", quiet=args.quiet):
         frame = _read(path)
+    for warning in weight_warnings(frame, args.weight, source=str(path)):
+        print(warning.render(), file=sys.stderr)
     with step("estimating", quiet=args.quiet):
         result = estimate(
             frame,
@@ -171,6 +203,8 @@ def run(args: argparse.Namespace) -> int:
             by=args.by,
             variance=args.variance,
             replicate_cols=args.replicate_cols,
+            replicate_method=args.replicate_method,
+            replicate_df=args.replicate_df,
             replicate_multiplier=args.replicate_multiplier,
             fay=args.fay,
             replicates=args.replicates,
@@ -201,6 +235,44 @@ def _column_or_number(value: str | None) -> str | float | None:
         return value
 
 
+DOMINANT_SHARE = 0.5  # one weight holding more than half the total: common practice, no source
+
+
+def weight_warnings(frame: pl.DataFrame, weight: str, *, source: str) -> list[Problem]:
+    """DataError (all-weights-zero) when every weight is zero; a warning (dominant-weight) with the
+    Kish effective n = (sum w)^2 / sum w^2 (Kish 1965, Survey Sampling, section 11.7; from memory) when one
+    weight holds more than DOMINANT_SHARE of the total. Other weight problems (missing, negative,
+    not numeric) are left to the estimator's own checks."""
+    import polars as pl
+
+    from pipeline.errors import DataError, Problem
+
+    if weight not in frame.columns or not frame[weight].dtype.is_numeric() or frame.height == 0:
+        return []
+    w = frame[weight].cast(pl.Float64).drop_nulls()
+    if w.len() and (w == 0).all():
+        raise DataError(
+            f"{source}: every weight is zero",
+            [Problem("all-weights-zero", "every value of the weight column is 0; nothing can be estimated",
+                     file=source, column=weight, value="0", count=w.len())],
+        )
+    total = float(w.sum())
+    if not total > 0 or w.len() < 2 or float(w.max()) <= DOMINANT_SHARE * total:
+        return []
+    n_eff = total**2 / float((w * w).sum())
+    return [
+        Problem(
+            "dominant-weight",
+            f"one weight holds {float(w.max()) / total:.0%} of the total weight; the effective sample size is "
+            f"{n_eff:.1f} of {w.len():,} respondents, so every estimate rests on very few people",
+            severity="warning",
+            file=source,
+            column=weight,
+            value=f"{float(w.max()):g}",
+        )
+    ]
+
+
 def _read(path: Path) -> pl.DataFrame:
     """Read a CSV (types inferred from every row) or Parquet file into polars."""
     import polars as pl
@@ -211,10 +283,17 @@ def _read(path: Path) -> pl.DataFrame:
         raise FileNotFoundError(f"no such data file: {path}")
     suffix = path.suffix.lower()
     if suffix == ".parquet":
-        return pl.read_parquet(path)
-    if suffix in (".csv", ".txt"):
         try:
-            return pl.read_csv(path, infer_schema_length=None)
+            return pl.read_parquet(path, glob=False)
+        except (pl.exceptions.PolarsError, OSError) as exc:
+            problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
+            raise DataError("cannot read the data file", [problem]) from None
+    if suffix in (".csv", ".txt"):
+        from pipeline.staging.readers import checked_csv_header
+
+        header = checked_csv_header(path)
+        try:
+            return pl.read_csv(path, infer_schema_length=None, new_columns=header, glob=False)
         except pl.exceptions.PolarsError as exc:
             problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
             raise DataError("cannot read the data file", [problem]) from None

@@ -84,9 +84,20 @@ class _RakeOp:
     last: dict = field(default_factory=dict)
     estimated: float | None = None
     reference: float | None = None
+    replicate_tolerance: float | None = None
+    replicate_max_iterations: int | None = None
+    collapsed_replicates: int = 0  # replicates in which an empty margin category was merged into a neighbour
+    unconverged_replicates: int = 0  # replicates accepted beyond replicate_tolerance
+    worst_replicate_discrepancy: float = 0.0
 
     def apply(self, current: np.ndarray) -> np.ndarray:
+        """(C, R) class totals -> (C, R) factors. Once frozen (`reference` set), columns are replicates:
+        empty categories are merged per replicate, the replicate tolerance and cycle budget apply, and a
+        replicate still beyond the tolerance is accepted and counted (replicate re-weighting always
+        finishes); the full-sample fit is never relaxed."""
         pop = _population_now(self, current)
+        if self.reference is not None:
+            return self._apply_replicates(current, pop)
         fit = rake(current, self.margins, pop, tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
@@ -97,7 +108,7 @@ class _RakeOp:
                          "PSUs left these margins unreachable or slow to reach; collapse categories so each spans "
                          "several PSUs, or") if self.reference is not None else ";"
             raise DataError(
-                f"weighting[{self.index}] ({self.kind}) did not converge in {fit.iterations} iteration(s) "
+                f"weighting step {self.index + 1} ({self.kind}) did not converge in {fit.iterations} iteration(s) "
                 f"(tolerance {self.tolerance:g}){replicate} set allow_nonconvergence = true to accept it with a warning",
                 [Problem("rake-nonconvergence", f"margin '{m.name}': remaining relative discrepancy {d:.3e}"
                          + (f"; {e} empty category-replicate pair(s)" if e else ""), column=m.name)
@@ -105,6 +116,21 @@ class _RakeOp:
             )
         if self.start is None:
             self.start = fit.factors[:, 0].copy()
+        return fit.factors
+
+    def _apply_replicates(self, current: np.ndarray, pop: np.ndarray) -> np.ndarray:
+        tolerance = max(self.tolerance, self.replicate_tolerance or self.tolerance)
+        cycles = self.replicate_max_iterations or 20 * self.max_iterations
+        fit = rake(current, self.margins, pop, tolerance=tolerance, max_iterations=cycles, start=self.start,
+                   collapse_empty=True)
+        self.last = {"iterations": fit.iterations, "converged": fit.converged,
+                     "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
+                     "population": float(pop[0]) if pop.size else 0.0,
+                     "empty": {m.name: int(e) for m, e in zip(self.margins, fit.empty) if e}}
+        self.collapsed_replicates += int(fit.collapsed.sum())
+        self.unconverged_replicates += int(fit.unconverged.sum())
+        if fit.unconverged.any():
+            self.worst_replicate_discrepancy = max(self.worst_replicate_discrepancy, float(fit.discrepancy.max()))
         return fit.factors
 
     def aux(self) -> np.ndarray:
@@ -146,20 +172,20 @@ class _CalibrateOp:
             fit = calibrate(current, self.aux(), self.targets(pop), distance=self.distance, bounds=self.bounds,
                             tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
         except np.linalg.LinAlgError as exc:
-            raise DataError(f"weighting[{self.index}] (calibrate): the auxiliary variables are collinear among the "
+            raise DataError(f"weighting step {self.index + 1} (calibrate): the auxiliary variables are collinear among the "
                             "respondents (a category with no weight, or a numeric variable that is constant)") from exc
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {"all calibration totals": fit.discrepancy}, "population": float(pop[0])}
         if not fit.converged:
             raise DataError(
-                f"weighting[{self.index}] (calibrate, {self.distance}) did not converge in {fit.iterations} Newton "
+                f"weighting step {self.index + 1} (calibrate, {self.distance}) did not converge in {fit.iterations} Newton "
                 f"step(s): largest relative miss {fit.discrepancy:.3e}"
                 + (f"; the bounds {self.bounds} may be too tight for these targets" if self.bounds else ""),
                 [Problem("calibration-nonconvergence", "calibration equations not solved", column=", ".join(
                     [m.name for m in self.margins] + self.numeric_names))],
             )
         if (fit.factors <= 0).any():
-            raise DataError(f"weighting[{self.index}] (calibrate, linear): some weights came out zero or negative "
+            raise DataError(f"weighting step {self.index + 1} (calibrate, linear): some weights came out zero or negative "
                             f"({int((fit.factors <= 0).sum())} class(es)); use distance = \"logit\" with bounds")
         if self.start is None:
             self.start = fit.lam[:, 0].copy()
@@ -215,14 +241,30 @@ class FittedRecipe:
         return out
 
     def _note_empty(self) -> None:
-        """Record (once per margin) a warning when a replicate left a margin category without weight."""
+        """Record (once per step) a warning when replicates needed a per-replicate collapse or were
+        accepted beyond the replicate tolerance (`replicate_adjustments` has the counts)."""
         for op in self.ops:
-            for name, count in op.last.get("empty", {}).items():
-                message = (f"weighting[{op.index}]: in some replicates category(ies) of margin '{name}' had no weight "
-                           "and were left unadjusted; collapse categories so each spans several PSUs")
+            if not isinstance(op, _RakeOp) or op.reference is None:
+                continue
+            if op.collapsed_replicates:
+                message = (f"weighting step {op.index + 1}: in some replicates a margin category had no respondents and was "
+                           "merged into its neighbour for that replicate; collapse categories so each spans several PSUs")
                 if all(p.message != message for p in self.warnings):
-                    self.warnings.append(Problem("replicate-empty-category", message, severity="warning", column=name,
-                                                 count=count))
+                    self.warnings.append(Problem("replicate-empty-category", message, severity="warning"))
+            if op.unconverged_replicates:
+                message = (f"weighting step {op.index + 1}: some replicates stopped beyond the replicate tolerance "
+                           f"({max(op.tolerance, op.replicate_tolerance or op.tolerance):g}); raise "
+                           "replicate_max_iterations or loosen replicate_tolerance")
+                if all(p.message != message for p in self.warnings):
+                    self.warnings.append(Problem("replicate-nonconvergence", message, severity="warning"))
+
+    def replicate_adjustments(self) -> dict[str, int]:
+        """Replicate columns re-weighted so far that needed a per-replicate collapse of an empty margin
+        category ("collapsed") or were accepted beyond the replicate tolerance ("unconverged"), summed
+        over the raking steps."""
+        ops = [op for op in self.ops if isinstance(op, _RakeOp)]
+        return {"collapsed": sum(op.collapsed_replicates for op in ops),
+                "unconverged": sum(op.unconverged_replicates for op in ops)}
 
     def calibration_matrix(self) -> np.ndarray:
         """(C, p) auxiliary vector x of each class for the last class-level step (full column rank:
@@ -255,7 +297,7 @@ def _build_ops(steps: Sequence[Step], classes: ClassIndex, data: pl.DataFrame, c
     notes: dict[int, list[str]] = {}
     problems: list[Problem] = []
     for s in steps:
-        where = f"weighting[{s.index}]"
+        where = f"weighting step {s.index + 1}"
         if isinstance(s, PoststratifyStep):
             margins, note, probs = build_margins(classes, [s.cells], s.targets, code_order=code_order, collapse=s.collapse, where=where)
             ops[s.index] = _RakeOp(s.index, "poststratify", margins, _population(margins, s.total),
@@ -263,7 +305,9 @@ def _build_ops(steps: Sequence[Step], classes: ClassIndex, data: pl.DataFrame, c
         elif isinstance(s, RakeStep):
             margins, note, probs = build_margins(classes, list(s.margins), s.targets, code_order=code_order, collapse=s.collapse, where=where)
             ops[s.index] = _RakeOp(s.index, "rake", margins, _population(margins, s.total), s.tolerance,
-                                   s.max_iterations, s.allow_nonconvergence)
+                                   s.max_iterations, s.allow_nonconvergence,
+                                   replicate_tolerance=s.replicate_tolerance,
+                                   replicate_max_iterations=s.replicate_max_iterations)
         elif isinstance(s, CalibrateStep):
             margins, note, probs = (build_margins(classes, list(s.margins), s.targets, code_order=code_order,
                                                   collapse=s.collapse, where=where) if s.margins else ([], [], []))
@@ -337,7 +381,7 @@ def _bounded_rake(op: _RakeOp, classes: ClassIndex, w: np.ndarray, lower: float,
         if max(worst, default=0.0) <= op.tolerance:
             return w
     raise DataError(
-        f"weighting[{op.index}] margins cannot be met with every weight within [{lower:.4g}, {upper:.4g}] "
+        f"weighting step {op.index + 1} margins cannot be met with every weight within [{lower:.4g}, {upper:.4g}] "
         f"(raking with bounds, {rounds} cycles); widen the trimming bounds or collapse categories",
         [Problem("trim-infeasible", f"margin '{m.name}': remaining relative discrepancy {d:.3e}", column=m.name)
          for m, d in zip(op.margins, worst)],
@@ -364,7 +408,7 @@ def _trim(step: TrimStep, ops: list, classes: ClassIndex, base: np.ndarray, weig
     with bounds (`_bounded_rake`); then t = trimmed / (base * f) and rounds of trim-and-refit
     (t_i *= bound / w_i for weights outside, then the class steps re-run) settle any remainder."""
     lower, upper = _bounds(step, weights_in)
-    where = f"weighting[{step.index}] (trim)"
+    where = f"weighting step {step.index + 1} (trim)"
     conflicts: list[Problem] = []
     t = np.ones_like(base)
     if ops and isinstance(ops[-1], _RakeOp):
@@ -442,7 +486,7 @@ def fit_recipe(
         weights = base * _chain_factors(ops, classes, base)[classes.index]
         step_warn = []
         if not op.last["converged"]:
-            step_warn.append(Problem("rake-nonconvergence", f"weighting[{s.index}] accepted without convergence: "
+            step_warn.append(Problem("rake-nonconvergence", f"weighting step {s.index + 1} accepted without convergence: "
                                      + ", ".join(f"'{k}' {v:.2e}" for k, v in op.last["discrepancy"].items()),
                                      severity="warning"))
         warnings += step_warn

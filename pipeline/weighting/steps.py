@@ -7,7 +7,9 @@ Each table of the array is one step, applied in the declared order; `step` names
   step = "poststratify"  cells = "age_band x sex", targets = "cells.csv" | totals = {...},
                          total = 1200000 (optional), collapse = {...} (optional)
   step = "rake"          margins = ["age_band x sex", "region"], targets = "margins.csv" | totals = {...},
-                         total, tolerance = 1e-6, max_iterations = 100, allow_nonconvergence = false, collapse
+                         total, tolerance = 1e-6, max_iterations = 100, allow_nonconvergence = false, collapse,
+                         replicate_tolerance (default tolerance; looser only), replicate_max_iterations (default
+                         20 x max_iterations): replicate re-weighting only, which always finishes
   step = "trim"          upper = 5.0, lower = 0.2 (at least one), relative_to = "mean" | "median" | "absolute",
                          max_rounds = 100
   step = "calibrate"     distance = "linear" | "logit", bounds = [0.4, 3.0] (logit), margins = [...],
@@ -92,6 +94,8 @@ class RakeStep:
     allow_nonconvergence: bool = False
     collapse: Collapse | None = None
     kind: str = "rake"
+    replicate_tolerance: float | None = None  # re-weighting a replicate: this tolerance (default `tolerance`)
+    replicate_max_iterations: int | None = None  # and this many cycles (default 20 x max_iterations)
 
 
 @dataclass(frozen=True)
@@ -128,7 +132,8 @@ Step = NonresponseStep | PoststratifyStep | RakeStep | TrimStep | CalibrateStep
 _KEYS = {
     "nonresponse": {"step", "status", "responded", "nonrespondent", "ineligible", "classes"},
     "poststratify": {"step", "cells", "targets", "totals", "total", "collapse"},
-    "rake": {"step", "margins", "targets", "totals", "total", "tolerance", "max_iterations", "allow_nonconvergence", "collapse"},
+    "rake": {"step", "margins", "targets", "totals", "total", "tolerance", "max_iterations", "allow_nonconvergence", "collapse",
+             "replicate_tolerance", "replicate_max_iterations"},
     "trim": {"step", "upper", "lower", "relative_to", "max_rounds"},
     "calibrate": {"step", "distance", "bounds", "margins", "numeric", "targets", "totals", "total", "tolerance",
                   "max_iterations", "collapse"},
@@ -142,7 +147,7 @@ class _Reader:
         self.raw, self.where, self.problems = raw, where, problems
 
     def bad(self, key: str, message: str) -> None:
-        self.problems.append(Problem("spec-weighting", f"{self.where}.{key}: {message}"))
+        self.problems.append(Problem("spec-weighting", f"{self.where}, {key}: {message}"))
 
     def number(self, key: str, default: float | None, *, positive: bool = True) -> float | None:
         value = self.raw.get(key, default)
@@ -214,6 +219,22 @@ def _margins(r: _Reader, key: str, known: set[str], *, required: bool) -> tuple[
     return margins
 
 
+def _unknown_target_variables(r: _Reader, targets: TargetTable, variables: set[str]) -> None:
+    """A margin of the targets naming a variable the codebook lacks (a misspelling, say) is an
+    error here, before any data is read, with the closest codebook names as a hint."""
+    import difflib
+
+    if not variables:  # no codebook to compare with
+        return
+    key = "targets" if "targets" in r.raw else "totals"
+    for margin in targets.margins:
+        for name in split_margin(margin):
+            if name not in variables:
+                close = difflib.get_close_matches(name, sorted(variables), n=2)
+                hint = f"; did you mean {' or '.join(repr(c) for c in close)}?" if close else ""
+                r.bad(key, f"the targets name margin '{margin}', but '{name}' is not a codebook variable{hint}")
+
+
 def _targets(r: _Reader, folder: Path) -> TargetTable:
     has_file, has_inline = "targets" in r.raw, "totals" in r.raw
     if has_file == has_inline:
@@ -223,9 +244,9 @@ def _targets(r: _Reader, folder: Path) -> TargetTable:
         if not isinstance(r.raw["targets"], str):
             r.bad("targets", f"must be a file path, got {r.raw['targets']!r}")
             return TargetTable({}, source=r.where)
-        table, problems = read_targets_csv(folder / r.raw["targets"], where=f"{r.where}.targets")
+        table, problems = read_targets_csv(folder / r.raw["targets"], where=f"{r.where}, targets")
     else:
-        table, problems = inline_targets(r.raw["totals"], where=f"{r.where}.totals")
+        table, problems = inline_targets(r.raw["totals"], where=f"{r.where}, totals")
     r.problems.extend(problems)
     return table if table is not None else TargetTable({}, source=r.where)
 
@@ -255,13 +276,13 @@ def _collapse(r: _Reader, known: set[str]) -> Collapse | None:
 
 
 def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem]) -> Step | None:
-    where = f"weighting[{i}]"
+    where = f"weighting step {i + 1}"
     if not isinstance(raw, dict):
         problems.append(Problem("spec-weighting", f"{where}: each [[weighting]] entry must be a table"))
         return None
     kind = raw.get("step")
     if kind not in _KEYS:
-        problems.append(Problem("spec-weighting", f"{where}.step: must be one of {', '.join(sorted(_KEYS))}, got {kind!r}"))
+        problems.append(Problem("spec-weighting", f"{where}, step: must be one of {', '.join(sorted(_KEYS))}, got {kind!r}"))
         return None
     r = _Reader(raw, where, problems)
     for key in sorted(set(raw) - _KEYS[kind]):
@@ -295,6 +316,7 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
         return TrimStep(i, upper, lower, relative_to, r.integer("max_rounds", 100))
     collapse = _collapse(r, known)
     targets = _targets(r, folder)
+    _unknown_target_variables(r, targets, set(context.variable_types))
     total = r.number("total", None)
     if kind == "poststratify":
         if "cells" not in raw:
@@ -302,9 +324,17 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
         cells = _variables(r, "cells", raw.get("cells", ()), known) if "cells" in raw else ()
         return PoststratifyStep(i, cells, targets, total, collapse)
     if kind == "rake":
+        tolerance = float(r.number("tolerance", 1e-6) or 1e-6)
+        replicate_tolerance = r.number("replicate_tolerance", None)
+        if replicate_tolerance is not None and replicate_tolerance < tolerance:
+            r.bad("replicate_tolerance", f"may be looser than tolerance ({tolerance:g}), never tighter; "
+                  f"got {replicate_tolerance!r}")
+        iterations = r.integer("max_iterations", 100)
         return RakeStep(
-            i, _margins(r, "margins", known, required=True), targets, total, float(r.number("tolerance", 1e-6) or 1e-6),
-            r.integer("max_iterations", 100), r.flag("allow_nonconvergence", False), collapse,
+            i, _margins(r, "margins", known, required=True), targets, total, tolerance,
+            iterations, r.flag("allow_nonconvergence", False), collapse,
+            replicate_tolerance=replicate_tolerance,
+            replicate_max_iterations=r.integer("replicate_max_iterations", 20 * iterations),
         )
     distance = r.choice("distance", "linear", ("linear", "logit"))
     bounds = None
@@ -338,7 +368,8 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
 def parse_steps(raw: tuple[dict, ...], context: StepContext) -> list[Step]:
     """Parse the raw `[[weighting]]` tables against the study's `context`; every problem is collected into one SpecError.
 
-    Problems name the key, e.g. `weighting[2].margins[0]`. Targets files are read here (paths relative
+    Problems name the step as the user counts the [[weighting]] blocks, from 1, and the key, e.g.
+    `weighting step 3, margins[0]`. Targets files are read here (paths relative
     to `context.folder`, the spec's folder) so their problems are reported with the spec's.
     """
     problems: list[Problem] = []

@@ -7,7 +7,7 @@ Copies the demo study into a temp folder, runs it (`pipeline.runner.run_study`) 
 the date. `tests/test_cells_export.py` checks every later run of the demo against it, so a change
 of the estimation engine that moves any demo figure fails. Regenerate it only when a figure is
 meant to change, and say why in the commit. (The stored file was made from main's engine at
-63e80b0, before the one-pass engine of issue 10, by running that engine and passing the cells
+the commit its header names, before the one-pass engine of issue 10, by running that engine and passing the cells
 it gave the book through `pipeline.cells_export.tidy_cells`; its header says so.)
 """
 
