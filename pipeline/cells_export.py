@@ -3,7 +3,7 @@
 `tidy_cells(cells)` turns the long cell frame of a run (`pipeline.topline` rows with the estimate
 columns of `pipeline.weighted_cells` joined on) into the frame `EXPORT_SCHEMA` describes, and
 `write_cells(export, book_path, stem)` writes it as `<stem>_cells.parquet` and `<stem>_cells.csv`
-in the book's folder. The book renders its numbers from this same frame (`pipeline.book`), so the
+in the book's folder (the run checks both paths with the book's, `pipeline.outputs.check_output`). The book renders its numbers from this same frame (`pipeline.book`), so the
 two cannot disagree.
 
 Columns, one row per (wave, table, row, banner, column, statistic):
@@ -148,16 +148,12 @@ def export_paths(book_path: Path, stem: str) -> tuple[Path, Path]:
 
 
 def write_cells(export: pl.DataFrame, book_path: Path, stem: str) -> tuple[Path, Path]:
-    """Write the export as Parquet and CSV beside the book, each to a temporary file first and then
-    moved into place, so a failure never leaves a half-written export. Returns both paths."""
+    """Write the export as Parquet and CSV beside the book through `pipeline.outputs.write_output`
+    (a temporary file moved into place and recorded in the folder's marker; a failed write is a
+    WavebookError cannot-write that leaves the file as it was). Returns both paths."""
+    from pipeline.outputs import write_output
+
     parquet, csv = export_paths(book_path, stem)
-    parquet.parent.mkdir(parents=True, exist_ok=True)
-    for path, write in ((parquet, export.write_parquet), (csv, export.write_csv)):
-        temp = path.with_name(f".{path.name}.tmp")
-        try:
-            write(temp)
-            temp.replace(path)
-        except BaseException:
-            temp.unlink(missing_ok=True)
-            raise
+    write_output(parquet, export.write_parquet)
+    write_output(csv, export.write_csv)
     return parquet, csv

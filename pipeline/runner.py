@@ -25,7 +25,7 @@ import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
-from pipeline.cells_export import tidy_cells, write_cells
+from pipeline.cells_export import export_paths, tidy_cells, write_cells
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.memory import DEFAULT_BUDGET, variable_batches
@@ -208,6 +208,8 @@ def run_study(
     """
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
+    for path in export_paths(out_path, study.path.stem):  # the tidy export beside the book
+        check_output(path, study_inputs(study), force=force, option="--out")
     options = variance_options(study)
     for wave_id, reason in stage_reasons(study, restage=restage).items():
         if reason.startswith("the spec changed"):
