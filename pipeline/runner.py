@@ -24,9 +24,10 @@ from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.outputs import check_output, file_sha256, study_inputs
-from pipeline.staging.database import load_responses, open_database, staged_waves
+from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
+from pipeline.staging.wave_columns import wave_signature
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -52,10 +53,17 @@ def book_path(study: Study, out: str | Path | None, *, force: bool = False) -> P
 
 
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
-    """Ids of the waves to (re)stage, in spec order.
+    """Ids of the waves to (re)stage, in spec order (see `stage_reasons`)."""
+    return list(stage_reasons(study, restage=restage))
+
+
+def stage_reasons(study: Study, *, restage: bool = False) -> dict[str, str]:
+    """The waves to (re)stage, in spec order, each with why.
 
     A wave is staged when `restage` is set, when it is not in the database's `waves` table yet,
-    or when the SHA-256 of its raw file differs from the one recorded at its last staging.
+    when the SHA-256 of its raw file differs from the one recorded at its last staging, or when
+    the spec no longer says what its staged rows hold (its column set, file names, types, codes
+    or recodes changed: `pipeline.staging.wave_columns.wave_signature`).
     Raises DataError listing every wave whose raw file is missing.
     """
     missing = [
@@ -65,14 +73,26 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     ]
     if missing:
         raise DataError(f"cannot run {study.path}: wave files are missing", missing)
-    if restage or not study.database_path.is_file():
-        return [w.id for w in study.waves]
+    if restage:
+        return {w.id: "restage requested" for w in study.waves}
+    if not study.database_path.is_file():
+        return {w.id: "not staged yet" for w in study.waves}
     con = open_database(study, read_only=True)
     try:
-        recorded = dict(staged_waves(con).select("wave", "sha256").iter_rows())
+        recorded = {wave: (sha, signature) for wave, sha, signature in
+                    staged_waves(con).select("wave", "sha256", "spec_signature").iter_rows()}
     finally:
         con.close()
-    return [w.id for w in study.waves if recorded.get(w.id) != file_sha256(w.file)]
+    types = column_types(study)
+    reasons: dict[str, str] = {}
+    for w in study.waves:
+        if w.id not in recorded:
+            reasons[w.id] = "not staged yet"
+        elif recorded[w.id][0] != file_sha256(w.file):
+            reasons[w.id] = f"its file {w.file.name} changed"
+        elif recorded[w.id][1] != wave_signature(study, w.id, types):
+            reasons[w.id] = "the spec changed what it holds (columns, names, codes or recodes)"
+    return reasons
 
 
 def variance_options(study: Study) -> VarianceOptions:
@@ -139,7 +159,10 @@ def run_study(
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
     options = variance_options(study)
-    for wave_id in waves_to_stage(study, restage=restage):
+    for wave_id, reason in stage_reasons(study, restage=restage).items():
+        if reason.startswith("the spec changed"):
+            print(f"wave {wave_id}: {reason} since it was staged; restaging it from {study.wave(wave_id).file}",
+                  file=sys.stderr)
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
             print(report.summary(), file=sys.stderr)

@@ -8,6 +8,7 @@ Refusals leave the study folder byte-identical (SHA-256 fingerprints before and 
 from __future__ import annotations
 
 import shutil
+from pathlib import Path
 
 import duckdb
 import pytest
@@ -42,6 +43,14 @@ def test_database_naming_an_existing_csv_is_refused(tracker: Tracker, capsys: py
         assert "[not-a-database]" in err, (command, err)
         assert "database-busy" not in err
     assert fingerprint(tracker.folder) == before
+
+
+def test_database_naming_a_folder_is_refused_by_check_too(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    (tracker.folder / "archive").mkdir()
+    tracker.write_spec('database = "archive"\n' + TRACKER_SPEC)
+    for command in ("check", "stage", "run"):
+        code, _, err = wavebook([command, str(tracker.spec_path), "--quiet"], capsys)
+        assert (command, code, "[not-a-database]" in err) == (command, 1, True)
 
 
 def test_database_naming_the_spec_is_refused(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
@@ -95,3 +104,22 @@ def test_restaging_deletes_the_waves_old_weights(tracker: Tracker, capsys: pytes
         assert (_wave_rows(con, "weights"), unmatched) == ({"W1": 15, "W2": 12}, 0)
     finally:
         con.close()
+
+
+@pytest.mark.parametrize("suffix", ["csv", "parquet"])
+def test_estimate_and_rake_read_file_names_literally(tmp_path: Path, suffix: str, capsys: pytest.CaptureFixture[str]) -> None:
+    import polars as pl
+
+    def write(name: str, values: list[float]) -> None:
+        frame = pl.DataFrame({"w": [1.0] * len(values), "y": values, "g": ["a"] * len(values)})
+        frame.write_csv(tmp_path / name) if suffix == "csv" else frame.write_parquet(tmp_path / name)
+
+    write(f"data1.{suffix}", [100.0, 100.0])
+    write(f"data[1].{suffix}", [1.0, 3.0])
+    literal = str(tmp_path / f"data[1].{suffix}")
+    code, out, err = wavebook(["estimate", literal, "--weight", "w", "--mean", "y", "--quiet"], capsys)
+    assert code == 0, err
+    assert float(out.splitlines()[1].split(",")[4]) == 2.0  # the mean of 1 and 3, not of the other file
+    (tmp_path / "targets.csv").write_text("variable,category,target\ng,a,1\n", encoding="utf-8")
+    code, out, err = wavebook(["rake", literal, "--targets", str(tmp_path / "targets.csv"), "--quiet"], capsys)
+    assert code == 0 and "2 of 2 rows weighted" in out, out + err

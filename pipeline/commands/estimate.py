@@ -314,13 +314,17 @@ def _read(path: Path) -> pl.DataFrame:
         raise FileNotFoundError(f"no such data file: {path}")
     suffix = path.suffix.lower()
     if suffix == ".parquet":
-        return pl.read_parquet(path)
+        try:
+            return pl.read_parquet(path, glob=False)
+        except (pl.exceptions.PolarsError, OSError) as exc:
+            problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
+            raise DataError("cannot read the data file", [problem]) from None
     if suffix in (".csv", ".txt"):
         from pipeline.staging.readers import checked_csv_header
 
         header = checked_csv_header(path)
         try:
-            return pl.read_csv(path, infer_schema_length=None, new_columns=header)
+            return pl.read_csv(path, infer_schema_length=None, new_columns=header, glob=False)
         except pl.exceptions.PolarsError as exc:
             problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
             raise DataError("cannot read the data file", [problem]) from None
