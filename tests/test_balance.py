@@ -57,7 +57,7 @@ def _run(tmp_path: Path, design: str) -> tuple[pl.DataFrame, pl.DataFrame]:
         responses = load_responses(con, study, ["W1"])
     finally:
         con.close()
-    estimated, _ = weigh_and_estimate(study, cells, variance_options(study), quiet=True)
+    estimated, *_ = weigh_and_estimate(study, cells, variance_options(study), quiet=True)
     return estimated.filter(pl.col("wave") == "W1"), responses
 
 

@@ -128,7 +128,8 @@ class BookContext:
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
     version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book.weighting`), None for an unweighted book.
+    meet (`pipeline.book.weighting`), None for an unweighted book. status: the one-line heading of
+    what the figures are (weighted by the weighting steps, by the design weights only, or unweighted).
     """
 
     title: str
@@ -144,6 +145,7 @@ class BookContext:
     generated_at: str
     version: str
     weighting: WeightingSection | None = None
+    status: str = "Unweighted counts and percentages"
 
 
 def render_book(
@@ -198,6 +200,7 @@ def build_context(
         title=study.title,
         notes=tuple(study.notes),
         weighted=weighted,
+        status=_status(study, weighted=weighted),
         waves=waves,
         design=_design_lines(study.design),
         methodology=_methodology(weighted=weighted) + (variance if weighted else ()),
@@ -392,6 +395,17 @@ MEDIAN_WEIGHTED = (
     "at or below it. Medians carry no design effect."
 )
 MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
+
+
+def _status(study: Study, *, weighted: bool) -> str:
+    """The book's heading line: only a study with weighting steps is headed as weighted estimates."""
+    if not weighted:
+        return "Unweighted counts and percentages"
+    if study.weighting:
+        return "Weighted estimates with confidence intervals"
+    if study.design.base_weight or study.design.selection_probability:
+        return "Estimates with design weights (no weighting adjustments) and confidence intervals"
+    return "Estimates with equal weights and confidence intervals"
 
 
 def _methodology(*, weighted: bool) -> tuple[str, ...]:

@@ -80,29 +80,9 @@ def check_wave(study: Study, wave_id: str) -> list[Problem]:
         con.close()
     if any(p.severity == "error" for p in problems):
         return problems
+    from pipeline.staging.rehearsal import weighting_rehearsal
+
     return problems + weighting_rehearsal(study, wave)
-
-
-def weighting_rehearsal(study: Study, wave: Wave) -> list[Problem]:
-    """What weighting `wave` would meet in `wavebook run`, found without writing anything: the wave
-    is staged into a private in-memory database and the study's weighting fitted on it, exactly as
-    `run` does, so `check` sees what only the data can tell (targets naming margins or categories
-    the data lack, a target category without respondents, infeasible trimming bounds...). Returns
-    the fit's errors (or its warnings when it succeeds)."""
-    from pipeline.errors import WavebookError
-    from pipeline.weighting.store import fit_wave
-
-    con = duckdb.connect()
-    try:
-        prepare_connection(con)
-        read_raw(con, wave.file, RAW_TABLE)
-        _write(con, study, wave, digest="", warnings=[])
-        recipe, _ = fit_wave(study, wave.id, con=con)
-    except WavebookError as exc:
-        return exc.problems or [Problem("weighting", exc.summary, file=str(wave.file))]
-    finally:
-        con.close()
-    return list(recipe.warnings)
 
 
 def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageReport:
