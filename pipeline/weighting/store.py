@@ -19,7 +19,7 @@ from pipeline.sqlfiles import sql
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
 from pipeline.weighting.recipe import FittedRecipe, fit_recipe, largest
-from pipeline.weighting.steps import parse_steps
+from pipeline.weighting.steps import parse_steps, steps_for_wave
 
 if TYPE_CHECKING:
     import duckdb
@@ -44,7 +44,7 @@ def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> t
     from pipeline.staging.database import load_responses
 
     context = study.step_context()
-    steps = parse_steps(study.weighting, context)
+    steps = steps_for_wave(parse_steps(study.weighting, context), wave_id, source=str(study.path))
     data = load_responses(con, study, [wave_id])
     base, _ = design_base_weights(data, study, id_column=ID)
     recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=context.code_order(set(study.variables)))
