@@ -4,18 +4,21 @@ from __future__ import annotations
 
 import argparse
 
+from pipeline.commands.book import add_single_file
+
 HELP = "stage changed waves, compute the tables and write the HTML result book"
 EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --single-file / --folder, --restage (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
         metavar="BOOK.html",
         help="where to write the book (default: book/<spec name>.html beside the spec)",
     )
+    add_single_file(parser)
     parser.add_argument(
         "--restage",
         action="store_true",
@@ -27,6 +30,6 @@ def run(args: argparse.Namespace) -> int:
     """Run the study and print the book's path."""
     from pipeline.runner import run_study
 
-    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet)
+    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet, single_file=args.single_file)
     print(path)
     return 0
