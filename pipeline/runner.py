@@ -28,9 +28,11 @@ from pipeline.book.manifest import run_manifest
 from pipeline.book.store import load_results, save_results
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
-from pipeline.staging.database import load_responses, open_database, staged_waves
+from pipeline.outputs import check_output, file_sha256, study_inputs
+from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
-from pipeline.staging.stage import file_sha256, stage_wave
+from pipeline.staging.stage import stage_wave
+from pipeline.staging.wave_columns import wave_signature
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -42,11 +44,31 @@ def default_book_path(study: Study) -> Path:
     return study.path.parent / "book" / f"{study.path.stem}.html"
 
 
+def book_path(study: Study, out: str | Path | None, *, force: bool = False) -> Path:
+    """Where the book goes: `out` (an existing folder gets `<folder>/<spec stem>.html`) or
+    `default_book_path`; checked by `pipeline.outputs.check_output` against every input of the
+    study before any work is done (WavebookError output-is-input / output-exists / output-not-a-file)."""
+    if out is None:
+        path = default_book_path(study)
+    else:
+        path = Path(out)
+        if path.is_dir():
+            path = path / f"{study.path.stem}.html"
+    return check_output(path, study_inputs(study), force=force, option="--out")
+
+
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
-    """Ids of the waves to (re)stage, in spec order.
+    """Ids of the waves to (re)stage, in spec order (see `stage_reasons`)."""
+    return list(stage_reasons(study, restage=restage))
+
+
+def stage_reasons(study: Study, *, restage: bool = False) -> dict[str, str]:
+    """The waves to (re)stage, in spec order, each with why.
 
     A wave is staged when `restage` is set, when it is not in the database's `waves` table yet,
-    or when the SHA-256 of its raw file differs from the one recorded at its last staging.
+    when the SHA-256 of its raw file differs from the one recorded at its last staging, or when
+    the spec no longer says what its staged rows hold (its column set, file names, types, codes
+    or recodes changed: `pipeline.staging.wave_columns.wave_signature`).
     Raises DataError listing every wave whose raw file is missing.
     """
     missing = [
@@ -56,14 +78,26 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     ]
     if missing:
         raise DataError(f"cannot run {study.path}: wave files are missing", missing)
-    if restage or not study.database_path.is_file():
-        return [w.id for w in study.waves]
+    if restage:
+        return {w.id: "restage requested" for w in study.waves}
+    if not study.database_path.is_file():
+        return {w.id: "not staged yet" for w in study.waves}
     con = open_database(study, read_only=True)
     try:
-        recorded = dict(staged_waves(con).select("wave", "sha256").iter_rows())
+        recorded = {wave: (sha, signature) for wave, sha, signature in
+                    staged_waves(con).select("wave", "sha256", "spec_signature").iter_rows()}
     finally:
         con.close()
-    return [w.id for w in study.waves if recorded.get(w.id) != file_sha256(w.file)]
+    types = column_types(study)
+    reasons: dict[str, str] = {}
+    for w in study.waves:
+        if w.id not in recorded:
+            reasons[w.id] = "not staged yet"
+        elif recorded[w.id][0] != file_sha256(w.file):
+            reasons[w.id] = f"its file {w.file.name} changed"
+        elif recorded[w.id][1] != wave_signature(study, w.id, types):
+            reasons[w.id] = "the spec changed what it holds (columns, names, codes or recodes)"
+    return reasons
 
 
 def variance_options(study: Study) -> VarianceOptions:
@@ -113,6 +147,7 @@ def run_study(
     out: str | Path | None = None,
     restage: bool = False,
     quiet: bool = False,
+    force: bool = False,
     single_file: bool | None = None,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
@@ -121,13 +156,17 @@ def run_study(
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
     (`weigh_and_estimate`), stores the book's inputs (`save_results`) and renders the book to
-    `out` (default `default_book_path`; `single_file` as in `render_book`) with the run manifest.
-    Raises SpecError / DataError with every problem found.
+    `book_path(study, out, force=force)`, which is checked first (`single_file` as in
+    `render_book`), with the run manifest. Raises SpecError / DataError with every problem found.
     """
     started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
     options = variance_options(study)
-    for wave_id in waves_to_stage(study, restage=restage):
+    for wave_id, reason in stage_reasons(study, restage=restage).items():
+        if reason.startswith("the spec changed"):
+            print(f"wave {wave_id}: {reason} since it was staged; restaging it from {study.wave(wave_id).file}",
+                  file=sys.stderr)
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
             print(report.summary(), file=sys.stderr)
@@ -145,7 +184,6 @@ def run_study(
     variance = variance_lines(options, study, calibrated=calibrated)
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
     save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
-    out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
@@ -160,13 +198,18 @@ def run_study(
 
 
 def rebuild_book(
-    spec_path: str | Path, *, out: str | Path | None = None, single_file: bool | None = None, quiet: bool = False
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    single_file: bool | None = None,
+    quiet: bool = False,
+    force: bool = False,
 ) -> Path:
     """Render the book again from the results the last `run_study` stored, without staging,
-    weighting or estimating; returns the path of the book written."""
+    weighting or estimating; the output is checked as in `run_study`. Returns the book's path."""
     study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
     stored = load_results(study)
-    out_path = Path(out) if out is not None else default_book_path(study)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,

@@ -23,8 +23,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.book import pages as pages_module
 from pipeline.book.render import LOW_BASE, VERY_LOW_BASE, build_context, render_book
+from pipeline import outputs as outputs_module
 from pipeline.errors import WavebookError
 from pipeline.staging.spec import Design, Study, Variable, Wave
 from pipeline.topline import CELL_SCHEMA, unweighted_toplines
@@ -192,7 +192,7 @@ def test_rating_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, da
     answered = data.filter(pl.col("wave") == wave)["satisfaction"].drop_nulls()
     scored = answered.filter(answered != 99).cast(pl.Float64)
     assert _statistics(cells, wave, "satisfaction") == pytest.approx(_summary(scored), rel=1e-12)
-    assert _cell(cells, wave, "satisfaction", "base", "Base: answered")["count"] == answered.len()
+    assert _cell(cells, wave, "satisfaction", "base", "Base: all giving an answer")["count"] == answered.len()
     assert _cell(cells, wave, "satisfaction", "category", "Don't know")["count"] == (answered == 99).sum()
     top_two = _cell(cells, wave, "satisfaction", "net", "Top two box (9-10)")
     assert top_two["count"] == answered.is_in([9, 10]).sum()
@@ -236,7 +236,7 @@ def test_codes_outside_the_codebook_are_shown_not_dropped(con: duckdb.DuckDBPyCo
     stray = _cell(cells, "W1", "region", "category", "Code 7 (not in the codebook)")
     assert stray["count"] == 1
     categories = _rows(cells, "W1", "region", "category")
-    assert categories["count"].sum() == _cell(cells, "W1", "region", "base", "Base: answered")["count"]
+    assert categories["count"].sum() == _cell(cells, "W1", "region", "base", "Base: all giving an answer")["count"]
 
 
 def test_undeclared_waves_are_left_out(con: duckdb.DuckDBPyConnection, tmp_path: Path) -> None:
@@ -405,7 +405,7 @@ def test_nonprobability_caution_only_for_nonprobability_designs(tmp_path: Path, 
 
 
 def test_low_bases_are_marked_and_explained_under_the_table(book_path: Path, cells: pl.DataFrame) -> None:
-    w2_base = _cell(cells, "W2", "region", "base", "Base: answered")["count"]
+    w2_base = _cell(cells, "W2", "region", "base", "Base: all giving an answer")["count"]
     aware_base = _cell(cells, "W2", "aware", "net", "Any of these")["base"]
     assert VERY_LOW_BASE <= w2_base < LOW_BASE and aware_base < VERY_LOW_BASE  # the fixture's intent
     root = _parse(book_path)
@@ -443,7 +443,7 @@ def test_footer_gives_time_and_version(tmp_path: Path, cells: pl.DataFrame) -> N
 
 
 def test_write_leaves_no_temporary_file(book_path: Path) -> None:
-    assert sorted(p.name for p in book_path.parent.iterdir()) == ["study.html"]
+    assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_failed_render_leaves_previous_book_untouched(book_path: Path, tmp_path: Path, cells: pl.DataFrame) -> None:
@@ -451,7 +451,7 @@ def test_failed_render_leaves_previous_book_untouched(book_path: Path, tmp_path:
     with pytest.raises(WavebookError, match="percent"):
         render_book(_study(tmp_path), cells.drop("percent"), out_path=book_path)
     assert book_path.read_bytes() == before
-    assert sorted(p.name for p in book_path.parent.iterdir()) == ["study.html"]
+    assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_failed_replace_leaves_previous_book_untouched(
@@ -462,11 +462,11 @@ def test_failed_replace_leaves_previous_book_untouched(
     def failing_replace(src: str, dst: str) -> None:
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(pages_module.os, "replace", failing_replace)
-    with pytest.raises(OSError, match="simulated"):
+    monkeypatch.setattr(outputs_module.os, "replace", failing_replace)
+    with pytest.raises(WavebookError, match="simulated"):
         render_book(_study(tmp_path), cells, out_path=book_path)
     assert book_path.read_bytes() == before
-    assert sorted(p.name for p in book_path.parent.iterdir()) == ["study.html"]
+    assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_folder_book_replaces_the_previous_folder_whole(tmp_path: Path, cells: pl.DataFrame) -> None:

@@ -19,19 +19,11 @@ from pathlib import Path
 
 from pipeline import __version__
 from pipeline.estimation.options import VarianceOptions
+from pipeline.outputs import file_sha256
 from pipeline.staging.spec import Study
 
 LIBRARIES = ("polars", "numpy", "scipy", "duckdb", "jinja2", "pyarrow")
 SHORT_HASH = 12
-
-
-def file_sha256(path: Path) -> str:
-    """SHA-256 of a file's bytes, read in 1 MiB blocks."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _targets_files(raw: object) -> Iterator[str]:

@@ -7,8 +7,8 @@ methodology, the tables, trends, appendix; links are "#anchor". A folder book ha
 with the size of the study) and `appendix.html`; links are "page.html#anchor". Parts are the
 template partials `templates/_<part>.html.j2`.
 
-`write_book` writes all files at once: a one-file book through a temporary file in the same
-folder and `os.replace`; a folder book into a temporary folder beside the target, which then
+`write_book` writes all files at once: a one-file book through `pipeline.outputs` (a
+temporary file in the same folder, renamed, recorded as wavebook's output); a folder book into a temporary folder beside the target, which then
 replaces the old folder (the old one is moved aside first and removed only after the swap).
 """
 
@@ -20,6 +20,9 @@ import tempfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+
+from pipeline.errors import Problem, WavebookError
+from pipeline.outputs import is_own_output, write_text_output
 
 BOOK_PARTS = ("cover", "contents", "methodology", "tables", "trends", "appendix")
 TREND_TABLES_PER_PAGE = 40  # a folder book's trends pages hold this many tables' panels each
@@ -85,23 +88,28 @@ def plan_pages(anchors: Sequence[str], *, single_file: bool) -> PagePlan:
 def write_book(out_path: Path, files: Mapping[str, str], *, single_file: bool) -> Path:
     """Write the rendered `files` (page name -> text; "" is the one-file page) and return the page to open.
 
-    One file: `out_path`, with any other files (manifest.json) beside it. A folder: `out_path`
-    without its suffix, holding every file."""
+    One file: `out_path`, with any other files (manifest.json) beside it, each through
+    `pipeline.outputs.write_text_output` (atomic, recorded as wavebook's own output). A folder:
+    `out_path` without its suffix, holding every file; an existing folder is replaced only when
+    its index.html is wavebook's own unchanged output (rule output-exists otherwise)."""
     if single_file:
-        out_path.parent.mkdir(parents=True, exist_ok=True)
         for name, text in files.items():
             if name:
-                write_atomically(out_path.parent / name, text)
-        write_atomically(out_path, files[""])
-        return out_path
+                write_text_output(out_path.parent / name, text)
+        return write_text_output(out_path, files[""])
     folder = out_path.with_suffix("") if out_path.suffix else out_path
+    if folder.exists() and not (folder.is_dir() and is_own_output(folder / "index.html")):
+        raise WavebookError(
+            f"not writing {folder}",
+            [Problem("output-exists", "this folder was not written by wavebook as a book; move it away first",
+                     file=str(folder))],
+        )
     folder.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(dir=folder.parent, prefix=f".{folder.name}.", suffix=".tmp"))
     aside: Path | None = None
     try:
         for name, text in files.items():
-            (staging / name).write_text(text, encoding="utf-8")
-            os.chmod(staging / name, 0o666 & ~_umask())
+            write_text_output(staging / name, text)
         os.chmod(staging, 0o777 & ~_umask())
         if folder.exists():
             aside = Path(tempfile.mkdtemp(dir=folder.parent, prefix=f".{folder.name}.", suffix=".old"))
@@ -113,26 +121,10 @@ def write_book(out_path: Path, files: Mapping[str, str], *, single_file: bool) -
         if aside is not None and not folder.exists() and (aside / folder.name).exists():
             os.replace(aside / folder.name, folder)  # put the previous book back
         shutil.rmtree(staging, ignore_errors=True)
+        if aside is not None:
+            shutil.rmtree(aside, ignore_errors=True)
         raise
     return folder / "index.html"
-
-
-def write_atomically(path: Path, text: str) -> None:
-    """Write `text` to a temporary file beside `path`, then replace `path` with it.
-
-    The temporary file gets the permissions of a normally created file (0o666 minus the umask).
-    """
-    handle, temp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            out.write(text)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(temp_name, 0o666 & ~_umask())
-        os.replace(temp_name, path)
-    except BaseException:
-        Path(temp_name).unlink(missing_ok=True)
-        raise
 
 
 def _umask() -> int:

@@ -179,7 +179,7 @@ def build_context(
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
     weighted = all(c in cells.columns for c in ESTIMATE_COLUMNS) and cells["estimate"].is_not_null().any()
     respondents = dict(
-        cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
+        cells.filter(pl.col("row_kind").is_in(["missing", "not-asked"])).group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
     columns = tuple(Column(key=w.id, label=w.label, sublabel=w.fieldwork) for w in waves)
@@ -278,13 +278,33 @@ def _design_lines(design: Design) -> tuple[str, ...]:
         lines.append(f"Base weights: 1 / selection probability (column '{design.selection_probability}').")
     else:
         lines.append("Base weights: equal for every respondent.")
-    if design.population:
+    if design.first_stage == "pps" and design.psu_inclusion_probability:
+        lines.append(
+            "First-stage units drawn with probability proportional to size: each unit's squared deviation is "
+            f"multiplied by one minus its inclusion probability (column '{design.psu_inclusion_probability}'), "
+            "the usual approximation for such samples."
+        )
+    elif design.first_stage == "pps":
+        lines.append(
+            "First-stage units drawn with probability proportional to size: standard errors use the "
+            "with-replacement formula, with no finite population correction (slightly conservative)."
+        )
+    elif design.population:
         lines.append("Finite population correction from the declared population of first-stage units per stratum.")
     elif design.sampling_fraction:
         lines.append("Finite population correction from the declared sampling fractions per stratum.")
     else:
         lines.append("No finite population correction declared.")
     return tuple(lines)
+
+
+MEDIAN_WEIGHTED = (
+    "The median of a rating scale is the interpolated median of grouped answers: each answer k "
+    "counts as spread evenly from k - 0.5 to k + 0.5, and the median is the point with half the "
+    "weight below it. The median of a number is the smallest answer with at least half the weight "
+    "at or below it. Medians carry no design effect."
+)
+MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
 
 
 def _methodology(*, weighted: bool) -> tuple[str, ...]:
@@ -312,7 +332,7 @@ def _methodology(*, weighted: bool) -> tuple[str, ...]:
         "row counts respondents with no answer to any item.",
         "Rating scales and numbers: the mean, median, minimum and maximum use the answers given, "
         "leaving out codes such as 'don't know' where the codebook says so (noted under the table). "
-        "The median is the middle answer, or the midpoint of the two middle answers.",
+        + (MEDIAN_WEIGHTED if weighted else MEDIAN_UNWEIGHTED),
     ]
     return tuple(paragraphs)
 

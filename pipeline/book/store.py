@@ -3,21 +3,20 @@
 `save_results(study, ...)` writes, into `results_folder(study)` (`<database stem>_results/`
 beside the study database): `cells.parquet` (the tidy cell frame the book shows: aggregates
 only, no respondent rows or ids) and `book.json` (the weighting summary, the standard-error
-sentences, the confidence level and the run manifest). Both are written atomically.
+sentences, the confidence level and the run manifest). Both are written atomically through
+`pipeline.outputs` (a failed write is a cannot-write error naming the file).
 `load_results(study)` reads them back; a missing or unreadable folder is a named DataError.
 """
 
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import polars as pl
 
-from pipeline.book.pages import write_atomically
+from pipeline.outputs import write_output, write_text_output
 from pipeline.book.weighting import MarginRow, WaveWeighting, WeightingSection
 from pipeline.errors import DataError, Problem
 from pipeline.staging.spec import Study
@@ -54,22 +53,14 @@ def save_results(
 ) -> Path:
     """Store the book's inputs; returns the folder."""
     folder = results_folder(study)
-    folder.mkdir(parents=True, exist_ok=True)
-    handle, temp_name = tempfile.mkstemp(dir=folder, prefix=f".{CELLS_FILE}.", suffix=".tmp")
-    os.close(handle)
-    try:
-        cells.write_parquet(temp_name)
-        os.replace(temp_name, folder / CELLS_FILE)
-    except BaseException:
-        Path(temp_name).unlink(missing_ok=True)
-        raise
+    write_output(folder / CELLS_FILE, cells.write_parquet)
     payload = {
         "weighting": asdict(weighting) if weighting is not None else None,
         "variance": list(variance),
         "level": level,
         "manifest": manifest,
     }
-    write_atomically(folder / BOOK_FILE, json.dumps(payload, indent=1, ensure_ascii=False) + "\n")
+    write_text_output(folder / BOOK_FILE, json.dumps(payload, indent=1, ensure_ascii=False) + "\n")
     return folder
 
 

@@ -8,8 +8,9 @@ which the page hides until the reader switches them on. A cell may carry signifi
 `sig_higher_than`) and a wave-change mark (`change`: "up" / "down" from the cells column
 `wave_change`); the table's legend explains every symbol the table uses, once.
 
-Rows of kind "missing" ("No answer", "Not asked") that are 0 in every column are left out and
-the legend says so. Cells whose `flags` contain "suppressed" print SUPPRESSED.
+Rows of kind "missing" ("No answer") and "not-asked" that are 0 in every column are left out
+and the legend says so. Cells whose `flags` contain "suppressed" print SUPPRESSED; a wave that
+did not ask the variable (or the multi item) prints NOT_ASKED_IN_WAVE.
 """
 
 from __future__ import annotations
@@ -38,10 +39,13 @@ TYPE_LABELS = {
     "rating": "Rating scale",
     "numeric": "Number",
 }
-PERCENT_KINDS = ("category", "net", "item", "missing")
+PERCENT_KINDS = ("category", "excluded", "net", "item", "missing", "not-asked")
+UNTESTED_KINDS = ("missing", "not-asked", "excluded")  # shares shown without an interval
+OMITTED_WHEN_ZERO = ("missing", "not-asked")
 CHART_KINDS = ("category", "net", "item")
 ESTIMATED_STATISTICS = ("mean", "median")
 SET_BY_WEIGHTING = "set by weighting"
+NOT_ASKED_IN_WAVE = "not asked in this wave"
 SET_BY_WEIGHTING_NOTE = (
     "Percentages marked 'set by weighting' equal the population figures the weights were "
     "calibrated to; they carry no sampling error of their own."
@@ -185,6 +189,9 @@ def format_cell(row: dict | None, *, weighted: bool) -> Cell:
     if kind == "base":
         return Cell(text=count_text(row["count"]))
     estimate = row.get("estimate") if weighted else None
+    if estimate is not None and kind in UNTESTED_KINDS:
+        text, _ = percent_texts(estimate)
+        return Cell(text=text, base_flag=flag, count=count, estimate=estimate)
     if estimate is not None and kind in PERCENT_KINDS:
         if row.get("set_by_weighting"):
             text, _ = percent_texts(estimate)
@@ -244,13 +251,21 @@ def build_table(
 ) -> Table:
     """One variable's table from its cells (rows in `row_order`; a dash where a column has no data)."""
     by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
-    layout = cells.unique("row_order", keep="first").sort("row_order").select("row_order", "row_kind", "row_label")
+    layout = cells.unique("row_order", keep="first").sort("row_order").select(
+        "row_order", "row_kind", "row_label", "code"
+    )
     rows: list[TableRow] = []
     omitted: list[str] = []
-    for order, kind, row_label in layout.iter_rows():
+    for order, kind, row_label, code in layout.iter_rows():
+        item = code if kind == "item" else None
         frame_rows = [by_key.get((order, c.key)) for c in columns]
-        row_cells = tuple(format_cell(r, weighted=weighted) for r in frame_rows)
-        if kind == "missing" and _all_zero(frame_rows):
+        row_cells = tuple(
+            Cell(text=NOT_ASKED_IN_WAVE)
+            if r is None and not variable.asked_in(c.key, item)
+            else format_cell(r, weighted=weighted)
+            for r, c in zip(frame_rows, columns, strict=True)
+        )
+        if kind in OMITTED_WHEN_ZERO and _all_zero(frame_rows):
             omitted.append(row_label)
             continue
         details = () if kind == "base" else _details(row_cells, level_label=level_label)
@@ -285,6 +300,8 @@ def _legend(
         lines.append(f"{UP} / {DOWN} significantly higher / lower than the wave before.")
     if any(c.text == NO_DATA for c in cells):
         lines.append(f"{NO_DATA} no figures for this column.")
+    if any(c.text == NOT_ASKED_IN_WAVE for c in cells):
+        lines.append("“not asked in this wave”: the question was not part of that wave.")
     for label in omitted:
         lines.append(f"“{label}” is 0 in every column and not shown.")
     lines += notes

@@ -22,13 +22,18 @@ def add_single_file(parser: argparse.ArgumentParser) -> None:
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --single-file / --folder (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --force, --single-file / --folder (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
         metavar="BOOK.html",
         help="where to write the book (default: book/<spec name>.html beside the spec; a folder "
         "book goes to the folder of that name without .html)",
+    )
+    parser.add_argument(
+        "--force",
+        action="store_true",
+        help="replace an existing --out file that wavebook did not write (never an input of the study)",
     )
     add_single_file(parser)
 
@@ -37,5 +42,5 @@ def run(args: argparse.Namespace) -> int:
     """Re-render the book and print its path."""
     from pipeline.runner import rebuild_book
 
-    print(rebuild_book(args.spec, out=args.out, single_file=args.single_file, quiet=args.quiet))
+    print(rebuild_book(args.spec, out=args.out, single_file=args.single_file, quiet=args.quiet, force=args.force))
     return 0

@@ -12,6 +12,8 @@ if TYPE_CHECKING:
 
     import polars as pl
 
+    from pipeline.errors import Problem
+
 HELP = "estimate means, totals, proportions, ratios or quantiles with design-based standard errors"
 EXAMPLE = "wavebook estimate wave3.csv --weight wt --strata region --psu area --proportion q1 --by age_band"
 # the same choices as pipeline.estimation (design.SINGLE_PSU_POLICIES, api.VARIANCE_METHODS; kept literal so
@@ -56,6 +58,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "within-PSU variance term is added in full; 1: whole PSUs were taken)",
     )
     design.add_argument(
+        "--first-stage",
+        choices=("equal", "pps"),
+        default="equal",
+        help="how PSUs were drawn: equal probability within stratum (default) or pps, probability proportional "
+        "to size (no population size or sampling fraction: with-replacement variance unless --psu-inclusion is given)",
+    )
+    design.add_argument(
+        "--psu-inclusion",
+        metavar="COL",
+        help="with --first-stage pps: each PSU's first-stage inclusion probability, for the (1 - pi) approximation "
+        "(Taylor only; default: none)",
+    )
+    design.add_argument(
         "--single-psu",
         type=option_value("--single-psu"),
         choices=SINGLE_PSU_POLICIES,
@@ -96,6 +111,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
     var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
     parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
+    parser.add_argument(
+        "--interval",
+        choices=("korn-graubard", "logit", "t"),
+        default="korn-graubard",
+        help="interval of proportions (default korn-graubard: exact binomial limits on the effective sample size; "
+        "means, totals and ratios always use t, quantiles the Woodruff interval)",
+    )
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
     add_retired_options(parser)
 
@@ -103,9 +125,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     """Read DATA, estimate, print one row per estimate (CSV or a JSON array)."""
     import json
+    import sys
     from pathlib import Path
 
-    from pipeline.errors import Problem, SpecError
+    from pipeline.errors import Problem, UsageError
     from pipeline.estimation.api import estimate
     from pipeline.estimation.result import COLUMNS
     from pipeline.progress import step
@@ -130,10 +153,12 @@ def run(args: argparse.Namespace) -> int:
     if collapse and args.single_psu != "collapse":
         problems.append(Problem(rule="bad-option", message="--collapse-with needs --single-psu collapse"))
     if problems:
-        raise SpecError("the estimate options are invalid", problems)
+        raise UsageError("the estimate options are invalid", problems)
     path = Path(args.data)
     with step(f"reading {path.name}", quiet=args.quiet):
         frame = _read(path)
+    for warning in weight_warnings(frame, args.weight, source=str(path)):
+        print(warning.render(), file=sys.stderr)
     with step("estimating", quiet=args.quiet):
         result = estimate(
             frame,
@@ -156,9 +181,12 @@ def run(args: argparse.Namespace) -> int:
             replicates=args.replicates,
             seed=args.seed,
             level=args.level,
+            interval=args.interval,
             single_psu=args.single_psu,
             collapse_with=collapse,
             second_stage_fraction=args.second_stage_fraction,
+            first_stage=args.first_stage,
+            psu_inclusion=args.psu_inclusion,
             source=str(path),
         ).select(COLUMNS)
     if args.format == "json":
@@ -178,6 +206,44 @@ def _column_or_number(value: str | None) -> str | float | None:
         return value
 
 
+DOMINANT_SHARE = 0.5  # one weight holding more than half the total: common practice, no source
+
+
+def weight_warnings(frame: pl.DataFrame, weight: str, *, source: str) -> list[Problem]:
+    """DataError (all-weights-zero) when every weight is zero; a warning (dominant-weight) with the
+    Kish effective n = (sum w)^2 / sum w^2 (Kish 1965, Survey Sampling, section 11.7; from memory) when one
+    weight holds more than DOMINANT_SHARE of the total. Other weight problems (missing, negative,
+    not numeric) are left to the estimator's own checks."""
+    import polars as pl
+
+    from pipeline.errors import DataError, Problem
+
+    if weight not in frame.columns or not frame[weight].dtype.is_numeric() or frame.height == 0:
+        return []
+    w = frame[weight].cast(pl.Float64).drop_nulls()
+    if w.len() and (w == 0).all():
+        raise DataError(
+            f"{source}: every weight is zero",
+            [Problem("all-weights-zero", "every value of the weight column is 0; nothing can be estimated",
+                     file=source, column=weight, value="0", count=w.len())],
+        )
+    total = float(w.sum())
+    if not total > 0 or w.len() < 2 or float(w.max()) <= DOMINANT_SHARE * total:
+        return []
+    n_eff = total**2 / float((w * w).sum())
+    return [
+        Problem(
+            "dominant-weight",
+            f"one weight holds {float(w.max()) / total:.0%} of the total weight; the effective sample size is "
+            f"{n_eff:.1f} of {w.len():,} respondents, so every estimate rests on very few people",
+            severity="warning",
+            file=source,
+            column=weight,
+            value=f"{float(w.max()):g}",
+        )
+    ]
+
+
 def _read(path: Path) -> pl.DataFrame:
     """Read a CSV (types inferred from every row) or Parquet file into polars."""
     import polars as pl
@@ -188,10 +254,17 @@ def _read(path: Path) -> pl.DataFrame:
         raise FileNotFoundError(f"no such data file: {path}")
     suffix = path.suffix.lower()
     if suffix == ".parquet":
-        return pl.read_parquet(path)
-    if suffix in (".csv", ".txt"):
         try:
-            return pl.read_csv(path, infer_schema_length=None)
+            return pl.read_parquet(path, glob=False)
+        except (pl.exceptions.PolarsError, OSError) as exc:
+            problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
+            raise DataError("cannot read the data file", [problem]) from None
+    if suffix in (".csv", ".txt"):
+        from pipeline.staging.readers import checked_csv_header
+
+        header = checked_csv_header(path)
+        try:
+            return pl.read_csv(path, infer_schema_length=None, new_columns=header, glob=False)
         except pl.exceptions.PolarsError as exc:
             problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
             raise DataError("cannot read the data file", [problem]) from None

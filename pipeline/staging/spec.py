@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Literal
 
 from pipeline.errors import Problem, SpecError
+from pipeline.staging.conditions import NAME_PATTERN, ColumnInfo, Condition, ConditionError, bind, name_positions, parse
 from pipeline.renamed import renamed_key, renamed_value
 
 if TYPE_CHECKING:
@@ -57,6 +58,12 @@ class Design:
     second_stage_fraction: with PSUs and a finite population correction, the share of each selected
     PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
     taken), for the within-PSU term of the two-stage variance (pipeline.estimation.design).
+    first_stage: "equal" (PSUs drawn with equal probability within stratum, default) or "pps"
+    (probability proportional to size: no finite population correction, with-replacement variance,
+    unless psu_inclusion_probability names a column of each PSU's first-stage inclusion
+    probability, which gives the (1 - pi) approximation of pipeline.estimation.design).
+    extreme_weight_ratio: staging warns (extreme-weight, naming the ids) about a design weight above
+    this multiple of the wave's median weight (default 1,000: common practice, no source).
     """
 
     kind: Literal["probability", "nonprobability"] = "probability"
@@ -70,12 +77,18 @@ class Design:
     single_psu: Literal["error", "certainty", "grand-mean", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
+    first_stage: Literal["equal", "pps"] = "equal"
+    psu_inclusion_probability: str | None = None
+    extreme_weight_ratio: float = 1000.0
 
     @property
     def columns(self) -> tuple[str, ...]:
         """The data columns the design reads."""
         return tuple(
-            c for c in (self.strata, self.psu, self.base_weight, self.selection_probability) if c is not None
+            c
+            for c in (self.strata, self.psu, self.base_weight, self.selection_probability,
+                      self.psu_inclusion_probability)
+            if c is not None
         )
 
 
@@ -91,6 +104,15 @@ class Variable:
     such as "don't know" that are shown in distributions but left out of the mean, median, minimum,
     maximum and number of answers.
     nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "rating".
+    exclude_from_base: codes (e.g. 99 "don't know") shown as their own rows but outside the base
+    of the percentages (and of the statistics), for "single" and "rating".
+    asked_if: who was asked (pipeline.staging.conditions); the others are "Not asked", out of
+    every base of the variable. waves: the waves that asked it (None: every wave); in other
+    waves its columns need not exist. item_waves: for a multi set, item -> the waves that
+    asked that item.
+    column: wave -> the column's name in that wave's file (default: the variable's name).
+    recode: wave -> {code in that wave's file: codebook code}, applied before checking and
+    staging (so drift checks compare recoded values).
     """
 
     name: str
@@ -100,8 +122,43 @@ class Variable:
     items: dict[str, str] = field(default_factory=dict)
     nets: dict[str, tuple[Code, ...]] = field(default_factory=dict)
     exclude_from_statistics: tuple[Code, ...] = ()
+    exclude_from_base: tuple[Code, ...] = ()
     minimum: float | None = None
     maximum: float | None = None
+    asked_if: Condition | None = None
+    waves: tuple[str, ...] | None = None
+    item_waves: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    column: dict[str, str] = field(default_factory=dict)
+    recode: dict[str, dict[Code, Code]] = field(default_factory=dict)
+    when: dict[Code, Condition] = field(default_factory=dict)
+
+    @property
+    def derived(self) -> bool:
+        """Whether the variable is derived (`[derived.<name>]`): computed at staging, in no file."""
+        return bool(self.when)
+
+    def asked_in(self, wave_id: str, item: str | None = None) -> bool:
+        """Whether the wave asked the variable (and, for a multi set, the item)."""
+        if self.waves is not None and wave_id not in self.waves:
+            return False
+        return item is None or item not in self.item_waves or wave_id in self.item_waves[item]
+
+    def wave_columns(self, wave_id: str) -> tuple[str, ...]:
+        """The columns this variable reads in a wave's file (none in a wave that did not ask it,
+        none for a derived variable)."""
+        if self.derived or (self.waves is not None and wave_id not in self.waves):
+            return ()
+        return tuple(c for c in self.columns if self.asked_in(wave_id, c if self.type == "multi" else None))
+
+    @property
+    def unscored(self) -> tuple[Code, ...]:
+        """Codes left out of the statistics: those excluded from the statistics or from the base."""
+        return tuple(dict.fromkeys((*self.exclude_from_statistics, *self.exclude_from_base)))
+
+    @property
+    def routed(self) -> bool:
+        """Whether some respondents may not have been asked (a filter or a wave list)."""
+        return self.asked_if is not None or self.waves is not None or bool(self.item_waves)
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -125,7 +182,7 @@ class Variable:
             return tuple(self.values)
         if self.type != "rating" or not self.values:
             return ()
-        on_scale = [c for c in self.values if c not in self.exclude_from_statistics]
+        on_scale = [c for c in self.values if c not in self.unscored]
         filled = set(range(min(on_scale), max(on_scale) + 1)) if on_scale else set()
         return tuple(sorted(filled | set(self.values)))
 
@@ -175,7 +232,10 @@ class Study:
 # Loading and validation
 # ---------------------------------------------------------------------------------------------
 
-_TOP_KEYS = ("title", "notes", "respondent_id", "database", "waves", "design", "variables", "weighting", "variance")
+_TOP_KEYS = (
+    "title", "notes", "respondent_id", "database", "waves", "design", "variables", "derived", "weighting", "variance",
+)
+_DERIVED_KEYS = ("label", "type", "values", "nets", "when")
 _WAVE_KEYS = ("label", "file", "fieldwork")
 _DESIGN_KEYS = (
     "kind",
@@ -189,13 +249,19 @@ _DESIGN_KEYS = (
     "single_psu",
     "collapse_with",
     "second_stage_fraction",
+    "first_stage",
+    "psu_inclusion_probability",
+    "extreme_weight_ratio",
 )
+_ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
-    "single": ("label", "type", "values", "nets"),
-    "rating": ("label", "type", "values", "exclude_from_statistics", "nets"),
-    "multi": ("label", "type", "items"),
-    "numeric": ("label", "type", "minimum", "maximum"),
+    "single": ("label", "type", "values", "nets", "exclude_from_base", *_ROUTING_KEYS, "column", "recode"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "exclude_from_base", "nets", *_ROUTING_KEYS,
+               "column", "recode"),
+    "multi": ("label", "type", "items", *_ROUTING_KEYS),
+    "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS, "column"),
 }
+_ITEM_KEYS = ("label", "waves")
 _ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
 _VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "single": ("label", "values"),
@@ -235,6 +301,16 @@ def load_spec(path: str | Path) -> Study:
         raise SpecError(
             f"cannot read the study spec {spec_path}",
             [Problem("missing-file", f"the spec file {spec_path} does not exist", file=str(spec_path))],
+        ) from None
+    except IsADirectoryError:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("not-a-file", "this is a folder; name the study's .toml file", file=str(spec_path))],
+        ) from None
+    except OSError as exc:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("unreadable-file", f"{exc.strerror or exc}", file=str(spec_path))],
         ) from None
     except UnicodeDecodeError as exc:
         raise SpecError(
@@ -369,6 +445,8 @@ class _Checker:
         database = self.typed(data, "", "database", str)
         waves = self.waves(data.get("waves"), spec_path.parent) if "waves" in data else ()
         variables = self.variables(data.get("variables", {}))
+        variables = self.routing(data.get("variables", {}), variables, tuple(w.id for w in waves))
+        variables = {**variables, **self.derived(data.get("derived", {}), variables)}
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
@@ -477,10 +555,10 @@ class _Checker:
         if vtype == "numeric":
             return self.numeric(name, table, key, label)
         if vtype == "multi":
-            items = self.labels(table, key, "items")
+            items, item_waves = self.items(table, key)
             if label is None or items is None:
                 return None
-            return Variable(name, "multi", label, items=dict(items))
+            return Variable(name, "multi", label, items=items, item_waves=item_waves)
         labels = self.labels(table, key, "values")
         if labels is None or label is None:
             return None
@@ -495,9 +573,17 @@ class _Checker:
             exclude = self.code_list(
                 table["exclude_from_statistics"], f"{key}.exclude_from_statistics", base, tuple(values)
             )
-        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        outside = self.code_list(table["exclude_from_base"], f"{key}.exclude_from_base", base, tuple(values)) if (
+            "exclude_from_base" in table) else ()
+        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude,  # type: ignore[arg-type]
+                         exclude_from_base=outside)
         nets = self.nets(table, key, rated)
-        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        for net, members in nets.items():
+            inside = [c for c in members if c in outside]
+            if inside:
+                self.add("conflicting-keys", f"{key}.nets.{net}",
+                         f"code {inside[0]!r} is excluded from the base (exclude_from_base); a net cannot count it")
+        return replace(rated, nets=nets)
 
     def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
         low = self.typed(table, key, "minimum", float)
@@ -513,6 +599,147 @@ class _Checker:
             minimum=None if low is None else float(low),
             maximum=None if high is None else float(high),
         )
+
+    def items(self, table: dict, key: str) -> tuple[dict[str, str] | None, dict[str, tuple[str, ...]]]:
+        """A multi set's items: column -> label, or column -> { label, waves } (the waves that asked it)."""
+        value = self.typed(table, key, "items", dict)
+        if value is None:
+            return None, {}
+        if not value:
+            self.add("bad-value", f"{key}.items", "is empty; list at least one entry")
+            return None, {}
+        items: dict[str, str] = {}
+        item_waves: dict[str, tuple[str, ...]] = {}
+        for column, entry in value.items():
+            where = f"{key}.items.{column}"
+            if isinstance(entry, str):
+                items[column] = entry
+            elif isinstance(entry, dict):
+                self.keys(entry, where, _ITEM_KEYS, ("label",))
+                label = self.typed(entry, where, "label", str)
+                if label is not None:
+                    items[column] = label
+                if "waves" in entry:
+                    item_waves[column] = self.string_list(entry, where, "waves")
+            else:
+                self.add("wrong-type", where, f"must be a label or a table {{ label, waves }}, not {entry!r}", value=entry)
+        return (items if len(items) == len(value) else None), item_waves
+
+    def routing(self, raw: object, variables: dict[str, Variable], wave_ids: tuple[str, ...]) -> dict[str, Variable]:
+        """Read `asked_if` and `waves` once every variable is known (a condition may name a later one)."""
+        if not isinstance(raw, dict):
+            return variables
+        columns = _condition_columns(variables)
+        out = dict(variables)
+        for name, variable in variables.items():
+            table = raw[name]
+            key = f"variables.{name}"
+            waves = self.wave_list(table, key, wave_ids) if "waves" in table else None
+            item_waves = {
+                item: self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids)
+                for item, waves_of_item in variable.item_waves.items()
+            }
+            condition = self.condition(table, key, columns, variable) if "asked_if" in table else None
+            column = self.wave_columns(table, key, wave_ids) if "column" in table else {}
+            recode = self.recodes(table, key, wave_ids, variable) if "recode" in table else {}
+            out[name] = replace(
+                variable, asked_if=condition, waves=waves, item_waves=item_waves, column=column, recode=recode
+            )
+        return out
+
+    def derived(self, raw: object, variables: dict[str, Variable]) -> dict[str, Variable]:
+        """`[derived.<name>]`: single-choice variables whose code is the first `when` condition that holds."""
+        if not isinstance(raw, dict):
+            self.add("wrong-type", "derived", "must be a table of derived variables ([derived.<name>] blocks)")
+            return {}
+        columns = _condition_columns(variables)
+        out: dict[str, Variable] = {}
+        for name, table in raw.items():
+            key = f"derived.{name}"
+            if not isinstance(table, dict):
+                self.add("wrong-type", key, "must be a table with label, type, values and when")
+                continue
+            if name in variables:
+                self.add("duplicate-column", key, f"'{name}' is already a codebook variable (variables.{name})")
+                continue
+            self.keys(table, key, _DERIVED_KEYS, ("label", "type", "values", "when"))
+            if table.get("type", "single") != "single":
+                self.add("bad-value", f"{key}.type", "a derived variable is single-choice (type = \"single\")",
+                         value=table.get("type"))
+                continue
+            variable = self.variable(name, {k: v for k, v in table.items() if k in _DERIVED_KEYS[:4]}, key)
+            when = self.typed(table, key, "when", dict)
+            if variable is None or when is None:
+                continue
+            conditions: dict[Code, Condition] = {}
+            for code_key, text in when.items():
+                code = self.code_list([code_key], f"{key}.when.{code_key}", variable, variable.valid_codes)
+                condition = self.condition(when, f"{key}.when", columns, variable, name=code_key)
+                if code and condition is not None:
+                    conditions[code[0]] = condition
+            if not when:
+                self.add("bad-value", f"{key}.when", "give a condition for at least one code")
+            if conditions:
+                out[name] = replace(variable, when=conditions)
+        return out
+
+    def wave_columns(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> dict[str, str]:
+        raw = self.typed(table, key, "column", dict)
+        out: dict[str, str] = {}
+        for wave_id, column in (raw or {}).items():
+            where = f"{key}.column.{wave_id}"
+            if wave_id not in wave_ids:
+                self.add("bad-value", where, f"'{wave_id}' is not a wave of the spec ({', '.join(wave_ids)})", value=wave_id)
+            elif not isinstance(column, str) or not column:
+                self.add("wrong-type", where, f"must be the column's name in that wave's file, not {column!r}", value=column)
+            else:
+                out[wave_id] = column
+        return out
+
+    def recodes(self, table: dict, key: str, wave_ids: tuple[str, ...], variable: Variable) -> dict[str, dict[Code, Code]]:
+        raw = self.typed(table, key, "recode", dict)
+        out: dict[str, dict[Code, Code]] = {}
+        for wave_id, mapping in (raw or {}).items():
+            where = f"{key}.recode.{wave_id}"
+            if wave_id not in wave_ids:
+                self.add("bad-value", where, f"'{wave_id}' is not a wave of the spec ({', '.join(wave_ids)})", value=wave_id)
+                continue
+            if not isinstance(mapping, dict) or not mapping:
+                self.add("wrong-type", where, "must be a table {code in the file = codebook code}, e.g. { 6 = 5, 7 = 5 }")
+                continue
+            codes: dict[Code, Code] = {}
+            for source, target in mapping.items():
+                old = self.code(source, f"{where}.{source}", variable)
+                new = self.code_list([target], f"{where}.{source}", variable, variable.valid_codes)
+                if old is not None and new:
+                    codes[old] = new[0]
+            out[wave_id] = codes
+        return out
+
+    def wave_list(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> tuple[str, ...] | None:
+        listed = self.string_list(table, key, "waves")
+        unknown = [w for w in listed if w not in wave_ids]
+        for w in unknown:
+            self.add("bad-value", f"{key}.waves", f"'{w}' is not a wave of the spec ({', '.join(wave_ids)})", value=w)
+        if "waves" in table and isinstance(table["waves"], list) and not table["waves"]:
+            self.add("bad-value", f"{key}.waves", "lists no wave; list the waves that asked it, or drop the key")
+        return tuple(w for w in listed if w in wave_ids) or None
+
+    def condition(
+        self, table: dict, key: str, columns: dict[str, ColumnInfo], variable: Variable, *, name: str = "asked_if"
+    ) -> Condition | None:
+        text = self.typed(table, key, name, str)
+        if text is None:
+            return None
+        try:
+            parsed = parse(text)
+            for column, position in name_positions(parsed.tree):
+                if column in variable.columns:
+                    raise ConditionError(f"'{variable.name}' cannot be filtered on its own answers", text, position)
+            return bind(parsed, columns)
+        except ConditionError as exc:
+            self.add("bad-condition", f"{key}.{name}", exc.render(), value=text)
+            return None
 
     def labels(self, table: dict, key: str, name: str) -> dict[str, str] | None:
         value = self.typed(table, key, name, dict)
@@ -617,10 +844,23 @@ class _Checker:
         if second is not None and not 0 <= second <= 1:
             self.add("bad-value", "design.second_stage_fraction", f"must lie between 0 and 1, not {second}", value=second)
             second = None
-        if second is not None and (psu is None or not (population or fraction)):
+        first_stage = self.choice(raw, "design", "first_stage", ("equal", "pps"), "equal")
+        inclusion = self.typed(raw, "design", "psu_inclusion_probability", str)
+        if first_stage == "pps" and (population or fraction):
+            self.add("conflicting-keys", "design.population" if population else "design.sampling_fraction",
+                     "a size-proportional first stage (first_stage = \"pps\") takes no equal-probability correction "
+                     "1 - n_h/N_h: drop it (with-replacement variance) or give psu_inclusion_probability")
+        if inclusion is not None and (first_stage != "pps" or psu is None):
+            self.add("conflicting-keys", "design.psu_inclusion_probability",
+                     "psu_inclusion_probability applies to first_stage = \"pps\" with design.psu")
+        if second is not None and (psu is None or not (population or fraction or inclusion)):
             self.add("conflicting-keys", "design.second_stage_fraction",
                      "second_stage_fraction only applies with design.psu and a finite population correction "
-                     "(population or sampling_fraction)")
+                     "(population, sampling_fraction or psu_inclusion_probability)")
+        ratio = self.typed(raw, "design", "extreme_weight_ratio", float)
+        if ratio is not None and not ratio > 1:
+            self.add("bad-value", "design.extreme_weight_ratio", f"must be above 1, not {ratio}", value=ratio)
+            ratio = None
         return Design(
             kind=kind,  # type: ignore[arg-type]
             strata=strata,
@@ -633,6 +873,9 @@ class _Checker:
             single_psu=single_psu,  # type: ignore[arg-type]
             collapse_with=collapse,
             second_stage_fraction=float(second) if second is not None else 0.0,
+            first_stage=first_stage,  # type: ignore[arg-type]
+            psu_inclusion_probability=inclusion,
+            extreme_weight_ratio=float(ratio) if ratio is not None else 1000.0,
         )
 
     def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:
@@ -733,6 +976,19 @@ class _Checker:
             column = getattr(design, name)
             if column in owner and variables[owner[column]].type == "multi":
                 self.add("duplicate-column", f"design.{name}", f"'{column}' is an item of a multi-response set")
+
+
+def _condition_columns(variables: dict[str, Variable]) -> dict[str, ColumnInfo]:
+    """What a condition may read: coded variables with their codes, numeric variables, 0/1 items."""
+    columns: dict[str, ColumnInfo] = {}
+    for name, variable in variables.items():
+        if variable.type == "multi":
+            columns.update({item: ColumnInfo("int", frozenset({0, 1})) for item in variable.items})
+        elif variable.type == "numeric":
+            columns[name] = ColumnInfo("number")
+        else:
+            columns[name] = ColumnInfo("int" if variable.int_coded else "text", frozenset(variable.valid_codes))
+    return {c: info for c, info in columns.items() if NAME_PATTERN.match(c)}
 
 
 def _ranges(codes: tuple[Code, ...]) -> list[str]:
