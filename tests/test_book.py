@@ -604,3 +604,33 @@ def test_trend_panels_follow_each_measure_across_waves(tmp_path: Path, cells: pl
     first = panels[0]
     assert [p.get("class") for p in _svg(first, "polygon")] == ["band"] and _svg(first, "polyline")
     assert len(_svg(first, "circle")) == 2  # two waves
+
+
+def test_folder_book_that_cannot_be_written_keeps_the_previous_one(
+    tmp_path: Path, cells: pl.DataFrame, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    out = tmp_path / "book" / "study.html"
+    index = render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    before = {p.name: p.read_bytes() for p in index.parent.iterdir()}
+    real_write = Path.write_text
+
+    def full_disk(self: Path, *args: object, **kwargs: object) -> int:
+        if self.suffix == ".html":
+            raise OSError(28, "No space left on device")
+        return real_write(self, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "write_text", full_disk)
+    with pytest.raises(WavebookError, match="cannot write"):
+        render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    monkeypatch.undo()
+    assert {p.name: p.read_bytes() for p in index.parent.iterdir()} == before
+    assert sorted(p.name for p in (tmp_path / "book").iterdir()) == ["study"]  # no temporary folder left
+
+
+def test_a_folder_not_written_by_wavebook_is_not_replaced(tmp_path: Path, cells: pl.DataFrame) -> None:
+    foreign = tmp_path / "book" / "study"
+    foreign.mkdir(parents=True)
+    (foreign / "notes.txt").write_text("mine", encoding="utf-8")
+    with pytest.raises(WavebookError, match="not writing"):
+        render_book(_study(tmp_path), cells, out_path=tmp_path / "book" / "study.html", single_file=False)
+    assert [p.name for p in foreign.iterdir()] == ["notes.txt"]

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.errors import Problem, WavebookError
-from pipeline.outputs import is_own_output, write_text_output
+from pipeline.outputs import cannot_write, is_own_output, write_text_output
 
 BOOK_PARTS = ("cover", "contents", "methodology", "tables", "trends", "appendix")
 TREND_TABLES_PER_PAGE = 40  # a folder book's trends pages hold this many tables' panels each
@@ -90,8 +90,10 @@ def write_book(out_path: Path, files: Mapping[str, str], *, single_file: bool) -
 
     One file: `out_path`, with any other files (manifest.json) beside it, each through
     `pipeline.outputs.write_text_output` (atomic, recorded as wavebook's own output). A folder:
-    `out_path` without its suffix, holding every file; an existing folder is replaced only when
-    its index.html is wavebook's own unchanged output (rule output-exists otherwise)."""
+    `out_path` without its suffix, holding every file, written into a temporary folder that is
+    then renamed into place (so a reader never sees half a book; only index.html is recorded in
+    the folder's output marker); an existing folder is replaced only when its index.html is
+    wavebook's own unchanged output (rule output-exists otherwise)."""
     if single_file:
         for name, text in files.items():
             if name:
@@ -109,7 +111,10 @@ def write_book(out_path: Path, files: Mapping[str, str], *, single_file: bool) -
     aside: Path | None = None
     try:
         for name, text in files.items():
-            write_text_output(staging / name, text)
+            if name != "index.html":
+                (staging / name).write_text(text, encoding="utf-8")
+                os.chmod(staging / name, 0o666 & ~_umask())
+        write_text_output(staging / "index.html", files["index.html"])  # recorded: the folder is ours
         os.chmod(staging, 0o777 & ~_umask())
         if folder.exists():
             aside = Path(tempfile.mkdtemp(dir=folder.parent, prefix=f".{folder.name}.", suffix=".old"))
@@ -117,12 +122,14 @@ def write_book(out_path: Path, files: Mapping[str, str], *, single_file: bool) -
         os.replace(staging, folder)
         if aside is not None:
             shutil.rmtree(aside, ignore_errors=True)
-    except BaseException:
+    except BaseException as exc:
         if aside is not None and not folder.exists() and (aside / folder.name).exists():
             os.replace(aside / folder.name, folder)  # put the previous book back
         shutil.rmtree(staging, ignore_errors=True)
         if aside is not None:
             shutil.rmtree(aside, ignore_errors=True)
+        if isinstance(exc, OSError):
+            raise cannot_write(folder, exc) from None
         raise
     return folder / "index.html"
 
