@@ -110,15 +110,17 @@ def variance_options(study: Study) -> VarianceOptions:
 
 def weigh_and_estimate(
     study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False
-) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
+) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
-    (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
+    (wave, variable, row_order), the weighting report of each wave, and for replicate methods
+    each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting warnings go to
     stderr. Each wave's estimates come from one grouped pass over that wave's respondents.
     """
     wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
     reports: dict[str, WeightingReport] = {}
+    adjustments: dict[str, dict[str, int]] = {}
     estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
     con = open_database(study)
     try:
@@ -135,10 +137,12 @@ def weigh_and_estimate(
                 estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
+            if options.method != "taylor":
+                adjustments[wave_id] = recipe.replicate_adjustments()
     finally:
         con.close()
     joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")
-    return joined, reports
+    return joined, reports, adjustments
 
 
 def run_study(
@@ -178,10 +182,13 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet)
+    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     weighting = weighting_section(study, reports)
-    variance = variance_lines(options, study, calibrated=calibrated)
+    variance = variance_lines(
+        options, study, calibrated=calibrated, replicate_adjustments=adjustments,
+        replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
+    )
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
     save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):

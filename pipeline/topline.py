@@ -11,7 +11,8 @@ The long frame has one row per (wave, variable, row) with the columns of `CELL_S
 
   wave        wave id
   variable    variable name (for a multiple-response set, the set's name)
-  row_kind    "base" | "category" | "excluded" | "net" | "item" | "statistic" | "missing" | "not-asked"
+  row_kind    "base" | "category" | "excluded" | "net" | "balance" | "item" | "statistic" | "missing"
+              | "not-asked"
   row_order   position of the row in the variable's table (same for every wave)
   row_label   the label shown in the book
   code        category code as text; item column for items; statistic name ("n", "mean",
@@ -19,7 +20,8 @@ The long frame has one row per (wave, variable, row) with the columns of `CELL_S
   count       respondents in the row (null for statistics)
   base        respondents the row's percentage is computed on
   percent     100 * count / base (null for base and statistic rows, and when base is 0)
-  value       the statistic's value (statistic rows only)
+  value       the statistic's value (statistic rows), or a balance score in points (percentage
+              with a plus code minus percentage with a minus code, on the base)
   note        a short explanation shown under the table (e.g. codes excluded from a mean)
 
 Bases. "base" rows count respondents with a valid answer: a code for single and rating
@@ -62,7 +64,7 @@ CELL_SCHEMA: dict[str, pl.DataType] = {
     "note": pl.String(),
 }
 
-ROW_KINDS = ("base", "category", "excluded", "net", "item", "statistic", "missing", "not-asked")
+ROW_KINDS = ("base", "category", "excluded", "net", "balance", "item", "statistic", "missing", "not-asked")
 STATISTICS = {"n": "Number of answers", "mean": "Mean", "median": "Median", "min": "Minimum", "max": "Maximum"}
 BASE_LABELS = {"asked": "Base: all asked", "answered": "Base: all giving an answer"}
 MISSING_LABEL = {"multi": "Not asked", "default": "No answer"}
@@ -168,10 +170,16 @@ def _multi_counts(
     if not variables:
         return {}
     sets = [{"name": v.name, "items": list(v.items)} for v in variables]
+    sets += [{"name": net_set(v.name, label), "items": list(items)} for v in variables for label, items in v.nets.items()]
     items = [column for v in variables for column in v.items]
     query = sql("topline_multi.sql", items=items, sets=sets, source=ROUTED_VIEW)
     rows = con.execute(query, {"waves": wave_ids}).fetchall()
     return {(level, wave, name): (answered, selected or 0) for level, wave, name, answered, selected in rows}
+
+
+def net_set(variable: str, label: str) -> str:
+    """The name under which the multi-response query counts a net of items."""
+    return f"{variable}::net::{label}"
 
 
 def _asked_counts(con: duckdb.DuckDBPyConnection, wave_ids: list[str], flags: list[str]) -> dict[tuple[str, str], int]:
@@ -230,6 +238,7 @@ def _coded_rows(
         layout += [
             _Row("net", label, members=tuple(_code_text(c) for c in codes)) for label, codes in variable.nets.items()
         ]
+        layout += [_Row("balance", label, note=_balance_note(variable, label)) for label in variable.balance]
     if variable.type in ("numeric", "rating"):
         note = _exclusion_note(variable)
         layout += [_Row("statistic", label, code=key, note=note) for key, label in STATISTICS.items()]
@@ -253,6 +262,11 @@ def _coded_rows(
             elif row.kind == "net":
                 count = sum(counts.get(code, 0) for code in set(row.members))
                 records.append(_record(wave, variable, order, row, count=count, base=in_base))
+            elif row.kind == "balance":
+                plus, minus = ({_code_text(c) for c in side} for side in variable.balance[row.label])
+                difference = sum(counts.get(c, 0) for c in plus) - sum(counts.get(c, 0) for c in minus)
+                value = 100.0 * difference / in_base if in_base else None
+                records.append(_record(wave, variable, order, row, base=in_base, value=value))
             elif row.kind == "statistic":
                 n = int(stats.get("n") or 0)
                 value = float(n) if row.code == "n" else stats.get(row.code)
@@ -277,6 +291,7 @@ def _multi_rows(
     note = "Percentages of respondents asked; respondents could choose more than one, so items add to more than 100%."
     layout = [_Row("base", base_label(variable), note=note)]
     layout += [_Row("item", label, code=column) for column, label in variable.items.items()]
+    layout += [_Row("net", label, members=tuple(items)) for label, items in variable.nets.items()]
     layout += [_Row("net", ANY_LABEL)]
     if variable.asked_if is not None:
         layout += [_Row("missing", MISSING_LABEL["default"]), _Row("not-asked", NOT_ASKED_LABEL)]
@@ -293,6 +308,9 @@ def _multi_rows(
                     continue
                 answered, selected = multi_counts.get(("item", wave, row.code), (0, 0))
                 records.append(_record(wave, variable, order, row, count=selected, base=answered))
+            elif row.kind == "net" and row.members:
+                _, selected = multi_counts.get(("set", wave, net_set(variable.name, row.label)), (0, 0))
+                records.append(_record(wave, variable, order, row, count=selected, base=asked))
             elif row.kind == "net":
                 records.append(_record(wave, variable, order, row, count=any_selected, base=asked))
             elif row.kind == "missing":
@@ -300,6 +318,13 @@ def _multi_rows(
             else:
                 records.append(_record(wave, variable, order, row, count=sizes[wave] - asked_n[wave], base=sizes[wave]))
     return pl.DataFrame(records, schema=CELL_SCHEMA, orient="row")
+
+
+def _balance_note(variable: Variable, label: str) -> str:
+    """How a balance score is formed, shown under the table."""
+    plus, minus = variable.balance[label]
+    return (f"{label}: the percentage answering {', '.join(map(str, plus))} minus the percentage answering "
+            f"{', '.join(map(str, minus))}, in points.")
 
 
 def base_label(variable: Variable) -> str:

@@ -10,6 +10,10 @@ the fitted weighting recipe of each wave and the `[variance]` options, and retur
       "not-asked" rows every respondent of the wave; pipeline.staging.routing; for categories and
       nets of a variable with `exclude_from_base` the answers outside those codes, for the
       "excluded" rows of those codes the respondents asked);
+  balance rows: 100 * the weighted mean over the base of z_i = 1[plus] - 1[minus], i.e. the
+      percentage plus minus the percentage minus; its linearization is that of the difference of
+      the two percentages (same denominator), so its SE is the SE of the linear contrast,
+      var(p+) + var(p-) - 2 cov(p+, p-), covariance included; t interval;
   statistic "mean": the weighted mean of the answers (codes excluded from the statistics left out);
   statistic "median": the weighted median with its Woodruff (1952) interval; for a rating scale
       the interpolated median of grouped data (each answer k spread evenly over k -/+ 1/2,
@@ -83,11 +87,12 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
     if variable.type == "multi":
         items = list(variable.items)
         answered_any = pl.any_horizontal([pl.col(c).is_not_null() for c in items])
-        for order, kind, code in rows.select("row_order", "row_kind", "code").iter_rows():
+        for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
             if kind == "item":
                 out.append((order, kind, pl.col(code).eq(1).fill_null(False), pl.col(code).is_not_null()))
             elif kind == "net":
-                out.append((order, kind, pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in items]), answered_any))
+                members = variable.nets.get(label, tuple(items))
+                out.append((order, kind, pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in members]), answered_any))
             elif kind == "missing":
                 out.append((order, kind, answered_any.not_(), asked))
             elif kind == "not-asked":
@@ -107,6 +112,10 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
         elif kind == "net":
             members = [str(c) for c in variable.nets[label]]
             out.append((order, kind, text.is_in(members).fill_null(False), in_base))
+        elif kind == "balance":
+            plus, minus = ([str(c) for c in side] for side in variable.balance[label])
+            score = text.is_in(plus).fill_null(False).cast(pl.Float64) - text.is_in(minus).fill_null(False).cast(pl.Float64)
+            out.append((order, kind, score, in_base))
         elif kind == "missing":
             out.append((order, kind, answered.not_(), asked))
         elif kind == "not-asked":
@@ -221,7 +230,8 @@ def wave_estimates(
     se[fixed], low[fixed], high[fixed] = 0.0, est[fixed], est[fixed]
     deff = table["deff"].to_numpy().astype(float)
     deff[fixed] = np.nan
-    scale = np.where(percent, 100.0, 1.0)
+    balance = np.array([k == "balance" for k in kinds])
+    scale = np.where(percent | balance, 100.0, 1.0)
     return pl.DataFrame(
         {
             "wave": [wave] * table.height,

@@ -30,7 +30,7 @@ def cells(tmp_path: Path) -> pl.DataFrame:
         toplines = unweighted_toplines(con, study)
     finally:
         con.close()
-    estimated, _ = weigh_and_estimate(study, toplines, variance_options(study), quiet=True)
+    estimated, *_ = weigh_and_estimate(study, toplines, variance_options(study), quiet=True)
     return estimated
 
 

@@ -54,3 +54,14 @@ def test_integer_valued_statistics_print_without_decimals() -> None:
     assert statistic_number("n", 1578.0) == "1,578"
     assert statistic_number("mean", 7.0) == "7.00"  # a mean is not integer-valued
     assert statistic_number("median", 437.5) == "437.50"
+
+
+def test_balance_scores_print_signed_whole_points_with_their_interval() -> None:
+    from pipeline.book.tables import format_cell
+
+    row = {"row_kind": "balance", "base": 200, "count": None, "estimate": 12.4, "ci_low": -3.6, "ci_high": 20.5,
+           "se": 4.1, "deff": 1.3, "value": None}
+    cell = format_cell(row, weighted=True)
+    assert (cell.text, cell.interval, cell.se, cell.deff) == ("+12", "-4 to +21", "4.10", "1.30")
+    assert format_cell({**row, "estimate": 0.2, "value": None}, weighted=True).text == "0"
+    assert format_cell({**row, "value": -7.0}, weighted=False).text == "-7"

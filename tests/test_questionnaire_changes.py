@@ -87,7 +87,7 @@ def _cells(t: Tracker) -> pl.DataFrame:
         cells = unweighted_toplines(con, study)
     finally:
         con.close()
-    estimated, _ = weigh_and_estimate(study, cells, variance_options(study), quiet=True)
+    estimated, *_ = weigh_and_estimate(study, cells, variance_options(study), quiet=True)
     return estimated
 
 

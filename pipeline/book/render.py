@@ -102,6 +102,8 @@ class BookContext:
     when the book was rendered without one) and manifest_hash its short SHA-256. pages: the files
     of the book; links: href of each page kind ("cover", "contents", "methodology", "trends",
     "appendix"); trend_pages: a folder book's trends pages when there is more than one.
+    status: the one-line heading of what the figures are (weighted by the weighting steps, by
+    the design weights only, or unweighted).
     """
 
     title: str
@@ -126,6 +128,7 @@ class BookContext:
     weighting: WeightingSection | None = None
     manifest: dict | None = None
     manifest_hash: str | None = None
+    status: str = "Unweighted counts and percentages"
 
 
 def render_book(
@@ -211,6 +214,7 @@ def build_context(
         title=study.title,
         notes=tuple(study.notes),
         weighted=weighted,
+        status=_status(study, weighted=weighted),
         waves=waves,
         completes=staged[-1] if staged else None,
         design=_design_lines(study.design),
@@ -305,6 +309,17 @@ MEDIAN_WEIGHTED = (
     "at or below it. Medians carry no design effect."
 )
 MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
+
+
+def _status(study: Study, *, weighted: bool) -> str:
+    """The book's heading line: only a study with weighting steps is headed as weighted estimates."""
+    if not weighted:
+        return "Unweighted counts and percentages"
+    if study.weighting:
+        return "Weighted estimates with confidence intervals"
+    if study.design.base_weight or study.design.selection_probability:
+        return "Estimates with design weights (no weighting adjustments) and confidence intervals"
+    return "Estimates with equal weights and confidence intervals"
 
 
 def _methodology(*, weighted: bool) -> tuple[str, ...]:

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import polars as pl
 
 from pipeline.book.charts import DotChart, dot_chart
-from pipeline.book.numbers import count_text, percent_texts, ratio_text, statistic_interval, statistic_number
+from pipeline.book.numbers import count_text, half_up, percent_texts, ratio_text, statistic_interval, statistic_number
 from pipeline.staging.spec import Variable
 
 # Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
@@ -188,6 +188,8 @@ def format_cell(row: dict | None, *, weighted: bool) -> Cell:
     count = count_text(row["count"]) if row.get("count") is not None else None
     if kind == "base":
         return Cell(text=count_text(row["count"]))
+    if kind == "balance":
+        return _balance_cell(row, flag, weighted=weighted, marks=marks)
     estimate = row.get("estimate") if weighted else None
     if estimate is not None and kind in UNTESTED_KINDS:
         text, _ = percent_texts(estimate)
@@ -219,6 +221,27 @@ def format_cell(row: dict | None, *, weighted: bool) -> Cell:
         return Cell(text=NO_DATA, count=count, base_flag=flag)
     text, _ = percent_texts(row["percent"])
     return Cell(text=text, count=count, base_flag=flag, estimate=row["percent"], **marks)
+
+
+def balance_text(points: float) -> str:
+    """A balance score in points, rounded half up, with its sign ("+12", "-3", "0")."""
+    whole = int(half_up(points))
+    return f"{whole:+d}" if whole else "0"
+
+
+def _balance_cell(row: dict, flag: str | None, *, weighted: bool, marks: dict) -> Cell:
+    """A balance score (share positive minus share negative, in points): signed whole points."""
+    estimate = row.get("estimate") if weighted else None
+    if estimate is None:
+        value = row.get("value")
+        return Cell(text=NO_DATA if value is None else balance_text(value), base_flag=flag,
+                    estimate=value, **marks)
+    low, high = row.get("ci_low"), row.get("ci_high")
+    interval = f"{balance_text(low)} to {balance_text(high)}" if low is not None and high is not None else None
+    return Cell(
+        text=balance_text(estimate), base_flag=flag, interval=interval, se=_se_text("balance", row.get("se")),
+        deff=ratio_text(row.get("deff")), estimate=estimate, low=low, high=high, **marks,
+    )
 
 
 def _details(cells: Sequence[Cell], *, level_label: str) -> tuple[DetailRow, ...]:

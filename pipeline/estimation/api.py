@@ -46,6 +46,7 @@ VARIANCE_METHODS: tuple[str, ...] = (
 # (`replicates` module docstring); they get the within-PSU term of the two-stage estimator too
 FPC_REPLICATE_METHODS: tuple[str, ...] = ("jackknife", "stratified-jackknife")
 WEIGHT_QUANTITY = "__weight"
+EQUAL_WEIGHT = "__equal_weight"
 FINAL_WEIGHT = "__final_weight_for_cdf"
 
 
@@ -68,11 +69,12 @@ class _Cell:
 
 
 def _as_list(value: object) -> list:
+    """The requests as a list, each once (a repeated identical request is estimated once)."""
     if value is None:
         return []
     if isinstance(value, str | tuple):
         return [value]
-    return list(value)
+    return list(dict.fromkeys(tuple(v) if isinstance(v, list) else v for v in value))
 
 
 def _answered(col: str, frame: pl.DataFrame) -> pl.Expr:
@@ -122,6 +124,13 @@ class _Plan:
         for c in categories:
             num = self.q(f"eq|{var}|{c}|{dom}", (pl.col(var).eq(c).fill_null(False) & d).cast(pl.Float64))
             self.cells.append(_Cell("proportion", var, str(c), dom, num, base, base, num, num, base))
+
+    def count(self, frame: pl.DataFrame, var: str, dom: str, d: pl.Expr, categories: list) -> None:
+        """Weighted count of each category: the total of its indicator (a total, like `total`)."""
+        base = self.q(f"base|{var}|{dom}", (_answered(var, frame) & d).cast(pl.Float64))
+        for c in categories:
+            num = self.q(f"eq|{var}|{c}|{dom}", (pl.col(var).eq(c).fill_null(False) & d).cast(pl.Float64))
+            self.cells.append(_Cell("count", var, str(c), dom, num, None, base, num, None, None))
 
     def ratio(self, frame: pl.DataFrame, num_col: str, den_col: str, dom: str, d: pl.Expr) -> None:
         a = (_answered(num_col, frame) & _answered(den_col, frame) & d).cast(pl.Float64)
@@ -182,7 +191,7 @@ def _parse_ratios(ratio: object) -> list[tuple[str, str]]:
 def estimate_table(
     frame: pl.DataFrame,
     *,
-    weight: str,
+    weight: str | None = None,
     strata: str | None = None,
     psu: str | None = None,
     population_size: str | Mapping[str, float] | float | None = None,
@@ -190,6 +199,7 @@ def estimate_table(
     psu_ids: str = "within-stratum",
     mean: str | Sequence[str] | None = None,
     total: str | Sequence[str] | None = None,
+    count: str | Sequence[str] | None = None,
     proportion: str | Sequence[str] | None = None,
     ratio: tuple[str, str] | Sequence[tuple[str, str]] | None = None,
     quantile: tuple[str, float] | Sequence[tuple[str, float]] | None = None,
@@ -197,7 +207,8 @@ def estimate_table(
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
     replicate_multiplier: float | None = None,
-    replicate_method: str = "sdr",
+    replicate_method: str | None = None,
+    replicate_df: int | None = None,
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -215,15 +226,19 @@ def estimate_table(
     psu_inclusion: str | None = None,
 ) -> EstimateTable:
     """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
+    if weight is None:  # equal weights
+        frame, weight = frame.with_columns(pl.lit(1.0).alias(EQUAL_WEIGHT)), EQUAL_WEIGHT
     design = SampleDesign(
         weight=weight, strata=strata, psu=psu, psu_ids=psu_ids,  # type: ignore[arg-type]
         population_size=population_size, sampling_fraction=sampling_fraction,
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
         second_stage_fraction=float(second_stage_fraction), first_stage=first_stage, psu_inclusion=psu_inclusion,
     )
-    _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
+    _check_request(frame, design, mean=mean, total=total, count=count, proportion=proportion, ratio=ratio,
+                   quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
-                   reweight=reweight, calibration_matrix=calibration_matrix, interval=interval)
+                   reweight=reweight, calibration_matrix=calibration_matrix, interval=interval,
+                   replicate_method=replicate_method, replicate_df=replicate_df, fay=fay, replicates=replicates, seed=seed)
     domains = _domains(frame, by)
     plan = _Plan()
     for dom, d in domains.items():
@@ -233,6 +248,8 @@ def estimate_table(
             plan.mean_or_total(frame, var, dom, d, statistic="total")
         for var in _as_list(proportion):
             plan.proportion(frame, var, dom, d, frame[var].drop_nulls().unique().sort().to_list())
+        for var in _as_list(count):
+            plan.count(frame, var, dom, d, frame[var].drop_nulls().unique().sort().to_list())
         for num_col, den_col in _parse_ratios(ratio):
             plan.ratio(frame, num_col, den_col, dom, d)
     cdfs = {}
@@ -270,7 +287,8 @@ def estimate_table(
         theta = ratios.value(t)
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
-            replicate_multiplier=replicate_multiplier, replicate_method=replicate_method, fay=fay, replicates=replicates,
+            replicate_multiplier=replicate_multiplier, replicate_method=replicate_method or "sdr", fay=fay,
+            replicates=replicates, replicate_df=replicate_df, weight=weight,
             seed=seed, reweight=reweight, layout=layout, certainty=design.single_psu == "certainty", source=source,
         )
         has_fpc = layout is not None and layout.has_fpc
@@ -385,7 +403,7 @@ def product_moments(
 def estimate(
     frame: pl.DataFrame,
     *,
-    weight: str,
+    weight: str | None = None,
     strata: str | None = None,
     psu: str | None = None,
     population_size: str | Mapping[str, float] | float | None = None,
@@ -393,6 +411,7 @@ def estimate(
     psu_ids: str = "within-stratum",
     mean: str | Sequence[str] | None = None,
     total: str | Sequence[str] | None = None,
+    count: str | Sequence[str] | None = None,
     proportion: str | Sequence[str] | None = None,
     ratio: tuple[str, str] | Sequence[tuple[str, str]] | None = None,
     quantile: tuple[str, float] | Sequence[tuple[str, float]] | None = None,
@@ -400,7 +419,8 @@ def estimate(
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
     replicate_multiplier: float | None = None,
-    replicate_method: str = "sdr",
+    replicate_method: str | None = None,
+    replicate_df: int | None = None,
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -421,7 +441,7 @@ def estimate(
 
     Columns: statistic, variable, category, domain, estimate, se, ci_low, ci_high, df, deff, n,
     n_eff, reason, method. Options:
-      weight (required), strata, psu, psu_ids ("within-stratum"/"unique"); for the finite population
+      weight (default: equal weights, 1 for every row), strata, psu, psu_ids ("within-stratum"/"unique"); for the finite population
       correction either population_size (the first-stage population size N_h: a column, a mapping
       stratum -> N_h, or one number without strata) or sampling_fraction (f_h: a column, a mapping
       stratum -> f_h, or one number for every stratum);
@@ -430,11 +450,15 @@ def estimate(
       (1 - pi) approximation of `design`, Taylor only);
       second_stage_fraction: with an FPC and PSUs, the share of each selected PSU's units sampled
       (default 0, unknown: the within-PSU term is added in full; 1: whole PSUs, none is added);
-      mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
+      mean, total, proportion, count (weighted count of each category; column or list of columns), ratio ((num, den) or list of pairs),
       quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
       variance: "taylor" (default) or a replicate method: "jackknife", "stratified-jackknife", "brr",
       "fay", "bootstrap", "supplied" (replicate_cols: a regular expression matched against whole
-      column names or a list of names; replicate_method: how they were made, default "sdr";
+      column names or a list of names, never matching the weight column; replicate_method: how they
+      were made ("sdr" default, "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap"), which
+      sets the default multiplier (Wolter 2007: SDR 4/R, jackknife (R-1)/R, BRR 1/R, Fay
+      1/(R (1-rho)^2), bootstrap 1/R); replicate_df: their degrees of freedom (required for "brr"
+      and "fay": the number of half-sample pairs; default R - 1 otherwise);
       replicate_multiplier: the variance multiplier, default that of the method); fay, replicates,
       seed for the replicate methods; level: interval level; interval: for proportions,
       "korn-graubard" (default), "logit" or "t" (means, totals and ratios: t intervals; quantiles:
@@ -455,9 +479,10 @@ def estimate(
     """
     return estimate_table(
         frame, weight=weight, strata=strata, psu=psu, population_size=population_size,
-        sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total,
+        sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total, count=count,
         proportion=proportion, ratio=ratio, quantile=quantile, by=by, variance=variance,
         replicate_cols=replicate_cols, replicate_multiplier=replicate_multiplier, replicate_method=replicate_method,
+        replicate_df=replicate_df,
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
         reweight=reweight, source=source, second_stage_fraction=second_stage_fraction, interval=interval,
@@ -470,7 +495,7 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
     source = req["source"] if isinstance(req["source"], str) else None
     problems: list[Problem] = []
     wanted: list[str] = [*design.columns]
-    for key in ("mean", "total", "proportion"):
+    for key in ("mean", "total", "count", "proportion"):
         wanted += _as_list(req[key])
     for a, b in _parse_ratios(req["ratio"]):
         wanted += [a, b]
@@ -483,14 +508,29 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         if col not in frame.columns:
             problems.append(Problem(rule="missing-column", message="column not in the data", file=source, column=col))
     options = []
-    if not any(_as_list(req[k]) for k in ("mean", "total", "proportion", "ratio", "quantile")):
-        options.append(("ask for at least one mean, total, proportion, ratio or quantile", None))
+    if not any(_as_list(req[k]) for k in ("mean", "total", "count", "proportion", "ratio", "quantile")):
+        options.append(("ask for at least one mean, total, count, proportion, ratio or quantile", None))
     if req["variance"] not in VARIANCE_METHODS:
         options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))
     if req["interval"] not in INTERVAL_KINDS:
         options.append((f"interval must be one of {', '.join(INTERVAL_KINDS)}", str(req["interval"])))
-    if req["variance"] == "supplied" and not req["replicate_cols"]:
+    supplied = req["variance"] == "supplied"
+    made_with = (req["replicate_method"] or "sdr") if supplied else req["variance"]
+    if supplied and not req["replicate_cols"]:
         options.append(("supplied replicate weights need replicate_cols (a pattern or a list)", None))
+    for key, given, applies, where in (
+        ("replicate_cols", req["replicate_cols"] is not None, supplied, 'variance = "supplied"'),
+        ("replicate_method", req["replicate_method"] is not None, supplied, 'variance = "supplied"'),
+        ("replicate_df", req["replicate_df"] is not None, supplied, 'variance = "supplied"'),
+        ("fay", bool(req["fay"]), made_with == "fay", "the fay method"),
+        ("replicates", req["replicates"] is not None, req["variance"] == "bootstrap", 'variance = "bootstrap"'),
+        ("seed", req["seed"] is not None, req["variance"] == "bootstrap", 'variance = "bootstrap"'),
+    ):
+        if given and not applies:
+            options.append((f"{key} applies to {where} only; it does not apply to {made_with}", None))
+    if supplied and made_with in ("brr", "fay") and req["replicate_df"] is None:
+        options.append(("supplied brr or fay replicate weights need replicate_df, the number of half-sample pairs "
+                        "(their degrees of freedom; Wolter 2007 section 3.5, from memory)", None))
     if req["variance"] != "taylor" and design.psu_inclusion is not None:
         options.append(("the (1 - pi) approximation of a pps first stage is for Taylor linearization; replicate "
                         "methods use the with-replacement form: drop the PSU inclusion probabilities", None))
@@ -500,6 +540,11 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         options.append(("a weighting replay or calibration matrix needs the weighting-class column (classes)", None))
     problems += [Problem(rule="bad-option", message=m, value=v) for m, v in options]
     weight = design.weight
+    if supplied and isinstance(req["replicate_cols"], str) and re.fullmatch(req["replicate_cols"], weight):
+        message = (f"the replicate-column pattern also matches the full-sample weight column '{weight}'; "
+                   "anchor it so only the replicate columns match")
+        problems.append(Problem(rule="bad-option", message=message, file=source, column=weight,
+                                value=str(req["replicate_cols"])))
     if weight in frame.columns and not frame.schema[weight].is_numeric():
         message = f"the weight column is not numeric ({frame.schema[weight]})"
         problems.append(Problem(rule="bad-weight", message=message, file=source, column=weight))
@@ -528,6 +573,8 @@ def _replicate_variance(
     fay: float,
     replicates: int | None,
     seed: int | None,
+    replicate_df: int | None,
+    weight: str,
     reweight: Callable[[np.ndarray], np.ndarray] | None,
     layout: PsuLayout | None,
     certainty: bool,
@@ -542,11 +589,17 @@ def _replicate_variance(
     `replicate_method`).
     """
     from pipeline.estimation import replicates as rep
-    from pipeline.estimation.replicate_variance import replicate_df, replicate_variance
+    from pipeline.estimation.replicate_variance import replicate_df as df_of
+    from pipeline.estimation.replicate_variance import replicate_variance
 
     if variance == "supplied":
         cols = _replicate_columns(frame, replicate_cols)
-        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, multiplier=replicate_multiplier)
+        if weight in cols:
+            problem = Problem(rule="bad-option", message="the replicate columns include the full-sample weight",
+                              column=weight)
+            raise SpecError("the replicate columns are invalid", [problem])
+        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, multiplier=replicate_multiplier,
+                                  df=replicate_df)
         rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, cols, source=source)
     else:
         if layout is None:
@@ -560,7 +613,7 @@ def _replicate_variance(
             rf = replace(rf, multiplier=float(replicate_multiplier))
         rep_totals = rep.replicate_totals(gt, rf, reweight=reweight, base=WEIGHT_QUANTITY if reweight else None)
     v = replicate_variance(theta, ratios.value(rep_totals), rf)
-    return np.where(np.isfinite(theta), v, np.nan), replicate_df(rf)
+    return np.where(np.isfinite(theta), v, np.nan), df_of(rf)
 
 
 def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] | None) -> list[str]:
@@ -588,6 +641,7 @@ TIED_QUANTILE = ("the Woodruff interval collapses to a point (a tied value, or a
 QUANTILE_DEFF = "no design effect for a quantile (its interval comes from the proportion below it)"
 NO_SRS_VARIANCE = "no design effect: the simple-random-sampling variance is 0 or cannot be estimated"
 INTERVAL_KINDS: tuple[str, ...] = ("korn-graubard", "logit", "t")
+TOTALS: tuple[str, ...] = ("total", "count")  # estimates that are totals (den = -1)
 
 
 def _table(
@@ -632,7 +686,7 @@ def _table(
     sum_wz = np.where(ratios.is_total, t[ratios.num], 0.0)
     # a domain total is the total of y * 1[domain] over the whole sample, whose size is random under
     # SRS: its reference is an SRS of the variable's whole-sample base (`deff` module docstring)
-    srs_idx = np.array([col(f"base|{c.variable}|") if c.statistic == "total" and c.domain else col(c.base)
+    srs_idx = np.array([col(f"base|{c.variable}|") if c.statistic in TOTALS and c.domain else col(c.base)
                         for c in cells])
     srs_n = gt.counts.sum(axis=0)[srs_idx]
     v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=t[srs_idx], base_n=srs_n, fpc=has_fpc)
@@ -663,9 +717,9 @@ def _table(
             reason[i], missing[i] = NO_DOMAIN_RESPONDENTS if c.domain else NO_RESPONDENTS, True
         elif not np.isfinite(theta[i]):
             reason[i], missing[i] = ZERO_DENOMINATOR, True
-        elif c.statistic != "total" and n[i] == 1:
+        elif c.statistic not in TOTALS and n[i] == 1:
             reason[i], no_variance[i] = ONE_RESPONDENT, True
-        elif c.statistic != "total" and psus_present[i] < 2:
+        elif c.statistic not in TOTALS and psus_present[i] < 2:
             reason[i], no_variance[i] = ONE_PSU, True
         if c.statistic == "quantile" and not missing[i]:
             cdf = cdfs[c.variable][c.domain]

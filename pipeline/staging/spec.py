@@ -106,6 +106,9 @@ class Variable:
     nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "rating".
     exclude_from_base: codes (e.g. 99 "don't know") shown as their own rows but outside the base
     of the percentages (and of the statistics), for "single" and "rating".
+    For "multi", nets: label -> items (a net of respondents choosing any of them).
+    balance: label -> (plus codes, minus codes): the percentage giving a plus code minus the
+    percentage giving a minus code, for "single" and "rating".
     asked_if: who was asked (pipeline.staging.conditions); the others are "Not asked", out of
     every base of the variable. waves: the waves that asked it (None: every wave); in other
     waves its columns need not exist. item_waves: for a multi set, item -> the waves that
@@ -123,6 +126,7 @@ class Variable:
     nets: dict[str, tuple[Code, ...]] = field(default_factory=dict)
     exclude_from_statistics: tuple[Code, ...] = ()
     exclude_from_base: tuple[Code, ...] = ()
+    balance: dict[str, tuple[tuple[Code, ...], tuple[Code, ...]]] = field(default_factory=dict)
     minimum: float | None = None
     maximum: float | None = None
     asked_if: Condition | None = None
@@ -218,6 +222,7 @@ class Study:
             variable_types={name: v.type for name, v in self.variables.items()},
             coded=frozenset(coded | ({self.design.strata} if self.design.strata else set())),
             codes={name: tuple(str(c) for c in v.valid_codes) for name, v in self.variables.items() if v.valid_codes},
+            waves=tuple(w.id for w in self.waves),
         )
 
     def wave(self, wave_id: str) -> Wave:
@@ -236,6 +241,7 @@ _TOP_KEYS = (
     "title", "notes", "respondent_id", "database", "waves", "design", "variables", "derived", "weighting", "variance",
 )
 _DERIVED_KEYS = ("label", "type", "values", "nets", "when")
+ANY_ITEM_LABEL = "Any of these"  # the multi set's own net of every item (pipeline.topline)
 _WAVE_KEYS = ("label", "file", "fieldwork")
 _DESIGN_KEYS = (
     "kind",
@@ -255,10 +261,10 @@ _DESIGN_KEYS = (
 )
 _ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
-    "single": ("label", "type", "values", "nets", "exclude_from_base", *_ROUTING_KEYS, "column", "recode"),
-    "rating": ("label", "type", "values", "exclude_from_statistics", "exclude_from_base", "nets", *_ROUTING_KEYS,
-               "column", "recode"),
-    "multi": ("label", "type", "items", *_ROUTING_KEYS),
+    "single": ("label", "type", "values", "nets", "balance", "exclude_from_base", *_ROUTING_KEYS, "column", "recode"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "exclude_from_base", "nets", "balance",
+               *_ROUTING_KEYS, "column", "recode"),
+    "multi": ("label", "type", "items", "nets", *_ROUTING_KEYS),
     "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS, "column"),
 }
 _ITEM_KEYS = ("label", "waves")
@@ -558,7 +564,7 @@ class _Checker:
             items, item_waves = self.items(table, key)
             if label is None or items is None:
                 return None
-            return Variable(name, "multi", label, items=items, item_waves=item_waves)
+            return Variable(name, "multi", label, items=items, item_waves=item_waves, nets=self.item_nets(table, key, items))
         labels = self.labels(table, key, "values")
         if labels is None or label is None:
             return None
@@ -583,7 +589,7 @@ class _Checker:
             if inside:
                 self.add("conflicting-keys", f"{key}.nets.{net}",
                          f"code {inside[0]!r} is excluded from the base (exclude_from_base); a net cannot count it")
-        return replace(rated, nets=nets)
+        return replace(rated, nets=nets, balance=self.balance(table, key, rated))
 
     def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
         low = self.typed(table, key, "minimum", float)
@@ -787,6 +793,45 @@ class _Checker:
             return str(item)
         self.add("wrong-type", key, f"codes of '{variable.name}' are strings; got {item!r}", value=item)
         return None
+
+    def item_nets(self, table: dict, key: str, items: dict[str, str]) -> dict[str, tuple[Code, ...]]:
+        """A multi set's nets: label -> its items."""
+        raw = self.typed(table, key, "nets", dict)
+        nets: dict[str, tuple[Code, ...]] = {}
+        for label, members in (raw or {}).items():
+            where = f"{key}.nets.{label}"
+            if label == ANY_ITEM_LABEL:
+                self.add("bad-value", where, f"'{ANY_ITEM_LABEL}' is the set's own net of every item; choose another label")
+            if not isinstance(members, list) or not members or not all(isinstance(m, str) for m in members):
+                self.add("wrong-type", where, f"must list item columns of the set, e.g. [\"{next(iter(items))}\"]")
+                continue
+            unknown = [m for m in members if m not in items]
+            for m in unknown:
+                self.add("bad-value", where, f"'{m}' is not an item of the set ({', '.join(items)})", value=m)
+            if not unknown:
+                nets[label] = tuple(dict.fromkeys(members))
+        return nets
+
+    def balance(self, table: dict, key: str, variable: Variable) -> dict[str, tuple[tuple[Code, ...], tuple[Code, ...]]]:
+        """Balance scores: label -> { plus = [codes], minus = [codes] } (disjoint, inside the base)."""
+        raw = self.typed(table, key, "balance", dict)
+        out: dict[str, tuple[tuple[Code, ...], tuple[Code, ...]]] = {}
+        allowed = tuple(c for c in variable.valid_codes if c not in variable.exclude_from_base)
+        for label, sides in (raw or {}).items():
+            where = f"{key}.balance.{label}"
+            if not isinstance(sides, dict) or set(sides) != {"plus", "minus"}:
+                self.add("wrong-type", where, "must be a table { plus = [codes], minus = [codes] }")
+                continue
+            plus = self.code_list(sides["plus"], f"{where}.plus", variable, allowed)
+            minus = self.code_list(sides["minus"], f"{where}.minus", variable, allowed)
+            both = [c for c in plus if c in minus]
+            if both:
+                self.add("conflicting-keys", where, f"code {both[0]!r} is both plus and minus")
+            elif plus and minus:
+                out[label] = (plus, minus)
+            else:
+                self.add("bad-value", where, "plus and minus each need at least one code")
+        return out
 
     def nets(self, table: dict, key: str, variable: Variable) -> dict[str, tuple[Code, ...]]:
         raw = self.typed(table, key, "nets", dict)

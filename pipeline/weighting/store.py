@@ -13,12 +13,13 @@ from typing import TYPE_CHECKING
 import numpy as np
 import polars as pl
 
-from pipeline.errors import WavebookError
+from pipeline.errors import SpecError, WavebookError
+from pipeline.outputs import write_output, write_text_output
 from pipeline.sqlfiles import sql
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
 from pipeline.weighting.recipe import FittedRecipe, fit_recipe, largest
-from pipeline.weighting.steps import parse_steps
+from pipeline.weighting.steps import parse_steps, steps_for_wave
 
 if TYPE_CHECKING:
     import duckdb
@@ -43,7 +44,7 @@ def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> t
     from pipeline.staging.database import load_responses
 
     context = study.step_context()
-    steps = parse_steps(study.weighting, context)
+    steps = steps_for_wave(parse_steps(study.weighting, context), wave_id, source=str(study.path))
     data = load_responses(con, study, [wave_id])
     base, _ = design_base_weights(data, study, id_column=ID)
     recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=context.code_order(set(study.variables)))
@@ -137,12 +138,50 @@ def export_weights(con: duckdb.DuckDBPyConnection, wave_ids: list[str], path: Pa
     return frame.height
 
 
+def export_replicates(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection, path: Path) -> int:
+    """Write respondent_id, wave, weight and replicate_1..replicate_R of one wave to `path`, and the
+    variance recipe to `<path>.replicates.json` (`pipeline.estimation.replicate_export`); returns R."""
+    import json
+
+    from pipeline.estimation.replicate_export import replicate_weights
+    from pipeline.estimation.design import SampleDesign
+    from pipeline.estimation.options import parse_variance
+    from pipeline.staging.database import load_responses
+
+    options, problems = parse_variance(study.variance)
+    if problems:
+        raise SpecError(f"{study.path}: the [variance] table has {len(problems)} problem(s)", problems)
+    recipe, _ = fit_wave(study, wave_id, con=con)
+    d = study.design
+    design = SampleDesign(weight="__unused", strata=d.strata, psu=d.psu, psu_ids=d.psu_ids,
+                          population_size=_stratum_values(d.population), sampling_fraction=_stratum_values(d.sampling_fraction),
+                          single_psu=d.single_psu, collapse_with={str(k): str(v) for k, v in d.collapse_with.items()},
+                          second_stage_fraction=d.second_stage_fraction, first_stage=d.first_stage)
+    responses = load_responses(con, study, [wave_id])
+    export = replicate_weights(responses, design, recipe, method=options.method, fay=options.fay,
+                               replicates=options.replicates, seed=options.seed, fpc_values=design.fpc_values(responses))
+    frame = pl.DataFrame({"respondent_id": export.ids, "wave": [wave_id] * len(export.ids),
+                          "weight": recipe.weights}).with_columns(
+        pl.Series(f"replicate_{r + 1}", export.weights[:, r]) for r in range(export.weights.shape[1]))
+    write_frame(frame, path)
+    write_text_output(replicate_sidecar(path), json.dumps({"wave": wave_id, **export.metadata()}, indent=1))
+    return int(export.weights.shape[1])
+
+
+def replicate_sidecar(path: Path) -> Path:
+    """`<path>.replicates.json`: the variance recipe beside an export of replicate weights (checked
+    with `pipeline.outputs.check_output` like the export itself)."""
+    return path.with_name(f"{path.name}.replicates.json")
+
+
+def _stratum_values(values: dict) -> dict[str, float] | None:
+    return {str(k): float(v) for k, v in values.items()} if values else None
+
+
 def write_frame(frame: pl.DataFrame, path: Path) -> None:
     """Write a frame to `path` (.csv or .parquet) through `pipeline.outputs.write_output` (a
     temporary file renamed into place, recorded as wavebook's own output). The caller checks
     `path` first with `pipeline.outputs.check_output`."""
-    from pipeline.outputs import write_output
-
     suffix = path.suffix.lower()
     if suffix not in (".csv", ".parquet"):
         raise WavebookError(f"cannot write {path}: the file name must end in .csv or .parquet")
