@@ -9,11 +9,14 @@ order, are small functions so later stages slot in between staging and rendering
   4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
   5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
                                          effects joined onto the same cells
-  6. `render_book`                       the HTML book, written atomically
+  6. `save_results`                      the cells and the book's other inputs stored
+                                         (`wavebook book` re-renders from them)
+  7. `render_book`                       the HTML book and its manifest.json, written atomically
 """
 
 from __future__ import annotations
 
+import datetime as dt
 import sys
 from pathlib import Path
 
@@ -21,6 +24,8 @@ import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
+from pipeline.book.manifest import run_manifest
+from pipeline.book.store import load_results, save_results
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.outputs import check_output, file_sha256, study_inputs
@@ -147,15 +152,18 @@ def run_study(
     restage: bool = False,
     quiet: bool = False,
     force: bool = False,
+    single_file: bool | None = None,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), and renders the book to `book_path(study, out, force=force)`, which is
-    checked first. Raises SpecError / DataError with every problem found.
+    (`weigh_and_estimate`), stores the book's inputs (`save_results`) and renders the book to
+    `book_path(study, out, force=force)`, which is checked first (`single_file` as in
+    `render_book`), with the run manifest. Raises SpecError / DataError with every problem found.
     """
+    started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
     options = variance_options(study)
@@ -176,14 +184,47 @@ def run_study(
             con.close()
     cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
+    weighting = weighting_section(study, reports)
+    variance = variance_lines(
+        options, study, calibrated=calibrated, replicate_adjustments=adjustments,
+        replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
+    )
+    manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
+    save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
             cells,
             out_path=out_path,
-            weighting=weighting_section(study, reports),
-            variance=variance_lines(options, study, calibrated=calibrated, replicate_adjustments=adjustments,
-                                    replicates={w: options.replicates or 500 for w in adjustments}
-                                    if options.method == "bootstrap" else None),
+            weighting=weighting,
+            variance=variance,
             level=options.level,
+            single_file=single_file,
+            manifest=manifest,
+        )
+
+
+def rebuild_book(
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    single_file: bool | None = None,
+    quiet: bool = False,
+    force: bool = False,
+) -> Path:
+    """Render the book again from the results the last `run_study` stored, without staging,
+    weighting or estimating; the output is checked as in `run_study`. Returns the book's path."""
+    study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
+    stored = load_results(study)
+    with progress.step("writing the book", quiet=quiet):
+        return render_book(
+            study,
+            stored.cells,
+            out_path=out_path,
+            weighting=stored.weighting,
+            variance=stored.variance,
+            level=stored.level,
+            single_file=single_file,
+            manifest=stored.manifest,
         )
