@@ -9,6 +9,9 @@ order, are small functions so later stages slot in between staging and rendering
   4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
   5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
                                          effects joined onto the same cells
+  5b. `pipeline.tables.Tabulation`       with `[tables]`: banner cells and tests of each wave from
+                                         the same weighted rows; `<stem>_cells` / `<stem>_tests`
+                                         exports beside the book
   6. `render_book`                       the HTML book, written atomically
 """
 
@@ -27,6 +30,8 @@ from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.spec import Study, load_spec
 from pipeline.stage import file_sha256, stage_wave
+from pipeline.tables import Tabulation, tables_spec
+from pipeline.tables.exports import write_exports
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -71,9 +76,12 @@ def variance_options(study: Study) -> VarianceOptions:
 
 
 def weigh_and_estimate(
-    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False
+    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False,
+    tabulation: Tabulation | None = None,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
+
+    With `tabulation`, each weighted wave is also given to it (banner tables, `pipeline.tables`).
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
     (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
@@ -95,6 +103,9 @@ def weigh_and_estimate(
                 responses = load_responses(con, study, [wave_id])
                 layout = cells.filter(pl.col("wave") == wave_id)
                 estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
+            if tabulation is not None:
+                with progress.step(f"banner tables of wave {wave_id}", quiet=quiet):
+                    tabulation.add_wave(wave_id, responses, recipe, layout)
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
     finally:
@@ -128,15 +139,23 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet)
+    spec = tables_spec(study)
+    tabulation = Tabulation(study, spec, options) if spec is not None else None
+    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     out_path = Path(out) if out is not None else default_book_path(study)
+    variance = variance_lines(options, study, calibrated=calibrated)
+    if tabulation is not None:
+        tables = tabulation.finish()
+        with progress.step("writing the banner exports", quiet=quiet):
+            write_exports(tables, out_path.parent, out_path.stem)
+        variance = (*variance, tables.chance.sentence(), *tables.notes)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
             cells,
             out_path=out_path,
             weighting=weighting_section(study, reports),
-            variance=variance_lines(options, study, calibrated=calibrated),
+            variance=variance,
             level=options.level,
         )

@@ -52,6 +52,8 @@ class Design:
     second_stage_fraction: with PSUs and a finite population correction, the share of each selected
     PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
     taken), for the within-PSU term of the two-stage variance (pipeline.estimation.design).
+    same_psus_across_waves: the waves re-interview the same PSUs (a panel of areas), so wave-over-wave
+    changes are estimated on the waves stacked into one design (pipeline.tables.wave_change).
     """
 
     kind: Literal["probability", "nonprobability"] = "probability"
@@ -65,6 +67,7 @@ class Design:
     single_psu: Literal["error", "certainty", "centre", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
+    same_psus_across_waves: bool = False
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -138,6 +141,8 @@ class Study:
     database: Path | None = None  # default: <spec stem>.duckdb beside the spec
     weighting: tuple[dict, ...] = ()  # raw [[weighting]] steps, parsed by pipeline.weighting
     variance: dict = field(default_factory=dict)  # raw [variance] table, parsed by pipeline.estimation
+    tables: dict = field(default_factory=dict)  # raw [tables] table, parsed by pipeline.tables.spec
+    banners: tuple[dict, ...] = ()  # raw [[banners]] tables, parsed by pipeline.tables.spec
 
     @property
     def database_path(self) -> Path:
@@ -156,7 +161,10 @@ class Study:
 # Loading and validation
 # ---------------------------------------------------------------------------------------------
 
-_TOP_KEYS = ("title", "notes", "respondent_id", "database", "waves", "design", "variables", "weighting", "variance")
+_TOP_KEYS = (
+    "title", "notes", "respondent_id", "database", "waves", "design", "variables", "weighting", "variance", "tables",
+    "banners",
+)
 _WAVE_KEYS = ("label", "file", "fieldwork")
 _DESIGN_KEYS = (
     "kind",
@@ -170,6 +178,7 @@ _DESIGN_KEYS = (
     "single_psu",
     "collapse_with",
     "second_stage_fraction",
+    "same_psus_across_waves",
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
     "single": ("label", "type", "values", "nets"),
@@ -190,6 +199,7 @@ _INT_LITERAL = re.compile(r"^[+-]?[0-9]+$")
 _TOML_POSITION = re.compile(r"\(at line (\d+), column (\d+)\)")
 
 _TYPE_NAMES = {
+    bool: "true or false",
     str: "a string",
     list: "an array",
     dict: "a table",
@@ -244,6 +254,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
     the spec is valid.
     """
     from pipeline.estimation.options import parse_variance
+    from pipeline.tables.spec import parse_tables
     from pipeline.weighting.steps import parse_steps
 
     problems: list[Problem] = []
@@ -255,6 +266,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
             parse_steps(study.weighting, study)
         except SpecError as exc:
             problems += exc.problems
+        problems += parse_tables(study)[1]
     return problems
 
 
@@ -310,6 +322,8 @@ class _Checker:
         ok = type(value) is dt.date if kind is dt.date else isinstance(value, kind) and not isinstance(value, bool)
         if kind is float:
             ok = _is_number(value)
+        if kind is bool:
+            ok = isinstance(value, bool)
         if not ok:
             wanted = "a number" if kind is float else _TYPE_NAMES.get(kind, kind.__name__)
             full = f"{key}.{name}" if key else name
@@ -348,6 +362,11 @@ class _Checker:
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
+        tables = self.typed(data, "", "tables", dict)
+        banners = data.get("banners", [])
+        if not isinstance(banners, list) or not all(isinstance(b, dict) for b in banners):
+            self.add("wrong-type", "banners", "must be an array of tables ([[banners]] blocks)")
+            banners = []
         self.columns(respondent_id, design, variables)
         if self.problems:
             return None
@@ -362,6 +381,8 @@ class _Checker:
             database=(spec_path.parent / database) if database else None,
             weighting=weighting,
             variance=dict(variance or {}),
+            tables=dict(tables or {}),
+            banners=tuple(banners),
         )
 
     def weighting(self, data: dict) -> tuple[dict, ...]:
@@ -588,6 +609,7 @@ class _Checker:
             self.add("conflicting-keys", "design.second_stage_fraction",
                      "second_stage_fraction only applies with design.psu and a finite population correction "
                      "(population or sampling_fraction)")
+        same_psus = self.typed(raw, "design", "same_psus_across_waves", bool)
         return Design(
             kind=kind,  # type: ignore[arg-type]
             strata=strata,
@@ -600,6 +622,7 @@ class _Checker:
             single_psu=single_psu,  # type: ignore[arg-type]
             collapse_with=collapse,
             second_stage_fraction=float(second) if second is not None else 0.0,
+            same_psus_across_waves=bool(same_psus),
         )
 
     def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:
