@@ -19,6 +19,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.errors import SpecError
+from pipeline.estimation.api import FPC_REPLICATE_METHODS
 from pipeline.estimation.design import SampleDesign
 from pipeline.estimation.options import VarianceOptions
 from pipeline.spec import Study
@@ -123,7 +124,7 @@ def _independence(wave: str, wp: WavePlan, state: FitState) -> list[dict]:
     for (table, banner, brk), (_, _, idx) in wp.joints.items():
         flat = idx.ravel()
         p = state.theta[flat].reshape(idx.shape)
-        result = rao_scott(p, state.covariance(flat), int(n_all[flat[0]]), state.df)
+        result = rao_scott(p, state.covariance(flat, joint=True), int(n_all[flat[0]]), state.df)
         rows.append({
             "comparison": "independence", "wave": wave, "wave_b": None, "table": table, "variable": table,
             "row": None, "banner": banner, "column_a": brk, "column_b": None, "difference": None,
@@ -148,23 +149,27 @@ class Tabulation:
     notes: list[str] = field(default_factory=list)
 
     @property
+    def within_applies(self) -> bool:
+        """Whether variances add the within-PSU term (two-stage design, first-stage FPC, Taylor or jackknife)."""
+        design = self.study.design
+        fpc = bool(design.population or design.sampling_fraction)
+        method = self.options.method == "taylor" or self.options.method in FPC_REPLICATE_METHODS
+        return fpc and design.psu is not None and design.second_stage_fraction < 1 and method
+
+    @property
     def banners(self) -> dict[str, Banner]:
         return {name: build_banner(self.study, b) for name, b in self.spec.banners.items()}
 
     def add_wave(self, wave: str, responses: pl.DataFrame, recipe: FittedRecipe, layout: pl.DataFrame) -> None:
         """Tabulate one weighted wave: cells, column and Total tests, Rao-Scott tests (one grouped pass)."""
-        wp = plan_wave(self.study, self.spec, self.banners, layout)
+        wp = plan_wave(self.study, self.spec, self.banners, layout, cross_cells=self.within_applies)
         if not wp.refs:
             return
         frame = wave_frame(responses, recipe).with_columns(list(wp.derived.values()))
         state = fit_wave(frame, wp.plan, wp.medians, design_inputs(self.study, recipe, self.options), weight=_WEIGHT)
-        if state.within_missing:
-            self.notes.append(
-                f"Wave {wave}: differences are not tested because the two-stage variance with a finite population "
-                "correction needs the within-unit covariance of the two estimates, which is not computed yet.")
         cells = cell_frame(wave, wp, state, self.spec, level=self.options.level,
                            weighting_variables=set(recipe.class_frame.columns))
-        tests = column_tests(cells, state, self.spec)
+        tests = column_tests(cells, state, self.spec, wp)
         independence = pl.DataFrame(_independence(wave, wp, state), schema=TEST_COLUMNS, strict=False)
         if independence.height:
             from pipeline.tables.significance import mark

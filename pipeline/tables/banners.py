@@ -34,6 +34,7 @@ class Column:
     kind: str
     letter: str
     domain: pl.Expr
+    codes: frozenset | None = None  # the codes of a single-choice break's category or net column
 
 
 @dataclass(frozen=True)
@@ -66,17 +67,17 @@ def _codes(variable: Variable, codes: list) -> list:
     return [c if variable.int_coded else str(c) for c in codes]
 
 
-def _break_columns(variable: Variable) -> list[tuple[str, str, str, pl.Expr]]:
-    """(key, label, kind, domain) for each column of one break."""
+def _break_columns(variable: Variable) -> list[tuple[str, str, str, pl.Expr, frozenset | None]]:
+    """(key, label, kind, domain, codes) for each column of one break."""
     name = variable.name
     if variable.type == "multi":
-        return [(f"{name}={item}", label, "item", pl.col(item).eq(1).fill_null(False))
+        return [(f"{name}={item}", label, "item", pl.col(item).eq(1).fill_null(False), None)
                 for item, label in variable.items.items()]
     col = pl.col(name) if variable.int_coded else pl.col(name).cast(pl.String)
     out = [(f"{name}={code}", variable.values.get(code, str(code)), "category",
-            col.is_in(_codes(variable, [code])).fill_null(False)) for code in variable.valid_codes]
-    out += [(f"{name}:{label}", label, "net", col.is_in(_codes(variable, list(codes))).fill_null(False))
-            for label, codes in variable.nets.items()]
+            col.is_in(_codes(variable, [code])).fill_null(False), frozenset([code])) for code in variable.valid_codes]
+    out += [(f"{name}:{label}", label, "net", col.is_in(_codes(variable, list(codes))).fill_null(False),
+             frozenset(codes)) for label, codes in variable.nets.items()]
     return out
 
 
@@ -84,6 +85,6 @@ def build_banner(study: Study, spec: BannerSpec) -> Banner:
     """The columns of a banner spec (breaks validated by `pipeline.tables.spec`)."""
     columns = [Column(TOTAL, TOTAL, "", "total", "", pl.lit(True))]
     for name in spec.breaks:
-        for key, label, kind, domain in _break_columns(study.variables[name]):
-            columns.append(Column(key, label, name, kind, letter(len(columns) - 1), domain))
+        for key, label, kind, domain, codes in _break_columns(study.variables[name]):
+            columns.append(Column(key, label, name, kind, letter(len(columns) - 1), domain, codes))
     return Banner(spec.name, tuple(columns))

@@ -89,14 +89,33 @@ class WavePlan:
     derived: dict[str, pl.Expr] = field(default_factory=dict)  # derived column name -> expression
     # (table, banner, break variable) -> (row labels, column keys, (r, c) estimator indices)
     joints: dict[tuple[str, str, str], tuple[list[int], list[str], np.ndarray]] = field(default_factory=dict)
+    # (estimator a, estimator b), a < b, of one stub row -> the quantities of the products of their
+    # numerators and bases (y_na y_nb, y_na y_db, y_da y_nb, y_da y_db), for the within-PSU term
+    cross: dict[tuple[int, int], tuple[str | None, ...]] = field(default_factory=dict)
+
+    def pair_cross(self, a: np.ndarray, b: np.ndarray) -> list[tuple[str | None, ...]]:
+        """The product quantities of each pair (a[k], b[k]) of cells of one stub row."""
+        return [self.cross[(min(i, j), max(i, j))] for i, j in zip(a.tolist(), b.tolist(), strict=True)]
+
+    def joint_cross(self, idx: np.ndarray) -> list[tuple[str | None, ...]]:
+        """The product quantities of every pair of the joint cells `idx` (row-major): the stub's categories
+        and the break's columns are disjoint, so y_a y_b = 0 unless a = b; every base is the joint base."""
+        cells = self.plan.cells
+        return [(cells[i].num if i == j else None, cells[i].num, cells[j].num, cells[i].den)
+                for i in idx.tolist() for j in idx.tolist()]
 
 
 def _key(expr: pl.Expr) -> str:
     return str(expr)
 
 
-def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout: pl.DataFrame) -> WavePlan:
-    """Every cell, median and joint proportion of one wave's banner tables (module docstring)."""
+def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout: pl.DataFrame, *,
+              cross_cells: bool = False) -> WavePlan:
+    """Every cell, median and joint proportion of one wave's banner tables (module docstring).
+
+    cross_cells: also name the products of the quantities of every tested pair of cells (the
+    within-PSU term of a two-stage design with an FPC needs them, `pipeline.tables.within`).
+    """
     wp = WavePlan()
     plan = wp.plan
     for name, variable in study.variables.items():
@@ -111,6 +130,7 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
         bases = {_key(base): i for i, (_, _, _, base) in enumerate(exprs)}
         value = pl.col(name).cast(pl.Float64).fill_null(0.0).fill_nan(0.0) if variable.type != "multi" else None
         cell_index: dict[tuple[int, str], int] = {}
+        pairs_of_row: dict[int, list[tuple[Column, int]]] = {}
         for column in columns:
             d = column.domain
             for order, kind, y, base in exprs:
@@ -134,9 +154,59 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
                     statistic = "percent"
                     cell_index[(order, column.key)] = k
                 wp.refs.append(CellRef(name, name, int(order), labels.get(order, ""), banner.name, column, statistic, k))
+                if statistic != "median":
+                    pairs_of_row.setdefault(order, []).append((column, k))
+        if cross_cells:
+            kinds = {order: (kind, y, base) for order, kind, y, base in exprs}
+            for order, row_cells in pairs_of_row.items():
+                kind, y, base = kinds[order]
+                _cross_pairs(wp, name, order, kind, y, base, bases[_key(base)], value, row_cells)
         if variable.type in ("single", "scale"):
             _joint_cells(wp, name, banner, columns, exprs, cell_index, study)
     return wp
+
+
+def _cross_pairs(wp: WavePlan, name: str, order: int, kind: str, y: pl.Expr | None, base: pl.Expr, base_key: int,
+                 value: pl.Expr | None, row_cells: list[tuple[Column, int]]) -> None:
+    """The product quantities of every pair of one stub row's cells that a test compares.
+
+    Two cells of one row multiply to the row's quantities in the intersection of their columns:
+    the Total with a column gives the column; two columns of one single-choice break are disjoint
+    (no product) or nested (the smaller one); other overlaps (items of a multiple-response break,
+    nets that share codes) get the row's quantities in the intersection as new quantities.
+    """
+    plan = wp.plan
+    total = [(c, k) for c, k in row_cells if c.kind == "total"]
+
+    def own(k: int) -> tuple[str | None, ...]:
+        cell = plan.cells[k]
+        return (cell.s_nn, cell.num, cell.num, cell.base)
+
+    def inter(a: Column, b: Column) -> tuple[str | None, ...]:
+        d = a.domain & b.domain
+        tag = f"{a.key}&{b.key}"
+        base_q = plan.q(f"b|{name}|{base_key}|{tag}", base & d)
+        if kind == "mean":
+            num = plan.q(f"x|{name}|{tag}", value * (base & d).cast(pl.Float64))
+            return (plan.q(f"x2|{name}|{tag}", value * value * (base & d).cast(pl.Float64)), num, num, base_q)
+        num = plan.q(f"y|{name}|{order}|{tag}", y & base & d)
+        return (num, num, num, base_q)
+
+    for i, (a, ka) in enumerate(row_cells):
+        if a.kind == "total":
+            continue
+        for tc, kt in total:
+            wp.cross[(min(ka, kt), max(ka, kt))] = own(ka)
+        for b, kb in row_cells[i + 1:]:
+            if b.kind == "total" or b.break_variable != a.break_variable:
+                continue
+            if a.codes is not None and b.codes is not None:
+                common = a.codes & b.codes
+                products = ((None,) * 4 if not common else own(ka) if common == a.codes
+                            else own(kb) if common == b.codes else inter(a, b))
+            else:
+                products = inter(a, b)
+            wp.cross[(min(ka, kb), max(ka, kb))] = products
 
 
 def _joint_cells(wp: WavePlan, name: str, banner: Banner, columns: tuple[Column, ...], exprs: list,

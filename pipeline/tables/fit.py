@@ -18,10 +18,11 @@ combination of the estimators needs:
 
 The independent-samples shortcut v_a + v_b is never used within a wave.
 
-With a first-stage FPC in a two-stage design, the variance of each estimate adds the within-PSU
-term (`pipeline.estimation.taylor.within_psu_variance`); the within-PSU term of a difference needs
-the cross-moments of the two estimators, which the core does not give yet, so such differences get
-no variance (`FitState.within_missing`) rather than a wrong one.
+With a first-stage FPC in a two-stage design (Taylor, and the jackknife methods that apply the FPC)
+the variance of each estimate adds the within-PSU term, and so does the variance of a difference,
+with the within-PSU covariance of the two estimates (`pipeline.tables.within`): the caller names
+the products of the two estimators' quantities (`within.Cross`); without them a difference gets
+no variance rather than a wrong one.
 """
 
 from __future__ import annotations
@@ -39,6 +40,7 @@ from pipeline.estimation.options import VarianceOptions
 from pipeline.estimation.quantiles import weighted_cdfs
 from pipeline.estimation.taylor import Calibration, _fitted
 from pipeline.estimation.totals import GroupTotals, group_totals, sum_by
+from pipeline.tables.within import Cross, WithinTerms
 
 CHUNK_VALUES = 2**24  # largest (groups x estimators) block of linearized values held at once (128 MiB)
 
@@ -96,34 +98,49 @@ class FitState:
     z: np.ndarray | None  # (P, m) Taylor: PSU totals of the linearized variables
     theta_r: np.ndarray | None  # (R, m) replicates
     factors: object | None  # ReplicateFactors
-    within_missing: bool  # differences need the within-PSU cross-moments (module docstring)
+    within: WithinTerms | None  # the within-PSU term applies (module docstring)
+    within_own: np.ndarray | None  # (P, m) c2_j(k, k) of every estimator
+    columns: dict[str, int]  # quantity name -> column of the group totals
 
-    def difference_variance(self, a: np.ndarray, b: np.ndarray) -> np.ndarray:
-        """(q,) variances of theta_a - theta_b (index -1 in b: theta_a itself); NaN when not available."""
+    def cross(self, rows: list[tuple[str | None, str | None, str | None, str | None]]) -> Cross:
+        """`within.Cross` from quantity names (None: the product is 0)."""
+        return Cross.of([tuple(-1 if n is None else self.columns[n] for n in row) for row in rows])
+
+    def difference_variance(self, a: np.ndarray, b: np.ndarray, cross: Cross | None = None) -> np.ndarray:
+        """(q,) variances of theta_a - theta_b, covariance included; NaN when the within-PSU term
+        applies and `cross` (the products of a's and b's quantities) is not given."""
         a, b = np.asarray(a, dtype=np.int64), np.asarray(b, dtype=np.int64)
-        if self.within_missing:
+        if self.z is not None:
+            v = self.layout.variance(self.z[:, a] - self.z[:, b])
+        else:
+            from pipeline.estimation.replicate_variance import replicate_variance
+
+            v = replicate_variance(self.theta[a] - self.theta[b], self.theta_r[:, a] - self.theta_r[:, b],
+                                   self.factors)
+        if self.within is None:
+            return v
+        if cross is None:
             return np.full(len(a), np.nan)
-        if self.z is not None:
-            za = self.z[:, a]
-            zb = np.where(b[None, :] >= 0, self.z[:, np.maximum(b, 0)], 0.0)
-            return self.layout.variance(za - zb)
-        from pipeline.estimation.replicate_variance import replicate_variance
+        c2 = self.within_own[:, a] + self.within_own[:, b] - 2 * self.within.covariance_terms(a, b, cross)
+        return v + self.layout.second_stage(np.maximum(c2, 0.0))
 
-        ta = self.theta_r[:, a]
-        tb = np.where(b[None, :] >= 0, self.theta_r[:, np.maximum(b, 0)], 0.0)
-        full = self.theta[a] - np.where(b >= 0, self.theta[np.maximum(b, 0)], 0.0)
-        return replicate_variance(full, ta - tb, self.factors)
-
-    def covariance(self, idx: np.ndarray) -> np.ndarray:
-        """(k, k) covariance matrix of the estimators `idx` (NaN when not available)."""
+    def covariance(self, idx: np.ndarray, *, joint: bool = False) -> np.ndarray:
+        """(k, k) covariance matrix of the estimators `idx`. With the within-PSU term it is known for the
+        joint cells of a stub by a break only (`joint`, `WithinTerms.joint_covariance_terms`); NaN otherwise."""
         idx = np.asarray(idx, dtype=np.int64)
-        if self.within_missing:
-            return np.full((len(idx), len(idx)), np.nan)
         if self.z is not None:
-            return self.layout.covariance(self.z[:, idx])
-        from pipeline.estimation.replicate_variance import replicate_covariance
+            cov = self.layout.covariance(self.z[:, idx])
+        else:
+            from pipeline.estimation.replicate_variance import replicate_covariance
 
-        return replicate_covariance(self.theta[idx], self.theta_r[:, idx], self.factors)
+            cov = replicate_covariance(self.theta[idx], self.theta_r[:, idx], self.factors)
+        if self.within is None:
+            return cov
+        if not joint:
+            return np.full((len(idx), len(idx)), np.nan)
+        k = len(idx)
+        c2 = self.within.joint_covariance_terms(idx).reshape(-1, k * k)
+        return cov + self.layout.second_stage(c2).reshape(k, k)
 
 
 def domain_df(layout: PsuLayout, present: np.ndarray) -> np.ndarray:
@@ -216,12 +233,18 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
         theta_r = ratios.value(rep_totals)
         v = np.where(np.isfinite(theta), replicate_variance(theta, theta_r, rf), np.nan)
         df = float(replicate_df(rf))
-    within_applies = two_stage and (method == "taylor" or method in api.FPC_REPLICATE_METHODS)
-    if within_applies:
-        within = api._within_psu(frame, plan, gt, final, ratios, calibration, weight=weight,  # type: ignore[arg-type]
-                                 strata=design.strata, psu=design.psu, classes=inputs.classes,
-                                 psu_ids=design.psu_ids, reweight=inputs.reweight)
-        v = v + layout.second_stage(within)
+    within = within_own = None
+    if two_stage and (method == "taylor" or method in api.FPC_REPLICATE_METHODS):
+        squared = api._squared_totals(frame, plan, gt, weight=weight, strata=design.strata,  # type: ignore[arg-type]
+                                      psu=design.psu, classes=inputs.classes, psu_ids=design.psu_ids,
+                                      reweight=inputs.reweight).totals
+        u = z if z is not None else linearized_psu_totals(final, ratios, calibration=calibration)
+        within = WithinTerms.build(final, squared, ratios, calibration, u, weight_column=gt.column(api.WEIGHT_QUANTITY))
+        col = gt.column
+        own = Cross.of([(col(c.s_nn), col(c.s_nd), col(c.s_nd), col(c.s_dd)) for c in plan.cells])
+        every = np.arange(len(plan.cells))
+        within_own = within.covariance_terms(every, every, own)
+        v = v + layout.second_stage(np.maximum(within_own, 0.0))
     table = api._table(plan, gt, ratios, t, theta, v, df, cdfs, level=options.level,  # type: ignore[arg-type]
                        method=method, has_fpc=layout.has_fpc).frame
     base_idx = np.array([gt.column(c.base) for c in plan.cells], dtype=np.int64)
@@ -229,5 +252,5 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
     return FitState(
         table=table, theta=theta, variance=v, df=df, domain_df=np.minimum(domain_df(layout, present), df),
         base_weighted=t[base_idx], method=method, layout=layout, z=z, theta_r=theta_r, factors=rf,
-        within_missing=within_applies,
+        within=within, within_own=within_own, columns=gt._column_index,
     )

@@ -31,6 +31,11 @@ import numpy as np
 from scipy import stats
 
 
+# a mean generalized design effect below this is a table the weighting calibrates to (e.g. the cells of
+# an age x sex raking margin): it has no sampling variance to test (real design effects are near 1)
+SET_BY_WEIGHTING = 1e-6
+
+
 @dataclass(frozen=True)
 class RaoScott:
     """One test: Pearson's X2, the mean generalized design effect, a^2, the F statistic, its dfs and p."""
@@ -61,7 +66,8 @@ def _jacobian(r: int, c: int, p: np.ndarray) -> np.ndarray:
 def rao_scott(p: np.ndarray, cov: np.ndarray, n: int, design_df: float) -> RaoScott | None:
     """The test for joint proportions `p` (r, c) with design covariance `cov` (r c, r c) (module docstring).
 
-    None when fewer than two non-empty rows or columns remain, n < 2, or the covariance is not available.
+    None when fewer than two non-empty rows or columns remain, n < 2, the covariance is not available,
+    or the table is set by the weighting (mean design effect below `SET_BY_WEIGHTING`).
     """
     p = np.asarray(p, dtype=np.float64)
     keep_r, keep_c = p.sum(axis=1) > 0, p.sum(axis=0) > 0
@@ -81,7 +87,7 @@ def rao_scott(p: np.ndarray, cov: np.ndarray, n: int, design_df: float) -> RaoSc
     deffs = np.linalg.solve(h @ srs @ h.T, h @ cov @ h.T)
     trace = float(np.trace(deffs))
     mean_deff = trace / k
-    if not mean_deff > 0:
+    if not mean_deff > SET_BY_WEIGHTING:
         return None
     a2 = max(float(np.trace(deffs @ deffs)) / k / mean_deff**2 - 1.0, 0.0)
     nu = k / (1.0 + a2)

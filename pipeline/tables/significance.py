@@ -99,15 +99,19 @@ def adjust(p: pl.Expr, method: str, group: list[str]) -> pl.Expr:
     return (k * p / rank).clip(upper_bound=1.0).cum_min(reverse=True).over(group, order_by=p)
 
 
-def column_tests(cells: pl.DataFrame, state: object, spec: TablesSpec) -> pl.DataFrame:
-    """The pair and Total tests of one wave's cells (`TEST_COLUMNS`)."""
+def column_tests(cells: pl.DataFrame, state: object, spec: TablesSpec, wave_plan: object) -> pl.DataFrame:
+    """The pair and Total tests of one wave's cells (`TEST_COLUMNS`); `wave_plan` names the products
+    of the paired cells' quantities for the within-PSU term (`cells.WavePlan.pair_cross`)."""
     pairs = _pairs(cells, spec)
     if pairs.height == 0:
         return pl.DataFrame(schema=TEST_COLUMNS)
     a = pairs["estimator"].to_numpy()
     b = pairs["estimator_b"].to_numpy()
     scale = np.where(pairs["statistic"].to_numpy() == "percent", 100.0, 1.0)
-    var = state.difference_variance(a, b) * scale**2  # type: ignore[attr-defined]
+    cross = None
+    if state.within is not None:  # type: ignore[attr-defined]
+        cross = state.cross(wave_plan.pair_cross(a, b))  # type: ignore[attr-defined]
+    var = state.difference_variance(a, b, cross) * scale**2  # type: ignore[attr-defined]
     diff = (pairs["estimate"] - pairs["estimate_b"]).to_numpy()
     se = np.sqrt(np.maximum(var, 0.0))
     df = np.minimum(pairs["df"].to_numpy(), pairs["df_b"].to_numpy())
