@@ -11,8 +11,8 @@ What each timing counts:
                  bincount per question), kept as a yardstick for `group_totals`.
   Taylor         grouped pass + raking of the full sample on class totals + calibration-residual
                  Taylor variances of the 300 cells (`taylor_variance`).
-  jackknife      grouped pass + 400 JKn replicates, raking replayed in every replicate on class
-                 totals (helper W's raking engine `pipeline.weighting.ipf.rake`, all replicates at
+  jackknife      grouped pass + 400 stratified-jackknife replicates, raking replayed in every
+                 replicate on class totals (helper W's raking engine `pipeline.weighting.ipf.rake`, all replicates at
                  once) + replicate totals (`replicate_totals`) + variances.
   bootstrap      the same with 500 Rao-Wu bootstrap replicates.
   replicate totals alone  `replicate_totals` in its two dense formulations, the (PSU, class)
@@ -221,7 +221,8 @@ def grouped_phase(rows: int, repeats: int) -> dict:
 
     theta, v_taylor = timed(out, "taylor_after_pass", repeats, taylor)
 
-    for name, method, reps in (("jackknife", "jkn", None), ("bootstrap", "bootstrap", BOOTSTRAP_REPLICATES)):
+    methods = (("jackknife", "stratified-jackknife", None), ("bootstrap", "bootstrap", BOOTSTRAP_REPLICATES))
+    for name, method, reps in methods:
 
         def replicate(method: str = method, reps: int | None = reps) -> tuple[np.ndarray, int]:
             rf = make_replicates(method, gt.psu_stratum, replicates=reps, seed=5)
@@ -259,7 +260,7 @@ def dense_phase(rows: int, sample: int, repeats: int) -> dict:
     population = float(frame["w0"].sum()) * 1.05
     reweight, _ = make_reweight(population)
     gt = group_totals(frame, {"one": pl.lit(1.0)}, weight="w0", strata="stratum", psu="psu", classes="cls")
-    rf = make_replicates("jkn", gt.psu_stratum)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum)
     by_psu_class = np.zeros((gt.n_psus, gt.n_classes))
     np.add.at(by_psu_class, (gt.psu, gt.cls), gt.totals[:, 0])
     f = reweight(rf.factors @ by_psu_class)  # the replay, shared with the grouped method and not counted here

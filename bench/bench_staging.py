@@ -86,8 +86,8 @@ def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
         spec += [f"[variables.q{j:02d}]", f'label = "Question {j}"', 'type = "single"']
         spec += ["values = { " + ", ".join(f'{c} = "Answer {c}"' for c in range(1, 6)) + " }"]
     for j in range(N_SCALE):
-        spec += [f"[variables.sat{j:02d}]", f'label = "Rating {j}"', 'type = "scale"']
-        spec += ['values = { 0 = "0 Poor", 10 = "10 Excellent", 99 = "Don\'t know" }', "exclude_from_mean = [99]"]
+        spec += [f"[variables.sat{j:02d}]", f'label = "Rating {j}"', 'type = "rating"']
+        spec += ['values = { 0 = "0 Poor", 10 = "10 Excellent", 99 = "Don\'t know" }', "exclude_from_statistics = [99]"]
     for name in ("aware", "used"):
         spec += [f"[variables.{name}]", f'label = "{name}"', 'type = "multi"']
         spec += ["items = { " + ", ".join(f'{name}_b{k} = "Brand {k}"' for k in range(5)) + " }"]
@@ -100,8 +100,8 @@ def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
 
 def _measure(task: str, wave: str, spec_path: str, results: multiprocessing.Queue) -> None:
     """Child process: run one task on one wave, report (seconds, peak RSS in MiB, detail)."""
-    from pipeline.spec import load_spec
-    from pipeline.stage import check_wave, stage_wave
+    from pipeline.staging.spec import load_spec
+    from pipeline.staging.stage import check_wave, stage_wave
 
     study = load_spec(spec_path)
     start = time.perf_counter()

@@ -31,7 +31,7 @@ import polars as pl
 from pipeline import __version__
 from pipeline.errors import WavebookError
 from pipeline.resources import resource_dir
-from pipeline.spec import Design, Study, Variable, Wave
+from pipeline.staging.spec import Design, Study, Variable, Wave
 
 # Low-base thresholds: common practice, no source (trade rules of thumb for unweighted bases).
 LOW_BASE = 50
@@ -40,7 +40,7 @@ VERY_LOW_BASE = 30
 TYPE_LABELS = {
     "single": "Single choice",
     "multi": "Multiple choice",
-    "scale": "Rating scale",
+    "rating": "Rating scale",
     "numeric": "Number",
 }
 REQUIRED_COLUMNS = (
@@ -360,7 +360,7 @@ def _design_lines(design: Design) -> tuple[str, ...]:
         lines = ["Probability sample."]
     lines.append(f"Strata: column '{design.strata}'." if design.strata else "No stratification declared.")
     if design.psu:
-        ids = "restart within each stratum" if design.psu_ids == "nested" else "unique across strata"
+        ids = "restart within each stratum" if design.psu_ids == "within-stratum" else "unique across strata"
         lines.append(f"Primary sampling units: column '{design.psu}' (ids {ids}).")
     else:
         lines.append("Each respondent is their own primary sampling unit.")

@@ -15,7 +15,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Study
+from pipeline.staging.spec import Study
 from pipeline.weighting import WeightingReport
 from pipeline.weighting.targets import split_category, split_margin
 
@@ -194,8 +194,8 @@ def variance_lines(options: VarianceOptions, study: Study, *, calibrated: bool) 
         df = "Degrees of freedom: primary sampling units minus strata."
     else:
         names = {
-            "jk1": "delete-one-unit jackknife",
-            "jkn": "stratified delete-one-unit jackknife",
+            "jackknife": "delete-one-unit jackknife",
+            "stratified-jackknife": "stratified delete-one-unit jackknife",
             "brr": "balanced repeated replication",
             "fay": f"balanced repeated replication with Fay's coefficient {options.fay:g}",
             "bootstrap": f"Rao-Wu rescaling bootstrap ({options.replicates or 500} replicates, seed {options.seed or 0})",

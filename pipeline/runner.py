@@ -25,11 +25,11 @@ import polars as pl
 from pipeline import progress
 from pipeline.book import render_book
 from pipeline.book_weighting import variance_lines, weighting_section
-from pipeline.database import load_responses, open_database, staged_waves
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
-from pipeline.spec import Study, load_spec
-from pipeline.stage import file_sha256, stage_wave
+from pipeline.staging.database import load_responses, open_database, staged_waves
+from pipeline.staging.spec import Study, load_spec
+from pipeline.staging.stage import file_sha256, stage_wave
 from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.exports import write_exports
 from pipeline.topline import unweighted_toplines

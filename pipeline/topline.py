@@ -1,8 +1,8 @@
 """Unweighted toplines: counts, percentages and summary statistics per wave, from `responses`.
 
 Every respondent-level pass happens in DuckDB as one grouped query per variable type
-(`sql/topline_codes.sql` for single-choice and scale codes, `sql/topline_values.sql` for numeric
-and scale statistics, `sql/topline_multi.sql` for multiple-response sets). Python then assembles
+(`sql/topline_codes.sql` for single-choice and rating codes, `sql/topline_values.sql` for numeric
+and rating statistics, `sql/topline_multi.sql` for multiple-response sets). Python then assembles
 the small aggregated results into one tidy long frame, the shape every later stage extends
 (weighted estimates add columns such as estimate, se, ci_low, ci_high, deff, n_eff to the same
 rows).
@@ -22,8 +22,8 @@ The long frame has one row per (wave, variable, row) with the columns of `CELL_S
   value       the statistic's value (statistic rows only)
   note        a short explanation shown under the table (e.g. codes excluded from a mean)
 
-Bases. "base" rows count respondents with a valid answer: a code for single and scale
-variables (codes excluded from the mean still count: they are shown in the distribution), a
+Bases. "base" rows count respondents with a valid answer: a code for single and rating
+variables (codes excluded from the statistics still count: they are shown in the distribution), a
 number for numeric variables, at least one answered item for a multiple-response set (the
 respondents asked). "missing" rows count the wave's other respondents and take the wave's
 respondent count as their base, so that nothing is silently dropped.
@@ -37,8 +37,8 @@ from dataclasses import dataclass
 import duckdb
 import polars as pl
 
-from pipeline.spec import Code, Study, Variable
 from pipeline.sqlfiles import sql
+from pipeline.staging.spec import Code, Study, Variable
 
 CELL_SCHEMA: dict[str, pl.DataType] = {
     "wave": pl.String(),
@@ -79,7 +79,7 @@ def unweighted_toplines(con: duckdb.DuckDBPyConnection, study: Study) -> pl.Data
         count = #{respondents i of wave t whose answer is in c},
         base = #{respondents of wave t with a valid answer},  percent = 100 * count / base.
     For a multiple-response item j: count = #{i asked: y_ij = 1}, base = #{i with y_ij answered}.
-    Statistics of numeric and scale variables (after removing `exclude_from_mean` codes):
+    Statistics of numeric and rating variables (after removing `exclude_from_statistics` codes):
     n, mean = sum(y) / n, median (midpoint of the two middle values for even n: the sample
     median, Hyndman & Fan 1996 type 7 at p = 0.5), minimum, maximum.
 
@@ -91,8 +91,8 @@ def unweighted_toplines(con: duckdb.DuckDBPyConnection, study: Study) -> pl.Data
     staged = [w for w in wave_ids if w in sizes]
     variables = list(study.variables.values())
 
-    code_counts = _code_counts(con, wave_ids, [v for v in variables if v.type in ("single", "scale")])
-    statistics = _statistics(con, wave_ids, [v for v in variables if v.type in ("numeric", "scale")])
+    code_counts = _code_counts(con, wave_ids, [v for v in variables if v.type in ("single", "rating")])
+    statistics = _statistics(con, wave_ids, [v for v in variables if v.type in ("numeric", "rating")])
     multi_counts = _multi_counts(con, wave_ids, [v for v in variables if v.type == "multi"])
 
     frames = []
@@ -132,7 +132,7 @@ def _statistics(
     """(wave, variable) -> {"answered", "n", "mean", "median", "min", "max"} from one grouped query."""
     if not variables:
         return {}
-    excluded = [(v.name, float(code)) for v in variables for code in v.exclude_from_mean]
+    excluded = [(v.name, float(code)) for v in variables for code in v.exclude_from_statistics]
     params = {
         "waves": wave_ids,
         "excluded_variable": [name for name, _ in excluded],
@@ -161,16 +161,16 @@ def _code_text(code: Code) -> str:
 
 
 def _category_rows(variable: Variable, seen_codes: Iterable[str]) -> list[_Row]:
-    """Categories of a single-choice or scale variable, in table order.
+    """Categories of a single-choice or rating variable, in table order.
 
     Single: the codebook's codes in spec order. Scale: every integer from the lowest to the
-    highest labelled code not excluded from the mean (unlabelled codes are labelled by their
+    highest labelled code not excluded from the statistics (unlabelled codes are labelled by their
     number), then the other labelled codes (e.g. "don't know"). Codes found in the data but not
     in the codebook are appended, labelled as such, so that no answer is dropped.
     """
     labels = {_code_text(code): label for code, label in variable.values.items()}
-    scored = [c for c in variable.values if c not in variable.exclude_from_mean]
-    if variable.type == "scale" and scored and all(isinstance(c, int) for c in scored):
+    scored = [c for c in variable.values if c not in variable.exclude_from_statistics]
+    if variable.type == "rating" and scored and all(isinstance(c, int) for c in scored):
         order = [str(c) for c in range(min(scored), max(scored) + 1)]
         order += [code for code in labels if code not in order]
     else:
@@ -190,8 +190,8 @@ def _coded_rows(
     code_counts: dict[tuple[str, str], dict[str, int]],
     statistics: dict[tuple[str, str], dict[str, float]],
 ) -> pl.DataFrame:
-    """The rows of a single-choice, scale or numeric variable for every wave."""
-    coded = variable.type in ("single", "scale")
+    """The rows of a single-choice, rating or numeric variable for every wave."""
+    coded = variable.type in ("single", "rating")
     layout: list[_Row] = [_Row("base", BASE_LABEL)]
     if coded:
         seen = {code for w in waves for code in code_counts.get((w, variable.name), {})}
@@ -199,7 +199,7 @@ def _coded_rows(
         layout += [
             _Row("net", label, members=tuple(_code_text(c) for c in codes)) for label, codes in variable.nets.items()
         ]
-    if variable.type in ("numeric", "scale"):
+    if variable.type in ("numeric", "rating"):
         note = _exclusion_note(variable)
         layout += [_Row("statistic", label, code=key, note=note) for key, label in STATISTICS.items()]
     layout.append(_Row("missing", MISSING_LABEL["default"]))
@@ -254,12 +254,12 @@ def _multi_rows(
 
 
 def _exclusion_note(variable: Variable) -> str | None:
-    """The note saying which codes a scale's statistics leave out, or None."""
-    if not variable.exclude_from_mean:
+    """The note saying which codes a rating's statistics leave out, or None."""
+    if not variable.exclude_from_statistics:
         return None
     labels = {_code_text(code): label for code, label in variable.values.items()}
     parts = [f"{code} ({labels[_code_text(code)]})" if _code_text(code) in labels else str(code)
-             for code in variable.exclude_from_mean]
+             for code in variable.exclude_from_statistics]
     return "Statistics exclude code " + ", ".join(parts) + "."
 
 

@@ -7,7 +7,7 @@ the fitted weighting recipe of each wave and the `[variance]` options, and retur
   category / net / item / missing rows: a weighted percentage, 100 * p with
       p = sum_i w_i a_i y_i / sum_i w_i a_i,   y_i = 1 when i's answer is in the row, a_i = 1 when
       i is in the row's base (answered; for "missing" rows every respondent of the wave);
-  statistic "mean": the weighted mean of the answers (codes excluded from the mean left out);
+  statistic "mean": the weighted mean of the answers (codes excluded from the statistics left out);
   statistic "median": the weighted median with its Woodruff (1952) interval.
 
 A percentage of a variable the weighting calibrates to population figures (a raking margin, a
@@ -34,7 +34,7 @@ import polars as pl
 from pipeline.estimation import estimate_table
 from pipeline.estimation.intervals import korn_graubard_interval
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Study, Variable
+from pipeline.staging.spec import Study, Variable
 from pipeline.weighting import FittedRecipe
 
 ESTIMATE_SCHEMA: dict[str, pl.DataType] = {
@@ -83,7 +83,8 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
     col = pl.col(variable.name)
     text = col.cast(pl.String)
     answered = col.is_not_null()
-    scored = col.is_not_null() & ~col.is_in(list(variable.exclude_from_mean)) if variable.exclude_from_mean else answered
+    excluded = list(variable.exclude_from_statistics)
+    scored = col.is_not_null() & ~col.is_in(excluded) if excluded else answered
     for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
         if kind == "category":
             out.append((order, kind, text.eq(code).fill_null(False), answered))
@@ -131,11 +132,9 @@ def _wave_frame(
     return frame.with_columns(derived), means, medians, meaning
 
 
-def _fpc(study: Study) -> Mapping[str, float] | None:
-    """Stratum label -> first-stage population count N_h or sampling fraction f_h, from the design."""
-    design = study.design
-    source = design.population or design.sampling_fraction
-    return {str(k): float(v) for k, v in source.items()} if source else None
+def _by_stratum(values: Mapping[object, float]) -> dict[str, float] | None:
+    """Stratum label -> the design's first-stage population size N_h or sampling fraction f_h."""
+    return {str(k): float(v) for k, v in values.items()} if values else None
 
 
 def wave_estimates(
@@ -164,7 +163,8 @@ def wave_estimates(
         strata=design.strata,
         psu=design.psu,
         psu_ids=design.psu_ids,
-        fpc=_fpc(study),
+        population_size=_by_stratum(design.population),
+        sampling_fraction=_by_stratum(design.sampling_fraction),
         single_psu=design.single_psu,
         collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
         second_stage_fraction=design.second_stage_fraction,

@@ -50,8 +50,8 @@ from memory). The small regions Quillby Coast and Veskar Vale get about twice th
 the areas (a boost for regional reporting); Harrowmere, Fennick Lowlands and Oradel get fewer
 than their share: see `REGIONS` and area_frame.csv.
 
-`area` is the area number WITHIN its region (1..N_h): PSU ids are NESTED in strata
-(`psu_ids = "nested"` in study.toml). `p_select` is the selection probability of the issued
+`area` is the area number WITHIN its region (1..N_h): PSU ids restart WITHIN each stratum
+(`psu_ids = "within-stratum"` in study.toml). `p_select` is the selection probability of the issued
 adult. Design weights 1 / p_select of the issued sample add up to the region's adults exactly.
 
 Nonresponse: an issued adult completes with a probability that rises with age and education and

@@ -1,5 +1,5 @@
 {#- Macro shared by the load_* files for typed sources: every column as text. Whole floats become
-    integer text ('3.0' -> '3') so CSV, Parquet and SPSS stage the same codes; NaN becomes NULL.
+    integer text ('3.0' -> '3') so CSV and Parquet stage the same codes; NaN becomes NULL.
     columns: list of {name, kind} with kind "text", "float" or "other". -#}
 {% macro text_columns(columns) -%}
     {%- for c in columns %}

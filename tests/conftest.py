@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.spec import Study, load_spec
+from pipeline.staging.spec import Study, load_spec
 
 REFERENCE_DIR = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
 
@@ -36,7 +36,7 @@ file = "waves/wave2.csv"
 kind = "probability"
 strata = "region"
 psu = "area"
-psu_ids = "nested"
+psu_ids = "within-stratum"
 selection_probability = "p_select"
 population = { 1 = 220, 2 = 180 }
 
@@ -62,9 +62,9 @@ items = { aware_kestrel = "Kestrel", aware_lumen = "Lumen" }
 
 [variables.satisfaction]
 label = "Overall satisfaction (0-10)"
-type = "scale"
+type = "rating"
 values = { 0 = "0 Not at all satisfied", 10 = "10 Completely satisfied", 99 = "Don't know" }
-exclude_from_mean = [99]
+exclude_from_statistics = [99]
 nets = { "Top two box (9-10)" = [9, 10] }
 
 [variables.spend]

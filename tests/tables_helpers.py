@@ -8,7 +8,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Design, Study, Variable
+from pipeline.staging.spec import Design, Study, Variable
 from pipeline.tables import Tabulation
 from pipeline.tables.spec import BannerSpec, TablesSpec
 from pipeline.topline import CELL_SCHEMA
@@ -24,10 +24,10 @@ def layout_rows(study: Study, wave: str = "W1") -> pl.DataFrame:
             rows += [("item", label, col) for col, label in v.items.items()]
             rows += [("net", "Any of these", None), ("missing", "Not asked", None)]
         else:
-            if v.type in ("single", "scale"):
+            if v.type in ("single", "rating"):
                 rows += [("category", v.values.get(c, str(c)), str(c)) for c in v.valid_codes]
                 rows += [("net", label, None) for label in v.nets]
-            if v.type in ("numeric", "scale"):
+            if v.type in ("numeric", "rating"):
                 rows += [("statistic", s, s) for s in ("n", "mean", "median", "min", "max")]
             rows.append(("missing", "No answer", None))
         for order, (kind, label, code) in enumerate(rows):

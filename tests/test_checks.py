@@ -8,10 +8,10 @@ from pathlib import Path
 import pytest
 
 from conftest import TRACKER_COLUMNS, TRACKER_SPEC, Tracker, tracker_rows
-from pipeline.checks import DRIFT_CODE_MIN_SHARE, DRIFT_SHARE_THRESHOLD, MAX_PROBLEMS_PER_COLUMN
 from pipeline.cli import main
 from pipeline.errors import Problem
-from pipeline.stage import check_wave, stage_wave
+from pipeline.staging.checks import DRIFT_CODE_MIN_SHARE, DRIFT_SHARE_THRESHOLD, MAX_PROBLEMS_PER_COLUMN
+from pipeline.staging.stage import check_wave, stage_wave
 
 
 def check_rows(tracker: Tracker, rows: list[dict[str, str]], columns: list[str] | None = None) -> list[Problem]:
@@ -172,7 +172,7 @@ def test_base_weights_positive(tmp_path: Path) -> None:
 
 
 def test_unique_psu_ids_in_one_stratum(tmp_path: Path) -> None:
-    tracker = Tracker(tmp_path, TRACKER_SPEC.replace('psu_ids = "nested"', 'psu_ids = "unique"'))
+    tracker = Tracker(tmp_path, TRACKER_SPEC.replace('psu_ids = "within-stratum"', 'psu_ids = "unique"'))
     rows = tracker_rows(12, prefix="a")  # areas 1 and 2 both occur in regions 1 and 2
     (problem,) = check_rows(tracker, rows)
     assert problem.rule == "psu-in-several-strata"

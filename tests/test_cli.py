@@ -86,7 +86,7 @@ def demo_run(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
 
 
 def test_demo_builds_a_book_with_one_table_per_variable(demo_run: tuple[Path, Path]) -> None:
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
 
     folder, book = demo_run
     assert book == folder / "book" / "study.html"
@@ -114,7 +114,7 @@ def test_demo_copies_the_study_but_not_run_artefacts(demo_run: tuple[Path, Path]
 
 def test_second_run_restages_nothing_until_a_file_changes(demo_run: tuple[Path, Path]) -> None:
     from pipeline.runner import waves_to_stage
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
 
     folder, _ = demo_run
     study = load_spec(folder / "study.toml")

@@ -131,11 +131,11 @@ def test_systematic_pps_draws_distinct_areas(sizes: list[int], fraction: float, 
 
 def test_spec_loads_with_the_project_loader() -> None:
     """The demo spec passes the project's own spec validation."""
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
 
     study = load_spec(DEMO / "study.toml")
     assert [w.id for w in study.waves] == ["W1", "W2", "W3"]
-    assert study.design.psu_ids == "nested"
+    assert study.design.psu_ids == "within-stratum"
 
 
 def _declared_columns() -> list[str]:
@@ -162,8 +162,8 @@ def test_ids_are_unique_across_waves() -> None:
 
 def _allowed_codes(var: dict) -> set[int]:
     codes = {int(k) for k in var["values"]}
-    if var["type"] == "scale":
-        excluded = set(var.get("exclude_from_mean", []))
+    if var["type"] == "rating":
+        excluded = set(var.get("exclude_from_statistics", []))
         valid = codes - excluded
         codes = set(range(min(valid), max(valid) + 1)) | excluded
     return codes
@@ -174,7 +174,7 @@ def test_codes_are_within_the_codebook(wave_id: str) -> None:
     """Every code is declared, multi items are 0/1, numerics within bounds; only spend may be blank."""
     frame = WAVES[wave_id]
     for name, var in SPEC["variables"].items():
-        if var["type"] in ("single", "scale"):
+        if var["type"] in ("single", "rating"):
             assert frame[name].null_count() == 0, name
             outside = set(frame[name].unique().to_list()) - _allowed_codes(var)
             assert outside == set(), (name, outside)
@@ -204,7 +204,7 @@ def test_spend_is_blank_for_non_shoppers_and_a_few_refusals(wave_id: str) -> Non
 
 @pytest.mark.parametrize("wave_id", ["W1", "W2", "W3"])
 def test_design_columns_follow_the_documented_design(wave_id: str) -> None:
-    """p_select = n_h m / M_h in every region, areas are nested numbers 1..N_h, n_h areas per region.
+    """p_select = n_h m / M_h in every region, areas are numbered 1..N_h within each region, n_h areas per region.
 
     Identity: PPS first stage n_h M_hi / M_h times m / M_hi at the second stage (generator docstring).
     """
@@ -233,7 +233,7 @@ def test_spec_codebook_matches_the_generator() -> None:
     assert values("shop_freq") == GEN.SHOP_FREQ
     assert values("channel") == GEN.CHANNELS
     assert variables["aware"]["items"] == GEN.BRANDS
-    assert variables["satisfaction"]["exclude_from_mean"] == [GEN.DONT_KNOW]
+    assert variables["satisfaction"]["exclude_from_statistics"] == [GEN.DONT_KNOW]
     assert variables["satisfaction"]["nets"] == GEN.SATISFACTION_NETS
     assert variables["recommend"]["nets"] == GEN.RECOMMEND_NETS
 

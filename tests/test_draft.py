@@ -13,10 +13,10 @@ from hypothesis import strategies as st
 
 from conftest import tracker_rows, write_csv
 from pipeline.cli import main
-from pipeline.draft import draft_spec
 from pipeline.errors import DataError
-from pipeline.spec import load_spec
-from pipeline.stage import check_wave
+from pipeline.staging.draft import draft_spec
+from pipeline.staging.spec import load_spec
+from pipeline.staging.stage import check_wave
 
 
 def draft_and_load(data: Path, **options: object):
@@ -40,28 +40,17 @@ def test_round_trip_from_csv(tmp_path: Path) -> None:
     assert check_wave(study, "W1") == []  # the draft accepts its own file without a single problem
 
 
-def test_spss_labels_become_labels(tmp_path: Path) -> None:
-    import pandas as pd
-    import pyreadstat
-
-    frame = pd.DataFrame(
-        {"serial": ["s1", "s2", "s3", "s4"], "q1": [1.0, 2.0, 2.0, 3.0], "q2": [1.5, 2.25, 8.0, 4.0]}
-    )
-    path = tmp_path / "waves" / "w.sav"
+def test_only_csv_and_parquet_are_read(tmp_path: Path) -> None:
+    """Any other suffix is refused by name, with the way out (export to CSV or Parquet)."""
+    path = tmp_path / "waves" / "w.labelled"
     path.parent.mkdir()
-    pyreadstat.write_sav(
-        frame,
-        str(path),
-        column_labels=["Serial", "Which kettle do you use most?", "Litres boiled a day"],
-        variable_value_labels={"q1": {1.0: "Kestrel", 2.0: "Lumen", 4.0: "Other"}},
-    )
-    study = draft_and_load(path)
-    assert study.respondent_id == "serial"
-    q1 = study.variables["q1"]
-    # labelled codes (including 4, never answered) plus codes seen without a label (3)
-    assert (q1.label, q1.values) == ("Which kettle do you use most?", {1: "Kestrel", 2: "Lumen", 3: "3", 4: "Other"})
-    assert (study.variables["q2"].type, study.variables["q2"].label) == ("numeric", "Litres boiled a day")
-    assert check_wave(study, "W1") == []
+    path.write_bytes(b"\x00\x01 not a table")
+    with pytest.raises(DataError) as info:
+        draft_spec(path)
+    (problem,) = info.value.problems
+    assert problem.rule == "unsupported-format" and problem.file == str(path.resolve())
+    assert "reads .csv and .parquet files, not '.labelled'" in problem.message
+    assert "export your data to CSV or Parquet" in problem.message
 
 
 def test_id_choice(tmp_path: Path) -> None:

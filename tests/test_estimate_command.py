@@ -27,7 +27,7 @@ def invented(seed: int = 1, n: int = 120) -> pl.DataFrame:
         {
             "region": np.array(["north", "south", "west"])[h],
             "area": h * 10 + rng.integers(0, 4, n),  # unique across regions
-            "local": rng.integers(0, 4, n),  # restarts within each region (nested)
+            "local": rng.integers(0, 4, n),  # restarts within each region (within-stratum ids)
             "wt": rng.uniform(1, 3, n),
             "spend": rng.gamma(2, 20, n).round(2),
             "visits": rng.integers(1, 6, n),
@@ -73,7 +73,7 @@ def test_json_output_on_parquet_with_fpc(tmp_path: Path, capsys: pytest.CaptureF
     frame = pl.read_csv(LOHR / "agsrs.csv").with_columns(w=pl.lit(3078 / 300), N=pl.lit(3078))
     path = tmp_path / "agsrs.parquet"
     frame.write_parquet(path)
-    code, out, _ = run_cli([str(path), "--weight", "w", "--fpc", "N", "--mean", "acres92", "--format", "json"], capsys)
+    code, out, _ = run_cli([str(path), "--weight", "w", "--population-size", "N", "--mean", "acres92", "--format", "json"], capsys)
     assert code == 0
     (row,) = json.loads(out)
     # Lohr, Sampling: Design and Analysis, 3rd ed., ch. 2 agsrs example (check_values agsrs_mean_acres92)
@@ -92,12 +92,12 @@ def test_supplied_jackknife_weights_equal_generated_jackknife(tmp_path: Path, ca
     frame.with_columns(**rep, rw1x=pl.lit(1.0)).write_csv(path)
     code, out, _ = run_cli(
         [str(path), "--weight", "wt", "--mean", "spend", "--variance", "supplied",
-         "--replicate-cols", r"rw\d+", "--replicate-scale", str((r - 1) / r)],
+         "--replicate-cols", r"rw\d+", "--replicate-multiplier", str((r - 1) / r)],
         capsys,
     )
     assert code == 0
     (row,) = list(csv.DictReader(io.StringIO(out)))
-    generated = estimate(frame, weight="wt", psu="area", mean="spend", variance="jk1").row(0, named=True)
+    generated = estimate(frame, weight="wt", psu="area", mean="spend", variance="jackknife").row(0, named=True)
     # the same replicates: identical variance (identity); rw1x is not matched (whole-name match)
     assert float(row["se"]) == pytest.approx(generated["se"], rel=1e-10)
     assert float(row["df"]) == r - 1
@@ -131,7 +131,7 @@ def test_bad_input_exits_1_with_every_problem(tmp_path: Path, capsys: pytest.Cap
     assert code == 1 and ".csv or .parquet" in err
     code, _, err = run_cli([str(path), "--weight", "wt", "--strata", "region", "--mean", "spend", "--psu", "local",
                             "--psu-ids", "unique"], capsys)
-    assert code == 1 and "psu-in-several-strata" in err and "nested" in err
+    assert code == 1 and "psu-in-several-strata" in err and "within-stratum" in err
     code, _, err = run_cli([str(path), "--weight", "wt", "--quantile", "spend", "half", "--level", "95"], capsys)
     assert code == 1 and "not a number" in err and "--level" in err
 
@@ -140,3 +140,72 @@ def test_command_module_imports_no_heavy_library() -> None:
     probe = "import sys, pipeline.commands.estimate; print(sorted(m for m in ('polars', 'numpy', 'scipy', 'duckdb') if m in sys.modules))"
     out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, cwd=ROOT, check=True).stdout
     assert out.strip() == "[]"
+
+
+def test_command_choices_are_the_library_choices() -> None:
+    from pipeline.commands import estimate as command
+    from pipeline.estimation.api import VARIANCE_METHODS
+    from pipeline.estimation.design import SINGLE_PSU_POLICIES
+
+    assert command.VARIANCE_METHODS == VARIANCE_METHODS
+    assert command.SINGLE_PSU_POLICIES == SINGLE_PSU_POLICIES
+
+
+def _se(out: str) -> float:
+    (row,) = list(csv.DictReader(io.StringIO(out)))
+    return float(row["se"])
+
+
+def test_sampling_fraction_as_number_or_column_and_population_size(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Without --psu each respondent is a PSU, so an FPC multiplies every stratum's variance by
+    (1 - f_h): with one f for all strata the SE is sqrt(1 - f) times the with-replacement SE (identity)."""
+    frame = invented(5).with_columns(f=pl.lit(0.1), N=pl.lit(1000))
+    path = tmp_path / "wave.csv"
+    frame.write_csv(path)
+    common = [str(path), "--weight", "wt", "--strata", "region", "--mean", "spend"]
+    code, plain, _ = run_cli(common, capsys)
+    assert code == 0
+    code, by_number, _ = run_cli([*common, "--sampling-fraction", "0.1"], capsys)
+    assert code == 0
+    code, by_column, _ = run_cli([*common, "--sampling-fraction", "f"], capsys)
+    assert code == 0
+    assert _se(by_number) == pytest.approx(np.sqrt(0.9) * _se(plain), rel=1e-12)
+    assert _se(by_column) == pytest.approx(_se(by_number), rel=1e-12)
+    one_stratum = [str(path), "--weight", "wt", "--mean", "spend"]
+    code, plain, _ = run_cli(one_stratum, capsys)
+    code, by_size, _ = run_cli([*one_stratum, "--population-size", "1000"], capsys)
+    assert code == 0
+    code, by_size_column, _ = run_cli([*one_stratum, "--population-size", "N"], capsys)
+    assert code == 0
+    assert _se(by_size) == pytest.approx(np.sqrt(1 - frame.height / 1000) * _se(plain), rel=1e-12)
+    assert _se(by_size_column) == pytest.approx(_se(by_size), rel=1e-12)
+    code, _, err = run_cli([*common, "--population-size", "1000"], capsys)
+    assert code == 1 and "one per stratum" in err
+    with pytest.raises(SystemExit) as info:
+        main(["estimate", *common, "--population-size", "N", "--sampling-fraction", "f"])
+    assert info.value.code == 2
+    assert "not allowed with argument" in capsys.readouterr().err
+
+
+def test_single_psu_collapse_with_partner_strata(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    frame = invented(6)
+    lone = frame.filter(pl.col("region") == "west")["area"].min()
+    frame = frame.filter((pl.col("region") != "west") | (pl.col("area") == lone))  # west keeps one PSU
+    path = tmp_path / "wave.csv"
+    frame.write_csv(path)
+    common = [str(path), "--weight", "wt", "--strata", "region", "--psu", "area", "--total", "spend"]
+    code, _, err = run_cli(common, capsys)
+    assert code == 1 and "single-psu" in err and "collapse" in err
+    code, out, _ = run_cli([*common, "--single-psu", "collapse", "--collapse-with", "west=south"], capsys)
+    assert code == 0
+    api = estimate(frame, weight="wt", strata="region", psu="area", total="spend", single_psu="collapse",
+                   collapse_with={"west": "south"}).row(0, named=True)
+    assert _se(out) == pytest.approx(api["se"], rel=1e-12)
+    code, _, err = run_cli([*common, "--single-psu", "grand-mean"], capsys)
+    assert code == 0
+    code, _, err = run_cli([*common, "--collapse-with", "west=south"], capsys)
+    assert code == 1 and "--collapse-with needs --single-psu collapse" in err
+    code, _, err = run_cli([*common, "--single-psu", "collapse", "--collapse-with", "west"], capsys)
+    assert code == 1 and "STRATUM=PARTNER" in err

@@ -24,7 +24,7 @@ def test_poststratified_residual_variance_is_the_textbook_formula() -> None:
     frame, counts = srs_with_poststrata(3)
     n, population = frame.height, counts.sum()
     row = estimate(
-        frame, weight="w", fpc={"all": float(population)}, mean="y", classes="cls", calibration_matrix=np.eye(4)
+        frame, weight="w", population_size={"all": float(population)}, mean="y", classes="cls", calibration_matrix=np.eye(4)
     ).row(0, named=True)
     share = counts / population
     stats = frame.group_by("cls").agg(pl.len().alias("n"), pl.col("y").var().alias("s2")).sort("cls")
@@ -41,7 +41,7 @@ def test_poststratified_residual_variance_is_the_textbook_formula() -> None:
     lohr = (1 - f) / n * (share * s2).sum()
     assert row["se"] ** 2 == pytest.approx(lohr, rel=0.05)
     # without the residuals the variance ignores the post-stratification and is far larger
-    plain = estimate(frame, weight="w", fpc={"all": float(population)}, mean="y").row(0, named=True)
+    plain = estimate(frame, weight="w", population_size={"all": float(population)}, mean="y").row(0, named=True)
     assert plain["se"] > 2 * row["se"]
 
 
@@ -68,7 +68,7 @@ def test_taylor_residuals_agree_with_reweighted_jackknife() -> None:
     # jackknife (E2's stratified delete-one-PSU replicates) replaying the post-stratification in every
     # replicate: f_r(c) = N_c / (replicate base-weight total of c)
     jackknife = estimate(
-        frame, weight="w0", variance="jkn", reweight=lambda b: counts[None, :] / b, **common
+        frame, weight="w0", variance="stratified-jackknife", reweight=lambda b: counts[None, :] / b, **common
     ).sort("statistic", "category")
     assert jackknife["estimate"].to_numpy() == pytest.approx(taylor["estimate"].to_numpy(), rel=1e-12)
     # the linearization and the jackknife estimate the same variance to first order (Wolter 2007,

@@ -46,9 +46,9 @@ def test_single_psu_certainty_contributes_zero() -> None:
     assert row["estimate"] == pytest.approx((frame["w"] * frame["y"]).sum())
 
 
-def test_single_psu_centre_uses_the_grand_mean_of_psu_totals() -> None:
+def test_single_psu_grand_mean_uses_the_grand_mean_of_psu_totals() -> None:
     frame = lone_psu_sample()
-    row = estimate(frame, weight="w", strata="h", psu="j", total="y", single_psu="centre").row(0, named=True)
+    row = estimate(frame, weight="w", strata="h", psu="j", total="y", single_psu="grand-mean").row(0, named=True)
     z = psu_totals(frame)
     grand = z["z"].mean()
     lone = z.filter(pl.col("h") == "C")["z"][0]
@@ -65,14 +65,14 @@ def test_single_psu_collapse_merges_with_the_partner() -> None:
     assert row["df"] == 5 - 2
 
 
-def test_fpc_column_must_be_constant_within_stratum_and_not_below_sample() -> None:
+def test_population_size_column_must_be_constant_within_stratum_and_not_below_sample() -> None:
     frame = lone_psu_sample().filter(pl.col("h") != "C").with_columns(N=pl.Series([10.0, 10, 10, 12, 1, 1, 1, 1]))
     with pytest.raises(DataError) as info:
-        estimate(frame, weight="w", strata="h", psu="j", total="y", fpc="N")
+        estimate(frame, weight="w", strata="h", psu="j", total="y", population_size="N")
     assert "fpc-not-constant" in info.value.render() and "ids A" in info.value.render()
     small = frame.with_columns(N=pl.when(pl.col("h") == "A").then(1.5).otherwise(10.0))
     with pytest.raises(DataError, match="fpc-too-small"):
-        estimate(small, weight="w", strata="h", psu="j", total="y", fpc="N")
+        estimate(small, weight="w", strata="h", psu="j", total="y", population_size="N")
 
 
 def test_missing_design_values_and_bad_weights_reported_together() -> None:
@@ -87,14 +87,14 @@ def test_missing_design_values_and_bad_weights_reported_together() -> None:
         assert expected in text
 
 
-def test_unique_psu_ids_repeating_across_strata_suggest_nested() -> None:
+def test_unique_psu_ids_repeating_across_strata_suggest_within_stratum() -> None:
     frame = lone_psu_sample().filter(pl.col("h") != "C")
     with pytest.raises(DataError) as info:
         estimate(frame, weight="w", strata="h", psu="j", psu_ids="unique", total="y")
     text = info.value.render()
-    assert "psu-in-several-strata" in text and 'psu_ids = "nested"' in text and "2 rows" in text
-    nested = estimate(frame, weight="w", strata="h", psu="j", total="y")
-    assert nested["df"][0] == 4 - 2
+    assert "psu-in-several-strata" in text and 'psu_ids = "within-stratum"' in text and "2 rows" in text
+    within = estimate(frame, weight="w", strata="h", psu="j", total="y")
+    assert within["df"][0] == 4 - 2
 
 
 def test_unknown_columns_and_options_listed_at_once() -> None:
@@ -142,16 +142,16 @@ def merged_by_hand(frame: pl.DataFrame) -> pl.DataFrame:
     )
 
 
-@pytest.mark.parametrize("method", ["jkn", "bootstrap"])
-@pytest.mark.parametrize("fpc", [None, {"A": 10.0, "B": 8.0, "C": 5.0}])
-def test_collapsed_single_psu_stratum_equals_strata_merged_by_hand_under_replicates(method: str, fpc) -> None:
+@pytest.mark.parametrize("method", ["stratified-jackknife", "bootstrap"])
+@pytest.mark.parametrize("population", [None, {"A": 10.0, "B": 8.0, "C": 5.0}])
+def test_collapsed_single_psu_stratum_equals_strata_merged_by_hand_under_replicates(method: str, population) -> None:
     frame = lone_psu_sample()
     options = {"weight": "w", "strata": "h", "psu": "j", "total": "y", "mean": "y", "variance": method, "seed": 4,
                "replicates": 50}
     collapsed = estimate(frame, **options, single_psu="collapse", collapse_with={"C": "B"},
-                         fpc=fpc).sort("statistic")
-    merged_fpc = None if fpc is None else {"A": 10.0, "B": 13.0}  # N_h add up in the merged stratum
-    by_hand = estimate(merged_by_hand(frame), **options, fpc=merged_fpc).sort("statistic")
+                         population_size=population).sort("statistic")
+    merged_population = None if population is None else {"A": 10.0, "B": 13.0}  # N_h add up in the merged stratum
+    by_hand = estimate(merged_by_hand(frame), **options, population_size=merged_population).sort("statistic")
     # identity: collapsing is relabelling the stratum (same PSU order, so the same bootstrap draws)
     assert collapsed["se"].to_list() == pytest.approx(by_hand["se"].to_list(), rel=1e-12)
     assert collapsed["df"].to_list() == by_hand["df"].to_list()
@@ -160,22 +160,22 @@ def test_collapsed_single_psu_stratum_equals_strata_merged_by_hand_under_replica
 def test_collapsed_jackknife_of_a_total_equals_the_collapsed_taylor_variance() -> None:
     frame = lone_psu_sample()
     options = {"weight": "w", "strata": "h", "psu": "j", "total": "y", "single_psu": "collapse",
-               "collapse_with": {"C": "B"}, "fpc": {"A": 10.0, "B": 8.0, "C": 5.0}}
-    jkn = estimate(frame, **options, variance="jkn").row(0, named=True)
+               "collapse_with": {"C": "B"}, "population_size": {"A": 10.0, "B": 8.0, "C": 5.0}}
+    stratified = estimate(frame, **options, variance="stratified-jackknife").row(0, named=True)
     taylor = estimate(frame, **options).row(0, named=True)
     # identity: the stratified jackknife of a linear total is the with-replacement formula, FPC included
     # (Wolter 2007, Introduction to Variance Estimation, 2nd ed., section 4.5, from memory); both then add
     # the two-stage within-PSU term sum_h f_h sum_j v2(z_hj) (Cochran 1977 section 11.9, from memory)
-    assert jkn["se"] == pytest.approx(taylor["se"], rel=1e-12)
+    assert stratified["se"] == pytest.approx(taylor["se"], rel=1e-12)
 
 
 def test_certainty_single_psu_stratum_under_jackknife_and_bootstrap() -> None:
     frame = lone_psu_sample()
     options = {"weight": "w", "strata": "h", "psu": "j", "total": "y"}
-    jkn = estimate(frame, **options, variance="jkn", single_psu="certainty").row(0, named=True)
+    stratified = estimate(frame, **options, variance="stratified-jackknife", single_psu="certainty").row(0, named=True)
     taylor = estimate(frame, **options, single_psu="certainty").row(0, named=True)
-    assert jkn["se"] == pytest.approx(taylor["se"], rel=1e-12)  # identity as above; stratum C adds 0 to both
-    assert jkn["df"] == 4 - 2  # the sampled strata A and B only
+    assert stratified["se"] == pytest.approx(taylor["se"], rel=1e-12)  # identity as above; stratum C adds 0 to both
+    assert stratified["df"] == 4 - 2  # the sampled strata A and B only
     boot = estimate(frame, **options, variance="bootstrap", replicates=200, seed=9, single_psu="certainty")
     without_c = estimate(frame.filter(pl.col("h") != "C"), **options, variance="bootstrap", replicates=200, seed=9)
     # identity: C's lone PSU keeps factor 1 in every replicate and C draws nothing, so the replicate
@@ -184,8 +184,30 @@ def test_certainty_single_psu_stratum_under_jackknife_and_bootstrap() -> None:
     assert boot["estimate"][0] == pytest.approx((frame["w"] * frame["y"]).sum(), rel=1e-12)
 
 
-@pytest.mark.parametrize("policy", ["error", "centre"])
+@pytest.mark.parametrize("policy", ["error", "grand-mean"])
 def test_replicates_without_a_usable_single_psu_policy_name_the_stratum(policy: str) -> None:
     with pytest.raises(DataError) as info:
-        estimate(lone_psu_sample(), weight="w", strata="h", psu="j", total="y", variance="jkn", single_psu=policy)
+        estimate(lone_psu_sample(), weight="w", strata="h", psu="j", total="y", variance="stratified-jackknife", single_psu=policy)
     assert "e.g. ids C" in info.value.render() and "certainty" in info.value.render()
+
+
+def test_population_size_and_sampling_fraction_are_explicit() -> None:
+    """No value is guessed to be a fraction or a count: each option says which it is."""
+    frame = lone_psu_sample().filter(pl.col("h") != "C")
+    with pytest.raises(SpecError) as info:
+        estimate(frame, weight="w", strata="h", psu="j", total="y", population_size={"A": 10.0, "B": 8.0},
+                 sampling_fraction=0.1)
+    text = info.value.render()
+    assert "give the population size or the sampling fraction, not both" in text
+    with pytest.raises(SpecError, match=r"the sampling fraction must lie in \(0, 1\]"):
+        estimate(frame, weight="w", strata="h", psu="j", total="y", sampling_fraction=1.5)
+    with pytest.raises(DataError, match="a sampling fraction outside"):
+        estimate(frame, weight="w", strata="h", psu="j", total="y", sampling_fraction={"A": 0.5, "B": 2.0})
+    # a population size of 1 is a count (one unit in the stratum's population), not a fraction of 100%
+    with pytest.raises(DataError, match="a population size smaller than the number of sampled PSUs"):
+        estimate(frame, weight="w", strata="h", psu="j", total="y", population_size={"A": 1.0, "B": 8.0})
+    by_fraction = estimate(frame, weight="w", strata="h", psu="j", total="y", sampling_fraction=0.25)
+    n_h = frame.group_by("h").agg(pl.col("j").n_unique()).sort("h")["j"].to_list()
+    by_size = estimate(frame, weight="w", strata="h", psu="j", total="y",
+                       population_size={"A": n_h[0] / 0.25, "B": n_h[1] / 0.25})
+    assert by_fraction["se"][0] == pytest.approx(by_size["se"][0], rel=1e-12)  # N_h = n_h / f_h (identity)

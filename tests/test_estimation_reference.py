@@ -42,7 +42,7 @@ def agsrs() -> pl.DataFrame:
 
 
 def test_agsrs_mean_total_proportion_with_fpc(agsrs: pl.DataFrame) -> None:
-    out = estimate(agsrs, weight="w", fpc="N", mean="acres92", total="acres92", proportion="small")
+    out = estimate(agsrs, weight="w", population_size="N", mean="acres92", total="acres92", proportion="small")
     mean, total = one(out, statistic="mean"), one(out, statistic="total")
     prop = one(out, statistic="proportion", category="1")
     # Lohr, Sampling: Design and Analysis, 3rd ed., ch. 2 SRS agsrs example (check_values agsrs_mean_acres92,
@@ -67,7 +67,7 @@ def test_agsrs_mean_total_proportion_with_fpc(agsrs: pl.DataFrame) -> None:
 def test_agstrat_mean_total_with_stratum_fpc() -> None:
     sizes = {"NC": 1054, "NE": 220, "S": 1382, "W": 422}  # Lohr 3rd ed. Example 3.2 (SOURCE.md table)
     frame = pl.read_csv(LOHR / "agstrat.csv").with_columns(N=pl.col("region").replace_strict(sizes).cast(pl.Float64))
-    out = estimate(frame, weight="strwt", strata="region", fpc="N", mean="acres92", total="acres92", by="region")
+    out = estimate(frame, weight="strwt", strata="region", population_size="N", mean="acres92", total="acres92", by="region")
     # Lohr 3rd ed. Example 3.2 (check_values agstrat_mean_acres92 / agstrat_total_acres92, textbook_from_memory+reproduced)
     exp = check("agstrat_mean_acres92")
     mean = one(out, statistic="mean", domain="")
@@ -88,8 +88,8 @@ def test_agstrat_fpc_as_sampling_fraction_equals_population_count() -> None:
     sizes = {"NC": 1054, "NE": 220, "S": 1382, "W": 422}
     n_h = {"NC": 103, "NE": 21, "S": 135, "W": 41}
     frame = pl.read_csv(LOHR / "agstrat.csv")
-    by_count = estimate(frame, weight="strwt", strata="region", fpc={k: float(v) for k, v in sizes.items()}, mean="acres92")
-    by_fraction = estimate(frame, weight="strwt", strata="region", fpc={k: n_h[k] / sizes[k] for k in sizes}, mean="acres92")
+    by_count = estimate(frame, weight="strwt", strata="region", population_size={k: float(v) for k, v in sizes.items()}, mean="acres92")
+    by_fraction = estimate(frame, weight="strwt", strata="region", sampling_fraction={k: n_h[k] / sizes[k] for k in sizes}, mean="acres92")
     # f_h = n_h / N_h: the two spellings of the FPC are the same design (identity)
     assert by_fraction["se"][0] == pytest.approx(by_count["se"][0], rel=1e-12)
 
@@ -99,9 +99,9 @@ def test_agstrat_fpc_as_sampling_fraction_equals_population_count() -> None:
     [
         # one-stage cluster samples with FPC on PSUs; values "computed_here" in check_values (regression values only)
         # (whole PSUs taken: second_stage_fraction = 1, so no within-PSU term)
-        ("gpa_cluster_mean", "gpa.csv", {"weight": "wt", "psu": "suite", "fpc": {"all": 100.0}, "mean": "gpa",
+        ("gpa_cluster_mean", "gpa.csv", {"weight": "wt", "psu": "suite", "population_size": {"all": 100.0}, "mean": "gpa",
                                          "second_stage_fraction": 1.0}),
-        ("algebra_cluster_ratio_mean", "algebra.csv", {"weight": "w", "psu": "class", "fpc": {"all": 187.0},
+        ("algebra_cluster_ratio_mean", "algebra.csv", {"weight": "w", "psu": "class", "population_size": {"all": 187.0},
                                                        "mean": "score", "second_stage_fraction": 1.0}),
         # stratified multistage, with replacement, no FPC: computed_here
         ("syc_mean_age", "syc.csv", {"weight": "finalwt", "strata": "stratum", "psu": "psu", "mean": "age"}),
@@ -117,7 +117,7 @@ def test_cluster_designs_regression_values(check_id: str, file: str, options: di
 
 def test_schools_two_stage_one_term_variance() -> None:
     frame = pl.read_csv(LOHR / "schools.csv")
-    row = estimate(frame, weight="finalwt", psu="schoolid", fpc={"all": 75.0}, mean="math",
+    row = estimate(frame, weight="finalwt", psu="schoolid", population_size={"all": 75.0}, mean="math",
                    second_stage_fraction=1.0).row(0, named=True)
     # check_values schools_twostage_ratio_mean_math (computed_here): mean 33.122948; the one-term
     # (PSU totals only, first-stage FPC) SE is 1.638372 -- what f_2 = 1 (no within-PSU term) gives;
@@ -166,7 +166,7 @@ def test_design_effects_follow_the_srs_variance_definition() -> None:
     frame = pl.read_csv(LOHR / "agstrat.csv").with_columns(
         N=pl.col("region").replace_strict(sizes).cast(pl.Float64), big=(pl.col("acres92") > 500_000).cast(pl.Int64)
     )
-    out = estimate(frame, weight="strwt", strata="region", fpc="N", mean="acres92", total="acres92", proportion="big")
+    out = estimate(frame, weight="strwt", strata="region", population_size="N", mean="acres92", total="acres92", proportion="big")
     w, y = frame["strwt"].to_numpy(), frame["acres92"].to_numpy()
     n, big_n = len(y), w.sum()
     ybar = (w * y).sum() / big_n

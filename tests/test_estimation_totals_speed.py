@@ -67,7 +67,7 @@ def assert_same_as_direct(frame: pl.DataFrame, quantities: dict[str, pl.Expr], *
 
 
 def invented_sample(seed: int, n: int) -> pl.DataFrame:
-    """Invented respondents: string strata, nested PSU ids, string classes, zero weights, nulls, -0.0, Int8 extremes."""
+    """Invented respondents: string strata, PSU ids restarting within strata, string classes, zero weights, nulls, -0.0, Int8 extremes."""
     rng = np.random.default_rng(seed)
     y = rng.normal(3.0, 2.0, n).round(1)
     y[rng.random(n) < 0.1] = -0.0

@@ -101,12 +101,12 @@ def simulate(
     )
     v_taylor = layout.variance(z.transpose(1, 0, 2).reshape(len(psu_stratum), -1)).reshape(samples, 2)
 
-    jk = make_replicates("jkn", psu_stratum)
+    jk = make_replicates("stratified-jackknife", psu_stratum)
     theta_jk = ratios.value(np.einsum("rp,spk->rsk", jk.factors, totals))  # (R, S, 2)
     v_jk = replicate_variance(theta, theta_jk, jk)
 
     draws = make_replicates("bootstrap", psu_stratum, replicates=samples * bootstrap, seed=seed + 1)
-    boot = dataclasses.replace(draws, factors=draws.factors[:bootstrap], scale=1.0 / bootstrap, rscales=np.ones(bootstrap))
+    boot = dataclasses.replace(draws, factors=draws.factors[:bootstrap], multiplier=1.0 / bootstrap, multipliers=np.ones(bootstrap))
     factors = draws.factors.reshape(samples, bootstrap, len(psu_stratum))
     theta_bs = ratios.value(np.einsum("sbp,spk->bsk", factors, totals))  # (B, S, 2)
     v_bs = replicate_variance(theta, theta_bs, boot)

@@ -69,7 +69,7 @@ def test_srs_jackknife_variance_of_mean_is_s2_over_n():
     y = rng.normal(10.0, 3.0, 57)
     frame = pl.DataFrame({"y": y, "w": np.full(57, 2.5)})
     gt = group_totals(frame, {"y": pl.col("y"), "one": pl.lit(1.0)}, weight="w", strata=None, psu=None)
-    rf = make_replicates("jk1", gt.psu_stratum)
+    rf = make_replicates("jackknife", gt.psu_stratum)
     mean = Ratios([0], [1])
     theta = mean.value(gt.totals.sum(axis=0))
     theta_r = mean.value(replicate_totals(gt, rf))
@@ -77,7 +77,7 @@ def test_srs_jackknife_variance_of_mean_is_s2_over_n():
     expected = np.var(y, ddof=1) / len(y)
     np.testing.assert_allclose(replicate_variance(theta, theta_r, rf), [expected], rtol=1e-12)
     # identity: the delete-one means average to the full mean, so both centres agree
-    np.testing.assert_allclose(replicate_variance(theta, theta_r, rf, centre="mean"), [expected], rtol=1e-12)
+    np.testing.assert_allclose(replicate_variance(theta, theta_r, rf, centre="replicate-mean"), [expected], rtol=1e-12)
     assert replicate_df(rf) == 56
 
 
@@ -91,17 +91,17 @@ def test_stratified_jackknife_of_linear_total_equals_with_replacement_formula(si
     frame = design_frame(sizes, seed)
     gt = totals_of(frame)
     fraction = np.random.default_rng(seed).uniform(0, 0.3, gt.n_strata) if fpc else None
-    rf = make_replicates("jkn", gt.psu_stratum, sampling_fraction=fraction)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum, sampling_fraction=fraction)
     totals = Ratios([0, 2], [-1, -1])
     theta = totals.value(gt.totals.sum(axis=0))
     theta_r = totals.value(replicate_totals(gt, rf))
     psu_z = gt.psu_totals()[:, [0, 2]]
-    # identity: JKn with multipliers (1-f_h)(n_h-1)/n_h on a linear estimator = ultimate-cluster variance
+    # identity: the stratified jackknife with multipliers (1-f_h)(n_h-1)/n_h on a linear estimator = ultimate-cluster variance
     # (Rust & Rao 1996 section 3; Wolter 2007 section 4.5)
     np.testing.assert_allclose(replicate_variance(theta, theta_r, rf), wr_variance(psu_z, gt.psu_stratum, fraction), rtol=1e-10)
     # identity: per-stratum replicate means of a linear total equal the full total, so centres agree
     np.testing.assert_allclose(
-        replicate_variance(theta, theta_r, rf, centre="mean"), replicate_variance(theta, theta_r, rf), rtol=1e-9
+        replicate_variance(theta, theta_r, rf, centre="replicate-mean"), replicate_variance(theta, theta_r, rf), rtol=1e-9
     )
     assert replicate_df(rf) == gt.n_psus - gt.n_strata
 
@@ -138,7 +138,7 @@ def test_fay_with_rho_zero_is_brr():
     fay = make_replicates("fay", psu_stratum, fay=0.5)
     assert set(np.unique(fay.factors)) == {0.5, 1.5}
     # Fay 1989: variance multiplier 1 / (R (1 - rho)^2)
-    assert fay.scale == pytest.approx(1 / (fay.n_replicates * 0.25))
+    assert fay.multiplier == pytest.approx(1 / (fay.n_replicates * 0.25))
 
 
 def test_bootstrap_factors_follow_rao_wu_construction():
@@ -152,7 +152,7 @@ def test_bootstrap_factors_follow_rao_wu_construction():
     np.testing.assert_allclose(multiplicity, np.round(multiplicity), atol=1e-12)
     again = make_replicates("bootstrap", psu_stratum, replicates=300, seed=7)
     np.testing.assert_array_equal(rf.factors, again.factors)
-    assert rf.scale == pytest.approx(1 / 300)
+    assert rf.multiplier == pytest.approx(1 / 300)
     assert replicate_df(rf) == 10 - 3
 
 
@@ -168,10 +168,10 @@ def test_bootstrap_variance_of_linear_total_is_unbiased_for_with_replacement_for
     np.testing.assert_allclose(replicate_variance(theta, theta_r, rf), expected, rtol=0.04)
 
 
-def test_jk1_multiplier_and_factors():
-    rf = make_replicates("jk1", np.array([0, 0, 1, 1, 1]))
-    # JK1 (Wolter 2007 section 4.2): factor P/(P-1) except the deleted PSU, multiplier (P-1)/P
-    assert rf.scale == pytest.approx(4 / 5)
+def test_unstratified_jackknife_multiplier_and_factors():
+    rf = make_replicates("jackknife", np.array([0, 0, 1, 1, 1]))
+    # unstratified jackknife (Wolter 2007 section 4.2): factor P/(P-1) except the deleted PSU, multiplier (P-1)/P
+    assert rf.multiplier == pytest.approx(4 / 5)
     np.testing.assert_allclose(np.diag(rf.factors), 0.0)
     np.testing.assert_allclose(rf.factors[0, 1:], 5 / 4)
     assert rf.notes and "one stratum" in rf.notes[0]
@@ -180,7 +180,7 @@ def test_jk1_multiplier_and_factors():
 def test_contrast_variance_from_covariance():
     frame = design_frame([[3, 2, 4], [2, 2, 2], [4, 3]], seed=5)
     gt = totals_of(frame)
-    rf = make_replicates("jkn", gt.psu_stratum)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum)
     ratios = Ratios([0, 2], [1, 3])  # mean of y overall and in domain d
     theta = ratios.value(gt.totals.sum(axis=0))
     theta_r = ratios.value(replicate_totals(gt, rf))
@@ -199,7 +199,7 @@ def test_scaling_weights_leaves_mean_se_and_scales_total_se():
     out = []
     for data in (frame, scaled):
         gt = totals_of(data)
-        rf = make_replicates("jkn", gt.psu_stratum)
+        rf = make_replicates("stratified-jackknife", gt.psu_stratum)
         out.append(replicate_variance(ratios.value(gt.totals.sum(axis=0)), ratios.value(replicate_totals(gt, rf)), rf))
     # identity: a mean is invariant to a common weight factor, a total scales with it
     np.testing.assert_allclose(out[1], out[0] * np.array([1.0, 49.0]), rtol=1e-10)
@@ -212,7 +212,7 @@ def test_row_order_does_not_change_replicate_variance():
     out = []
     for data in (frame, shuffled):
         gt = totals_of(data)
-        rf = make_replicates("jkn", gt.psu_stratum)
+        rf = make_replicates("stratified-jackknife", gt.psu_stratum)
         out.append(replicate_variance(ratios.value(gt.totals.sum(axis=0)), ratios.value(replicate_totals(gt, rf)), rf))
     # invariant (../shared/DESIGN.md): results do not depend on row order
     np.testing.assert_allclose(out[0], out[1], rtol=1e-12)
@@ -222,18 +222,18 @@ def test_brr_needs_two_psus_per_stratum_and_names_every_bad_stratum():
     with pytest.raises(DataError) as err:
         make_replicates("brr", np.array([0, 0, 1, 1, 1, 2, 3, 3]), stratum_labels=["A", "B", "C", "D"])
     text = err.value.render()
-    assert "B: 3" in text and "C: 1" in text and "jkn" in text
+    assert "B: 3" in text and "C: 1" in text and "stratified-jackknife" in text
     assert err.value.problems[0].count == 2
 
 
 def test_jackknife_and_bootstrap_refuse_single_psu_strata():
-    for method in ("jkn", "bootstrap"):
+    for method in ("stratified-jackknife", "bootstrap"):
         with pytest.raises(DataError) as err:
             make_replicates(method, np.array([0, 0, 1, 2, 2, 3]), stratum_labels=["A", "B", "C", "D"])
         assert err.value.problems[0].examples == ("B", "D")
 
 
-@pytest.mark.parametrize("method", ["jkn", "bootstrap"])
+@pytest.mark.parametrize("method", ["stratified-jackknife", "bootstrap"])
 def test_certainty_policy_gives_lone_psus_no_variance(method):
     frame = design_frame([[3, 2, 4], [5], [2, 2], [4]], seed=6)
     gt = totals_of(frame)
@@ -245,25 +245,25 @@ def test_certainty_policy_gives_lone_psus_no_variance(method):
     v = replicate_variance(theta, replicate_totals(gt, rf)[:, [0]], rf)
     multi = ~lone
     expected = wr_variance(gt.psu_totals()[multi][:, [0]], gt.psu_stratum[multi])
-    # identity (jkn, exact) / Rao & Wu 1988 expectation (bootstrap, 20,000 replicates: about 1.5% MC error):
+    # identity (stratified jackknife, exact) / Rao & Wu 1988 expectation (bootstrap, 20,000 replicates: about 1.5% MC error):
     # the with-replacement variance over the strata with 2+ PSUs, lone strata contributing 0
-    np.testing.assert_allclose(v, expected, rtol=1e-10 if method == "jkn" else 0.06)
+    np.testing.assert_allclose(v, expected, rtol=1e-10 if method == "stratified-jackknife" else 0.06)
     assert replicate_df(rf) == (3 + 2) - 2  # PSUs minus strata, over the strata with 2+ PSUs
     assert any("certainty" in note for note in rf.notes)
 
 
 def test_bad_options_are_all_reported():
     with pytest.raises(SpecError) as err:
-        make_replicates("halfsample", np.array([0, 0]), fay=1.2, replicates=1, single_psu="centre")
+        make_replicates("halfsample", np.array([0, 0]), fay=1.2, replicates=1, single_psu="grand-mean")
     assert len(err.value.problems) == 4
     with pytest.raises(SpecError, match="sampling fractions"):
-        make_replicates("jkn", np.array([0, 0, 1, 1]), sampling_fraction=np.array([0.1]))
+        make_replicates("stratified-jackknife", np.array([0, 0, 1, 1]), sampling_fraction=np.array([0.1]))
 
 
 def test_jackknife_over_too_many_psus_is_refused_with_advice():
     # a jackknife over 20,000 respondent-level PSUs would need a 20,000 x 20,000 factor matrix (3 GiB)
     with pytest.raises(DataError) as err:
-        make_replicates("jk1", np.zeros(20_000, dtype=np.int64))
+        make_replicates("jackknife", np.zeros(20_000, dtype=np.int64))
     assert "bootstrap" in err.value.render()
 
 
@@ -288,10 +288,10 @@ def test_supplied_replicate_totals_and_problems():
 
 
 def test_supplied_multipliers():
-    # successive differences: 4/R (Fay & Train 1995; ACS PUMS User Guide VII.B); jk1 (R-1)/R; Fay 1/(R(1-rho)^2)
-    assert supplied_factors("sdr", 80).scale == pytest.approx(0.05)
-    assert supplied_factors("jk1", 10).scale == pytest.approx(0.9)
-    assert supplied_factors("fay", 16, fay=0.5).scale == pytest.approx(1 / 4)
+    # successive differences: 4/R (Fay & Train 1995; ACS PUMS User Guide VII.B); jackknife (R-1)/R; Fay 1/(R(1-rho)^2)
+    assert supplied_factors("sdr", 80).multiplier == pytest.approx(0.05)
+    assert supplied_factors("jackknife", 10).multiplier == pytest.approx(0.9)
+    assert supplied_factors("fay", 16, fay=0.5).multiplier == pytest.approx(1 / 4)
     assert replicate_df(supplied_factors("sdr", 80)) == 79
     with pytest.raises(SpecError):
-        supplied_factors("jkn", 10)
+        supplied_factors("stratified-jackknife", 10)

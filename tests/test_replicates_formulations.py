@@ -73,7 +73,7 @@ def close(actual: np.ndarray, expected: np.ndarray) -> None:
 @given(
     sizes=st.lists(st.lists(st.integers(1, 25), min_size=2, max_size=4), min_size=1, max_size=5),
     n_classes=st.integers(1, 7),
-    method=st.sampled_from(["jkn", "jk1", "bootstrap", "brr", "fay"]),
+    method=st.sampled_from(["stratified-jackknife", "jackknife", "bootstrap", "brr", "fay"]),
     seed=st.integers(0, 2**16),
 )
 def test_every_formulation_equals_the_group_sum(sizes, n_classes, method, seed):
@@ -135,6 +135,6 @@ def test_repeated_groups_are_summed(how):
 def test_unknown_formulation_is_refused():
     frame = make_frame([[5, 6], [4, 7]], 2, seed=3)
     gt = group_totals(frame, QUANTITIES, weight="w0", strata="stratum", psu="psu", classes="cls")
-    rf = make_replicates("jkn", gt.psu_stratum)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum)
     with pytest.raises(ValueError, match="'dense'"):
         replicate_totals(gt, rf, reweight=smooth_reweight, base="one", how="dense")

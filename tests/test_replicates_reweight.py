@@ -94,9 +94,9 @@ FULL_GRID = [[40, 35, 44], [38, 45], [50, 36, 41, 39]]  # every PSU holds every 
 @pytest.mark.parametrize(
     ("method", "sizes"),
     [
-        ("jkn", FEW_STRATA),
-        ("jkn", MANY_STRATA),
-        ("jk1", FEW_STRATA),
+        ("stratified-jackknife", FEW_STRATA),
+        ("stratified-jackknife", MANY_STRATA),
+        ("jackknife", FEW_STRATA),
         ("bootstrap", FEW_STRATA),
         ("bootstrap", FULL_GRID),
         ("brr", [[5, 4]] * 6),
@@ -132,7 +132,7 @@ def test_full_sample_replay_equals_respondent_raking():
 def test_raked_margin_total_has_zero_replicate_variance():
     frame = make_frame(seed=1)
     gt = group_totals(frame, QUANTITIES, weight="w0", strata="stratum", psu="psu", classes="cls")
-    rf = make_replicates("jkn", gt.psu_stratum)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum)
     estimands = Ratios([gt.column("age0"), gt.column("y"), gt.column("q_female")], [-1, -1, gt.column("female")])
     theta = estimands.value(reweighted_totals(gt, reweight=rake_classes, base="one"))
     raked = replicate_variance(theta, estimands.value(replicate_totals(gt, rf, reweight=rake_classes, base="one")), rf)
@@ -148,7 +148,7 @@ def test_raked_margin_total_has_zero_replicate_variance():
 def test_replay_needs_the_weight_quantity():
     frame = make_frame(seed=2)
     gt = group_totals(frame, QUANTITIES, weight="w0", strata="stratum", psu="psu", classes="cls")
-    rf = make_replicates("jkn", gt.psu_stratum)
+    rf = make_replicates("stratified-jackknife", gt.psu_stratum)
     with pytest.raises(ValueError, match="base"):
         replicate_totals(gt, rf, reweight=rake_classes)
     with pytest.raises(KeyError, match="no quantity 'w'"):

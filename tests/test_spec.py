@@ -9,7 +9,7 @@ import pytest
 
 from conftest import TRACKER_SPEC
 from pipeline.errors import Problem, SpecError
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 
 
 def problems_of(tmp_path: Path, text: str) -> list[Problem]:
@@ -46,9 +46,9 @@ def test_example_spec_loads_to_typed_objects(tmp_path: Path) -> None:
     channel = study.variables["channel"]
     assert channel.values == {"shop": "In a shop", "web": "On the web"} and not channel.int_coded
     satisfaction = study.variables["satisfaction"]
-    # a scale's valid codes fill the unlabelled integers between its lowest and highest on-scale codes
+    # a rating's valid codes fill the unlabelled integers between its lowest and highest on-scale codes
     assert satisfaction.valid_codes == (*range(11), 99)
-    assert satisfaction.exclude_from_mean == (99,)
+    assert satisfaction.exclude_from_statistics == (99,)
     assert satisfaction.nets == {"Top two box (9-10)": (9, 10)}
     assert study.variables["aware"].columns == ("aware_kestrel", "aware_lumen")
     assert study.variables["spend"].minimum == 0.0 and study.variables["spend"].maximum == 5000.0
@@ -68,12 +68,12 @@ def test_database_path_is_relative_to_the_spec(tmp_path: Path) -> None:
 
 
 def test_weighting_and_variance_are_kept_raw(tmp_path: Path) -> None:
-    text = TRACKER_SPEC + '\n[variance]\nmethod = "jk1"\n\n[[weighting]]\nstep = "trim"\nupper = 4.0\n'
+    text = TRACKER_SPEC + '\n[variance]\nmethod = "jackknife"\n\n[[weighting]]\nstep = "trim"\nupper = 4.0\n'
     path = tmp_path / "study.toml"
     path.write_text(text, encoding="utf-8")
     study = load_spec(path)
     assert study.weighting == ({"step": "trim", "upper": 4.0},)
-    assert study.variance == {"method": "jk1"}
+    assert study.variance == {"method": "jackknife"}
 
 
 def test_section_problems_join_the_spec_problems(tmp_path: Path) -> None:
@@ -105,7 +105,7 @@ def test_missing_spec_file(tmp_path: Path) -> None:
     [
         ('title = "Riverbend Kettle Tracker"', 'title = "R"\ncolour = "red"', "colour"),
         ('label = "Wave 2 (June 2026)"', 'label = "W"\nfiles = "x"', "waves.W2.files"),
-        ('psu_ids = "nested"', 'psu_ids = "nested"\nclusters = "area"', "design.clusters"),
+        ('psu_ids = "within-stratum"', 'psu_ids = "within-stratum"\nclusters = "area"', "design.clusters"),
         ('label = "Monthly spend (credits)"', 'label = "S"\nunit = "credits"', "variables.spend.unit"),
     ],
 )
@@ -157,9 +157,9 @@ def test_missing_type(tmp_path: Path) -> None:
 
 
 def test_exclude_from_mean_code_must_be_labelled(tmp_path: Path) -> None:
-    text = TRACKER_SPEC.replace("exclude_from_mean = [99]", "exclude_from_mean = [98]")
+    text = TRACKER_SPEC.replace("exclude_from_statistics = [99]", "exclude_from_statistics = [98]")
     problem = one(problems_of(tmp_path, text), "undeclared-code")
-    assert problem.message.startswith("variables.satisfaction.exclude_from_mean: code 98")
+    assert problem.message.startswith("variables.satisfaction.exclude_from_statistics: code 98")
     assert problem.value == "98"
 
 
@@ -183,7 +183,7 @@ def test_net_of_string_codes(tmp_path: Path) -> None:
     ("old", "new", "key"),
     [
         ('label = "Age band"', 'label = "Age band"\nitems = { a = "A" }', "variables.age_band.items"),
-        ('label = "Age band"', "exclude_from_mean = [1]\nlabel = \"Age band\"", "variables.age_band.exclude_from_mean"),
+        ('label = "Age band"', "exclude_from_statistics = [1]\nlabel = \"Age band\"", "variables.age_band.exclude_from_statistics"),
         ('label = "Monthly spend (credits)"', 'label = "S"\nvalues = { 1 = "x" }', "variables.spend.values"),
     ],
 )
@@ -198,9 +198,9 @@ def test_bad_variable_type(tmp_path: Path) -> None:
 
 
 def test_scale_codes_must_be_integers(tmp_path: Path) -> None:
-    text = TRACKER_SPEC.replace('99 = "Don\'t know" }', 'dk = "Don\'t know" }').replace("exclude_from_mean = [99]\n", "")
+    text = TRACKER_SPEC.replace('99 = "Don\'t know" }', 'dk = "Don\'t know" }').replace("exclude_from_statistics = [99]\n", "")
     problem = one(problems_of(tmp_path, text), "wrong-type")
-    assert problem.message.startswith("variables.satisfaction.values: the codes of a scale must all be integers")
+    assert problem.message.startswith("variables.satisfaction.values: the codes of a rating must all be integers")
 
 
 def test_base_weight_and_probability_conflict(tmp_path: Path) -> None:
@@ -296,8 +296,8 @@ def test_bad_wave_id_and_dates(tmp_path: Path) -> None:
 def test_every_problem_is_reported_at_once(tmp_path: Path) -> None:
     text = (
         TRACKER_SPEC.replace('title = "Riverbend Kettle Tracker"', "title = 3")
-        .replace("exclude_from_mean = [99]", "exclude_from_mean = [98]")
-        .replace('psu_ids = "nested"', 'psu_ids = "nested"\nclusters = "area"')
+        .replace("exclude_from_statistics = [99]", "exclude_from_statistics = [98]")
+        .replace('psu_ids = "within-stratum"', 'psu_ids = "within-stratum"\nclusters = "area"')
     )
     path = tmp_path / "study.toml"
     path.write_text(text, encoding="utf-8")

@@ -1,5 +1,5 @@
 """stage_wave: typed rows, atomic replace, untouched neighbours, rollback on failure, same table
-from CSV / Parquet / SPSS, schema growth, and staging real reference files in place."""
+from CSV / Parquet, schema growth, and staging real reference files in place."""
 
 from __future__ import annotations
 
@@ -13,13 +13,13 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from polars.testing import assert_frame_equal
 
-import pipeline.stage
-from pipeline.spec import load_spec
+import pipeline.staging.stage
+from pipeline.staging.spec import load_spec
 from conftest import TRACKER_SPEC, Tracker, tracker_rows
 from pipeline.cli import main
-from pipeline.database import load_responses, open_database
 from pipeline.errors import DataError
-from pipeline.stage import stage_wave
+from pipeline.staging.database import load_responses, open_database
+from pipeline.staging.stage import stage_wave
 
 
 def snapshot(tracker: Tracker) -> dict[str, list[tuple]]:
@@ -137,13 +137,13 @@ def test_exception_mid_insert_rolls_everything_back(tracker: Tracker, monkeypatc
     study = tracker.study()
     stage_wave(study, "W1", quiet=True)
     before = snapshot(tracker)
-    original = pipeline.stage._insert_rows
+    original = pipeline.staging.stage._insert_rows
 
     def insert_then_fail(*args: object, **kwargs: object) -> None:
         original(*args, **kwargs)  # the old rows are deleted and the new ones inserted by now
         raise RuntimeError("disk full (simulated)")
 
-    monkeypatch.setattr(pipeline.stage, "_insert_rows", insert_then_fail)
+    monkeypatch.setattr(pipeline.staging.stage, "_insert_rows", insert_then_fail)
     tracker.write_wave("wave1.csv", tracker_rows(5, prefix="z"))
     with pytest.raises(RuntimeError, match="simulated"):
         stage_wave(study, "W1", quiet=True)
@@ -186,10 +186,8 @@ def test_codebook_type_change_is_refused(tracker: Tracker) -> None:
 
 
 def _write_formats(tracker: Tracker) -> None:
-    """The same 12 respondents as CSV (W1), Parquet with native types (W2) and SPSS (W3)."""
-    import pandas as pd
-    import pyreadstat
-
+    """The same 12 respondents as CSV (W1), Parquet with native types (W2) and Parquet with every
+    number stored as a float (W3, as many export tools write it: 3.0 must stage as code 3)."""
     rows = tracker_rows(12, prefix="a")
     tracker.write_wave("wave1.csv", rows)
     typed = pl.DataFrame(rows).with_columns(
@@ -199,15 +197,13 @@ def _write_formats(tracker: Tracker) -> None:
     )
     typed.write_parquet(tracker.folder / "waves" / "wave2.parquet")
     numeric = [c for c, t in typed.schema.items() if t != pl.String]
-    frame = pd.DataFrame({c: typed[c].to_list() for c in typed.columns})
-    frame[numeric] = frame[numeric].astype("float64")
-    pyreadstat.write_sav(frame, str(tracker.folder / "waves" / "wave3.sav"))
+    typed.with_columns(pl.col(numeric).cast(pl.Float64)).write_parquet(tracker.folder / "waves" / "wave3.parquet")
     spec = TRACKER_SPEC.replace('file = "waves/wave2.csv"', 'file = "waves/wave2.parquet"')
-    spec = spec.replace("[design]", '[waves.W3]\nlabel = "Wave 3"\nfile = "waves/wave3.sav"\n\n[design]')
+    spec = spec.replace("[design]", '[waves.W3]\nlabel = "Wave 3"\nfile = "waves/wave3.parquet"\n\n[design]')
     tracker.write_spec(spec)
 
 
-def test_csv_parquet_and_spss_stage_the_same_rows(tracker: Tracker) -> None:
+def test_csv_parquet_and_float_parquet_stage_the_same_rows(tracker: Tracker) -> None:
     _write_formats(tracker)
     study = tracker.study()
     reports = [stage_wave(study, w, quiet=True) for w in ("W1", "W2", "W3")]

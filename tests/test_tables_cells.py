@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from tables_helpers import cluster_sample, make_study, tabulate
 
-from pipeline.spec import Variable
+from pipeline.staging.spec import Variable
 
 
 def _numpy_domain(frame: pl.DataFrame, y: np.ndarray, d: np.ndarray) -> tuple[float, float]:

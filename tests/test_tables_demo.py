@@ -9,11 +9,11 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.database import load_responses, open_database
+from pipeline.staging.database import load_responses, open_database
 from pipeline.estimation.options import VarianceOptions
 from pipeline.runner import run_study
-from pipeline.spec import load_spec
-from pipeline.stage import stage_wave
+from pipeline.staging.spec import load_spec
+from pipeline.staging.stage import stage_wave
 from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.exports import read_export
 from pipeline.topline import unweighted_toplines

@@ -7,7 +7,7 @@ import polars as pl
 from scipy import stats
 from tables_helpers import cluster_sample, make_study, tabulate
 
-from pipeline.spec import Variable
+from pipeline.staging.spec import Variable
 from pipeline.tables.rao_scott import rao_scott
 
 VARIABLES = {

@@ -11,7 +11,7 @@ from tables_helpers import cluster_sample, make_study, tabulate
 
 from pipeline.estimation import Ratios, SampleDesign, group_totals, taylor_variance
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Variable
+from pipeline.staging.spec import Variable
 from pipeline.tables.banners import letter
 
 STUDY = make_study({
@@ -108,7 +108,7 @@ def test_srs_column_against_total_is_the_part_whole_formula():
 def test_replicate_pair_test_uses_the_replicate_differences():
     """Stratified jackknife: the variance of a difference is the replicate variance of the differences, not v_a + v_b."""
     frame = cluster_sample(np.random.default_rng(5), strata=3, psus=3, per_psu=12, categories=3, groups=3)
-    options = VarianceOptions(method="jkn")
+    options = VarianceOptions(method="stratified-jackknife")
     result = tabulate(frame, STUDY, ("g",), options=options).finish()
     got = _test(result.tests, "total", 1, "g=1", "Total")
     cells = result.cells.filter((pl.col("variable") == "y") & (pl.col("row") == 1))

@@ -81,8 +81,8 @@ def test_significance_outside_zero_to_half_is_refused(tracker, level):
 
 
 def test_same_psus_across_waves_is_a_design_flag(tracker):
-    tracker.write_spec(TRACKER_SPEC.replace('psu_ids = "nested"', 'psu_ids = "nested"\nsame_psus_across_waves = true'))
+    tracker.write_spec(TRACKER_SPEC.replace('psu_ids = "within-stratum"', 'psu_ids = "within-stratum"\nsame_psus_across_waves = true'))
     assert tracker.study().design.same_psus_across_waves is True
-    tracker.write_spec(TRACKER_SPEC.replace('psu_ids = "nested"', 'psu_ids = "nested"\nsame_psus_across_waves = 1'))
+    tracker.write_spec(TRACKER_SPEC.replace('psu_ids = "within-stratum"', 'psu_ids = "within-stratum"\nsame_psus_across_waves = 1'))
     with pytest.raises(SpecError, match="same_psus_across_waves"):
         tracker.study()

@@ -9,7 +9,7 @@ import polars as pl
 from scipy import stats
 from tables_helpers import cluster_sample, make_study, tabulate
 
-from pipeline.spec import Variable, Wave
+from pipeline.staging.spec import Variable, Wave
 from pipeline.tables.wave_change import satterthwaite, wave_pairs
 
 WAVES = tuple(Wave(w, w, Path(f"{w}.csv")) for w in ("W1", "W2", "W3"))

@@ -9,7 +9,7 @@ import polars as pl
 from tables_helpers import cluster_sample, layout_rows
 
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Design, Study, Variable
+from pipeline.staging.spec import Design, Study, Variable
 from pipeline.tables import Tabulation
 from pipeline.tables.spec import BannerSpec, TablesSpec
 from pipeline.weighting import fit_recipe

@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.database import load_responses, open_database
 from pipeline.estimation.options import VarianceOptions, parse_variance
-from pipeline.stage import stage_wave
+from pipeline.staging.database import load_responses, open_database
+from pipeline.staging.stage import stage_wave
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import wave_estimates
 from pipeline.weighting import fit_recipe, parse_steps
@@ -126,7 +128,7 @@ def test_every_estimable_row_has_an_estimate_and_interval_around_it(wave):
 
 
 def test_replicate_method_from_the_variance_table(wave):
-    options, problems = parse_variance({"method": "jkn"})
+    options, problems = parse_variance({"method": "stratified-jackknife"})
     assert problems == []
     taylor = _estimates(wave)
     jack = _estimates(wave, options)
@@ -150,7 +152,7 @@ def test_percentages_of_a_raking_margin_are_flagged_as_set_by_weighting(wave):
     """Raking to region shares makes the region percentages equal their targets exactly (the
     calibration equations), so they carry no sampling error; other variables keep theirs."""
     study, responses, layout, _ = wave
-    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study)
+    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study.step_context())
     base, _ = design_base_weights(responses, study)
     recipe = fit_recipe(responses, steps, base_weights=base)
     est = wave_estimates(responses, study, recipe, layout, VarianceOptions(), wave="W1")
@@ -172,7 +174,7 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     from pipeline.weighting.store import build_report
 
     study, responses, layout, _ = wave
-    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study)
+    steps = parse_steps(({"step": "rake", "margins": ["region"], "totals": {"region": {"1": 0.55, "2": 0.45}}},), study.step_context())
     base, _ = design_base_weights(responses, study)
     recipe = fit_recipe(responses, steps, base_weights=base)
     report = build_report(recipe, wave="W1", n_input=responses.height)
@@ -212,4 +214,5 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     assert "weighting" in parser.ids
     text = " ".join(parser.text)
     assert "set by weighting" in text
+    assert re.search(r"\bdeff\s+\d+\.\d\d\b", text)  # the design effect's label is text in the page, not CSS
     assert not any(rid in text for rid in responses["respondent_id"].to_list())  # no respondent ids

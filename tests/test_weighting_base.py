@@ -9,7 +9,7 @@ import polars as pl
 import pytest
 
 from pipeline.errors import DataError
-from pipeline.spec import Design, Study
+from pipeline.staging.spec import Design, Study
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.recipe import fit_recipe
 from pipeline.weighting.steps import NonresponseStep

@@ -12,10 +12,10 @@ import numpy as np
 import polars as pl
 import pytest
 
-from pipeline.spec import load_spec
+from pipeline.staging.spec import load_spec
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.recipe import fit_recipe
-from pipeline.weighting.steps import code_order, parse_steps
+from pipeline.weighting.steps import parse_steps
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_data"
 
@@ -36,13 +36,13 @@ def weighted() -> dict[str, tuple[pl.DataFrame, np.ndarray]]:
         pytest.skip("sample_data/study.toml is absent")
     study = load_spec(SAMPLE / "study.toml")
     assert study.weighting, "the demo spec declares its weighting"
-    steps = parse_steps(study.weighting, study)
+    steps = parse_steps(study.weighting, study.step_context())
     out = {}
     for wave in study.waves:
         data = _wave(study, wave.id)
         base, how = design_base_weights(data, study)
         assert how == "1 / selection probability 'p_select'"
-        recipe = fit_recipe(data, steps, base_weights=base, code_order=code_order(study, set(study.variables)))
+        recipe = fit_recipe(data, steps, base_weights=base, code_order=study.step_context().code_order(set(study.variables)))
         out[wave.id] = (data, recipe.weights)
     return out
 

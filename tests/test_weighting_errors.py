@@ -9,7 +9,7 @@ import polars as pl
 import pytest
 
 from pipeline.errors import DataError, SpecError
-from pipeline.spec import Design, Study, Variable
+from pipeline.staging.spec import Design, Study, Variable
 from pipeline.weighting.margins import Collapse
 from pipeline.weighting.recipe import fit_recipe
 from pipeline.weighting.steps import RakeStep, TrimStep, parse_steps
@@ -130,7 +130,7 @@ def test_parse_steps_reads_every_kind(tmp_path: Path) -> None:
         {"step": "calibrate", "distance": "logit", "bounds": [0.5, 2], "margins": ["sex"], "numeric": {"hh": 5000},
          "totals": {"sex": {"1": 0.5, "2": 0.5}}},
     )
-    steps = parse_steps(raw, _study(tmp_path))
+    steps = parse_steps(raw, _study(tmp_path).step_context())
     assert [s.kind for s in steps] == ["nonresponse", "poststratify", "rake", "trim", "calibrate"]
     assert steps[2].margins == (("age_band", "sex"), ("sex",)) and steps[2].tolerance == 1e-9
     assert steps[2].collapse == Collapse(10, {"age_band": (("1", "2"),)})
@@ -147,7 +147,7 @@ def test_parse_steps_collects_every_problem_naming_keys(tmp_path: Path) -> None:
         {"step": "nonresponse", "status": "status", "responded": [1], "nonrespondent": [1]},
     )
     with pytest.raises(SpecError) as exc:
-        parse_steps(raw, _study(tmp_path))
+        parse_steps(raw, _study(tmp_path).step_context())
     text = exc.value.render()
     for fragment in ("weighting[0].margins[0]: 'region'", "weighting[0].tolerence: unknown key", "missing.csv",
                      "weighting[1].upper", "weighting[2].bounds", "weighting[3].step", "weighting[4].responded",

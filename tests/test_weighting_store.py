@@ -11,10 +11,10 @@ import polars as pl
 import pytest
 
 from pipeline.cli import main
-from pipeline.database import open_database
 from pipeline.errors import DataError
-from pipeline.spec import load_spec
-from pipeline.stage import stage_wave
+from pipeline.staging.database import open_database
+from pipeline.staging.spec import load_spec
+from pipeline.staging.stage import stage_wave
 from pipeline.weighting.store import weigh_wave
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_data"

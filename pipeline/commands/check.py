@@ -17,8 +17,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     """Print each wave's problems and a one-line verdict; exit 1 when any wave has an error."""
     from pipeline.commands.stage import selected_waves
-    from pipeline.spec import load_spec
-    from pipeline.stage import check_wave
+    from pipeline.staging.spec import load_spec
+    from pipeline.staging.stage import check_wave
 
     study = load_spec(args.spec)
     failed = False

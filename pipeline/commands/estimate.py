@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 from typing import TYPE_CHECKING
 
+from pipeline.renamed import add_retired_options, option_value
+
 if TYPE_CHECKING:
     from pathlib import Path
 
@@ -12,6 +14,10 @@ if TYPE_CHECKING:
 
 HELP = "estimate means, totals, proportions, ratios or quantiles with design-based standard errors"
 EXAMPLE = "wavebook estimate wave3.csv --weight wt --strata region --psu area --proportion q1 --by age_band"
+# the same choices as pipeline.estimation (design.SINGLE_PSU_POLICIES, api.VARIANCE_METHODS; kept literal so
+# that --help needs no numpy or polars import; tests/test_estimate_command.py checks they agree)
+SINGLE_PSU_POLICIES = ("error", "certainty", "grand-mean", "collapse")
+VARIANCE_METHODS = ("taylor", "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap", "supplied")
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """DATA, the design columns, what to estimate, the variance method and the output format."""
@@ -22,29 +28,46 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     design.add_argument("--psu", metavar="COL", help="PSU (cluster) column (default: each respondent is a PSU)")
     design.add_argument(
         "--psu-ids",
-        choices=("nested", "unique"),
-        default="nested",
-        help="PSU ids restart within each stratum (nested, default) or are unique across strata",
+        type=option_value("--psu-ids"),
+        choices=("within-stratum", "unique"),
+        default="within-stratum",
+        help="PSU ids restart within each stratum (within-stratum, default) or are unique across strata",
     )
-    design.add_argument(
-        "--fpc",
-        metavar="COL",
-        help="stratum population count N_h for the finite population correction "
-        "(a value <= 1 is read as the sampling fraction)",
+    fpc = design.add_mutually_exclusive_group()
+    fpc.add_argument(
+        "--population-size",
+        metavar="COL|N",
+        help="finite population correction from the first-stage population size N_h: a column holding "
+        "each stratum's number of first-stage units (PSUs; respondents without --psu), or one number "
+        "without --strata",
+    )
+    fpc.add_argument(
+        "--sampling-fraction",
+        metavar="COL|F",
+        help="finite population correction from the first-stage sampling fraction f_h = n_h / N_h: a column "
+        "holding each stratum's fraction, or one number in (0, 1] for every stratum (e.g. 0.02)",
     )
     design.add_argument(
         "--second-stage-fraction",
         type=float,
         default=0.0,
         metavar="F2",
-        help="with --psu and --fpc: share of each selected PSU's units sampled (default 0, unknown: the "
+        help="with --psu and a finite population correction: share of each selected PSU's units sampled (default 0, unknown: the "
         "within-PSU variance term is added in full; 1: whole PSUs were taken)",
     )
     design.add_argument(
         "--single-psu",
-        choices=("error", "certainty", "centre"),
+        type=option_value("--single-psu"),
+        choices=SINGLE_PSU_POLICIES,
         default="error",
-        help="what to do with strata that have one PSU (default: error)",
+        help="what to do with strata that have one PSU (default: error); collapse needs --collapse-with",
+    )
+    design.add_argument(
+        "--collapse-with",
+        action="append",
+        default=[],
+        metavar="STRATUM=PARTNER",
+        help="with --single-psu collapse: merge STRATUM into PARTNER before the variance (repeat per pair)",
     )
     what = parser.add_argument_group("what to estimate (repeat any of these)")
     what.add_argument("--mean", action="append", default=[], metavar="COL")
@@ -58,19 +81,23 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     var = parser.add_argument_group("variance")
     var.add_argument(
         "--variance",
-        choices=("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied"),
+        type=option_value("--variance"),
+        choices=VARIANCE_METHODS,
         default="taylor",
         help="Taylor linearization (default) or a replicate method",
     )
     var.add_argument(
         "--replicate-cols", metavar="PATTERN", help="regular expression matching whole replicate-weight column names"
     )
-    var.add_argument("--replicate-scale", type=float, metavar="X", help="variance multiplier of the replicate weights")
+    var.add_argument(
+        "--replicate-multiplier", type=float, metavar="X", help="variance multiplier of the replicate weights"
+    )
     var.add_argument("--fay", type=float, default=0.0, metavar="RHO", help="Fay coefficient for BRR (default 0)")
     var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
     var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
     parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
+    add_retired_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -93,6 +120,15 @@ def run(args: argparse.Namespace) -> int:
             problems.append(Problem(rule="bad-quantile", message=message, column=col, value=q))
     if not 0.0 < args.level < 1.0:
         problems.append(Problem(rule="bad-option", message="--level must be between 0 and 1", value=str(args.level)))
+    collapse = {}
+    for pair in args.collapse_with:
+        stratum, sep, partner = pair.partition("=")
+        if not sep or not stratum or not partner:
+            message = "--collapse-with takes STRATUM=PARTNER"
+            problems.append(Problem(rule="bad-option", message=message, value=pair))
+        collapse[stratum] = partner
+    if collapse and args.single_psu != "collapse":
+        problems.append(Problem(rule="bad-option", message="--collapse-with needs --single-psu collapse"))
     if problems:
         raise SpecError("the estimate options are invalid", problems)
     path = Path(args.data)
@@ -105,7 +141,8 @@ def run(args: argparse.Namespace) -> int:
             strata=args.strata,
             psu=args.psu,
             psu_ids=args.psu_ids,
-            fpc=args.fpc,
+            population_size=_column_or_number(args.population_size),
+            sampling_fraction=_column_or_number(args.sampling_fraction),
             mean=args.mean,
             total=args.total,
             proportion=args.proportion,
@@ -114,12 +151,13 @@ def run(args: argparse.Namespace) -> int:
             by=args.by,
             variance=args.variance,
             replicate_cols=args.replicate_cols,
-            replicate_scale=args.replicate_scale,
+            replicate_multiplier=args.replicate_multiplier,
             fay=args.fay,
             replicates=args.replicates,
             seed=args.seed,
             level=args.level,
             single_psu=args.single_psu,
+            collapse_with=collapse,
             second_stage_fraction=args.second_stage_fraction,
             source=str(path),
         ).select(COLUMNS)
@@ -128,6 +166,16 @@ def run(args: argparse.Namespace) -> int:
     else:
         print(result.write_csv(), end="")
     return 0
+
+
+def _column_or_number(value: str | None) -> str | float | None:
+    """A --population-size / --sampling-fraction value: a number when it reads as one, else a column name."""
+    if value is None:
+        return None
+    try:
+        return float(value)
+    except ValueError:
+        return value
 
 
 def _read(path: Path) -> pl.DataFrame:

@@ -10,7 +10,7 @@ EXAMPLE = "wavebook init waves/wave1.csv --out study.toml --id resp_id"
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Options of `wavebook init`."""
-    parser.add_argument("data", help="a wave file: .csv, .parquet or .sav")
+    parser.add_argument("data", help="a wave file: .csv or .parquet")
     parser.add_argument("--out", default="study.toml", help="where to write the draft (default: study.toml)")
     parser.add_argument("--id", dest="id_column", help="the respondent id column (default: guessed)")
     parser.add_argument("--force", action="store_true", help="overwrite --out if it exists")
@@ -22,7 +22,7 @@ def run(args: argparse.Namespace) -> int:
     import tempfile
     from pathlib import Path
 
-    from pipeline.draft import draft_spec
+    from pipeline.staging.draft import draft_spec
     from pipeline.errors import Problem, WavebookError
     from pipeline.progress import step
 

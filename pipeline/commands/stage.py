@@ -38,8 +38,8 @@ def run(args: argparse.Namespace) -> int:
     import sys
 
     from pipeline.errors import DataError
-    from pipeline.spec import load_spec
-    from pipeline.stage import stage_wave
+    from pipeline.staging.spec import load_spec
+    from pipeline.staging.stage import stage_wave
 
     study = load_spec(args.spec)
     failures: list[DataError] = []

@@ -21,9 +21,9 @@ def run(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     from pipeline.commands.stage import selected_waves
-    from pipeline.database import open_database, staged_waves
+    from pipeline.staging.database import open_database, staged_waves
     from pipeline.progress import step
-    from pipeline.spec import load_spec
+    from pipeline.staging.spec import load_spec
     from pipeline.weighting.store import export_weights, weigh_wave
 
     study = load_spec(args.spec)

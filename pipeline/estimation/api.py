@@ -32,10 +32,12 @@ from pipeline.estimation.result import COLUMNS, EstimateTable, interval
 from pipeline.estimation.taylor import Calibration, SquaredTotals, taylor_variance, within_psu_variance
 from pipeline.estimation.totals import GroupTotals, group_totals
 
-VARIANCE_METHODS: tuple[str, ...] = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap", "supplied")
+VARIANCE_METHODS: tuple[str, ...] = (
+    "taylor", "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap", "supplied"
+)
 # replicate methods that apply the first-stage FPC (1 - f_h) to the between-PSU deviations
 # (`replicates` module docstring); they get the within-PSU term of the two-stage estimator too
-FPC_REPLICATE_METHODS: tuple[str, ...] = ("jk1", "jkn")
+FPC_REPLICATE_METHODS: tuple[str, ...] = ("jackknife", "stratified-jackknife")
 WEIGHT_QUANTITY = "__weight"
 FINAL_WEIGHT = "__final_weight_for_cdf"
 
@@ -162,8 +164,9 @@ def estimate_table(
     weight: str,
     strata: str | None = None,
     psu: str | None = None,
-    fpc: str | Mapping[str, float] | None = None,
-    psu_ids: str = "nested",
+    population_size: str | Mapping[str, float] | float | None = None,
+    sampling_fraction: str | Mapping[str, float] | float | None = None,
+    psu_ids: str = "within-stratum",
     mean: str | Sequence[str] | None = None,
     total: str | Sequence[str] | None = None,
     proportion: str | Sequence[str] | None = None,
@@ -172,7 +175,7 @@ def estimate_table(
     by: str | None = None,
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
-    replicate_scale: float | None = None,
+    replicate_multiplier: float | None = None,
     replicate_method: str = "sdr",
     fay: float = 0.0,
     replicates: int | None = None,
@@ -188,7 +191,8 @@ def estimate_table(
 ) -> EstimateTable:
     """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
     design = SampleDesign(
-        weight=weight, strata=strata, psu=psu, psu_ids=psu_ids, fpc=fpc,  # type: ignore[arg-type]
+        weight=weight, strata=strata, psu=psu, psu_ids=psu_ids,  # type: ignore[arg-type]
+        population_size=population_size, sampling_fraction=sampling_fraction,
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
         second_stage_fraction=float(second_stage_fraction),
     )
@@ -239,7 +243,7 @@ def estimate_table(
         theta = ratios.value(t)
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
-            replicate_scale=replicate_scale, replicate_method=replicate_method, fay=fay, replicates=replicates,
+            replicate_multiplier=replicate_multiplier, replicate_method=replicate_method, fay=fay, replicates=replicates,
             seed=seed, reweight=reweight, layout=layout, certainty=design.single_psu == "certainty", source=source,
         )
         has_fpc = layout is not None and layout.has_fpc
@@ -323,8 +327,9 @@ def estimate(
     weight: str,
     strata: str | None = None,
     psu: str | None = None,
-    fpc: str | Mapping[str, float] | None = None,
-    psu_ids: str = "nested",
+    population_size: str | Mapping[str, float] | float | None = None,
+    sampling_fraction: str | Mapping[str, float] | float | None = None,
+    psu_ids: str = "within-stratum",
     mean: str | Sequence[str] | None = None,
     total: str | Sequence[str] | None = None,
     proportion: str | Sequence[str] | None = None,
@@ -333,7 +338,7 @@ def estimate(
     by: str | None = None,
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
-    replicate_scale: float | None = None,
+    replicate_multiplier: float | None = None,
     replicate_method: str = "sdr",
     fay: float = 0.0,
     replicates: int | None = None,
@@ -351,19 +356,21 @@ def estimate(
 
     Columns: statistic, variable, category, domain, estimate, se, ci_low, ci_high, df, deff, n,
     n_eff, reason, method. Options:
-      weight (required), strata, psu, fpc (column of stratum population counts N_h, a value <= 1
-      read as the sampling fraction; or a mapping stratum -> value), psu_ids ("nested"/"unique");
+      weight (required), strata, psu, psu_ids ("within-stratum"/"unique"); for the finite population
+      correction either population_size (the first-stage population size N_h: a column, a mapping
+      stratum -> N_h, or one number without strata) or sampling_fraction (f_h: a column, a mapping
+      stratum -> f_h, or one number for every stratum);
       second_stage_fraction: with an FPC and PSUs, the share of each selected PSU's units sampled
       (default 0, unknown: the within-PSU term is added in full; 1: whole PSUs, none is added);
       mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
       quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
-      variance: "taylor" (default) or a replicate method: "jk1", "jkn", "brr", "fay", "bootstrap",
-      "supplied" (replicate_cols: a regular expression matched against whole column names or a
-      list of names; replicate_method: how they were made, default "sdr"; replicate_scale: the
-      variance multiplier, default that of the method); fay, replicates, seed for the
-      replicate methods; level: interval level (t intervals with the design df; quantiles: the
+      variance: "taylor" (default) or a replicate method: "jackknife", "stratified-jackknife", "brr",
+      "fay", "bootstrap", "supplied" (replicate_cols: a regular expression matched against whole
+      column names or a list of names; replicate_method: how they were made, default "sdr";
+      replicate_multiplier: the variance multiplier, default that of the method); fay, replicates,
+      seed for the replicate methods; level: interval level (t intervals with the design df; quantiles: the
       Woodruff interval); source: the file name used in error messages; single_psu: "error",
-      "certainty", "centre" or "collapse" (collapse_with);
+      "certainty", "grand-mean" or "collapse" (collapse_with);
       classes + calibration_matrix: calibration residuals in Taylor (see `taylor`) and in the
       within-PSU term of the jackknife with a first-stage FPC; classes +
       reweight: `weight` then holds the adjusted base weights and reweight maps (R, C) class
@@ -373,9 +380,10 @@ def estimate(
     Formulas: `taylor`, `design`, `deff`, `intervals`, `quantiles` module docstrings.
     """
     return estimate_table(
-        frame, weight=weight, strata=strata, psu=psu, fpc=fpc, psu_ids=psu_ids, mean=mean, total=total,
+        frame, weight=weight, strata=strata, psu=psu, population_size=population_size,
+        sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total,
         proportion=proportion, ratio=ratio, quantile=quantile, by=by, variance=variance,
-        replicate_cols=replicate_cols, replicate_scale=replicate_scale, replicate_method=replicate_method,
+        replicate_cols=replicate_cols, replicate_multiplier=replicate_multiplier, replicate_method=replicate_method,
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
         reweight=reweight, source=source, second_stage_fraction=second_stage_fraction,
@@ -406,7 +414,7 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))
     if req["variance"] == "supplied" and not req["replicate_cols"]:
         options.append(("supplied replicate weights need replicate_cols (a pattern or a list)", None))
-    if req["variance"] == "supplied" and design.fpc is not None:
+    if req["variance"] == "supplied" and design.has_fpc:
         options.append(("supplied replicate weights carry their own variance recipe; drop the FPC", None))
     if (req["reweight"] is not None or req["calibration_matrix"] is not None) and req["classes"] is None:
         options.append(("a weighting replay or calibration matrix needs the weighting-class column (classes)", None))
@@ -435,7 +443,7 @@ def _replicate_variance(
     *,
     variance: str,
     replicate_cols: str | Sequence[str] | None,
-    replicate_scale: float | None,
+    replicate_multiplier: float | None,
     replicate_method: str,
     fay: float,
     replicates: int | None,
@@ -450,7 +458,7 @@ def _replicate_variance(
     Generated replicates: PSU factors from the design's `layout` (strata after collapsing, their
     sampling fractions f_h; lone PSUs kept at factor 1 when `certainty`), replicate totals from
     the group totals (the recipe replayed per replicate when `reweight` is given). Supplied replicate weights:
-    replicate totals W' Y from the weight columns, multiplier `replicate_scale` (default from
+    replicate totals W' Y from the weight columns, multiplier `replicate_multiplier` (default from
     `replicate_method`).
     """
     from pipeline.estimation import replicates as rep
@@ -458,7 +466,7 @@ def _replicate_variance(
 
     if variance == "supplied":
         cols = _replicate_columns(frame, replicate_cols)
-        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, scale=replicate_scale)
+        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, multiplier=replicate_multiplier)
         rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, cols, source=source)
     else:
         if layout is None:
@@ -468,8 +476,8 @@ def _replicate_variance(
             sampling_fraction=layout.fraction if layout.has_fpc else None, stratum_labels=layout.stratum_labels,
             single_psu="certainty" if certainty else "error",
         )
-        if replicate_scale is not None:
-            rf = replace(rf, scale=float(replicate_scale))
+        if replicate_multiplier is not None:
+            rf = replace(rf, multiplier=float(replicate_multiplier))
         rep_totals = rep.replicate_totals(gt, rf, reweight=reweight, base=WEIGHT_QUANTITY if reweight else None)
     v = replicate_variance(theta, ratios.value(rep_totals), rf)
     return np.where(np.isfinite(theta), v, np.nan), replicate_df(rf)

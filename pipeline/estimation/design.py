@@ -22,7 +22,7 @@ respondents (each respondent its own PSU, weights N_h / n_h) it is exactly Lohr'
 Strata with a single PSU have no within-stratum deviation; the policy says what to do:
   "error"      stop, naming the strata (default);
   "certainty"  treat the lone PSU as selected with certainty: it contributes 0;
-  "centre"     replace the stratum mean by the grand mean of all PSU totals,
+  "grand-mean" replace the stratum mean by the grand mean of all PSU totals,
                zbar = (1/P) sum_{h, j} z_hj, and add (1 - f_h) * (z_h1 - zbar)^2 (a conservative
                device; our own precise definition, following the idea of measuring the lone
                PSU's deviation from the overall centre -- from memory, no printed source to hand);
@@ -42,18 +42,23 @@ import polars as pl
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.totals import GroupTotals, sum_by
 
-SinglePsu = Literal["error", "certainty", "centre", "collapse"]
-SINGLE_PSU_POLICIES: tuple[str, ...] = ("error", "certainty", "centre", "collapse")
+SinglePsu = Literal["error", "certainty", "grand-mean", "collapse"]
+SINGLE_PSU_POLICIES: tuple[str, ...] = ("error", "certainty", "grand-mean", "collapse")
+PSU_IDS: tuple[str, ...] = ("within-stratum", "unique")
+FpcInput = str | Mapping[str, float] | float | None
 
 
 @dataclass(frozen=True)
 class SampleDesign:
     """Which columns hold the design, and how to treat the FPC and lone PSUs.
 
-    fpc: a column holding, per respondent, its stratum's first-stage population count N_h (a value
-    of at most 1 is read as the sampling fraction f_h), or a mapping stratum label -> that value,
-    or None (with-replacement variance, no FPC).
-    psu_ids: "nested" (PSU ids restart within each stratum) or "unique" (unique across strata).
+    population_size: the first-stage population size N_h of each stratum (PSUs in the stratum's
+    population; respondents in a one-stage design): a column holding, per respondent, its stratum's
+    N_h, or a mapping stratum label -> N_h, or one number without strata.
+    sampling_fraction: alternatively the first-stage sampling fraction f_h = n_h / N_h: a column, a
+    mapping stratum label -> f_h, or one number for every stratum. Give at most one of the two;
+    neither: with-replacement variance, no FPC.
+    psu_ids: "within-stratum" (PSU ids restart within each stratum) or "unique" (unique across strata).
     collapse_with: for single_psu "collapse", stratum label -> partner stratum label.
     second_stage_fraction: f_2, the share of each selected PSU's units taken at the second stage
     (0 when unknown, the safe side; 1 when whole PSUs are taken); used only with an FPC.
@@ -62,8 +67,9 @@ class SampleDesign:
     weight: str
     strata: str | None = None
     psu: str | None = None
-    psu_ids: Literal["nested", "unique"] = "nested"
-    fpc: str | Mapping[str, float] | None = None
+    psu_ids: Literal["within-stratum", "unique"] = "within-stratum"
+    population_size: FpcInput = None
+    sampling_fraction: FpcInput = None
     single_psu: SinglePsu = "error"
     collapse_with: Mapping[str, str] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
@@ -81,8 +87,17 @@ class SampleDesign:
                     value=str(self.single_psu),
                 )
             )
-        if self.psu_ids not in ("nested", "unique"):
-            message = "psu_ids must be 'nested' or 'unique'"
+        if self.population_size is not None and self.sampling_fraction is not None:
+            message = "give the population size or the sampling fraction, not both"
+            problems.append(Problem(rule="bad-option", message=message))
+        if _is_number(self.population_size) and self.strata is not None:
+            message = "with strata the population size is one per stratum: give a column or a mapping, not one number"
+            problems.append(Problem(rule="bad-option", message=message, value=str(self.population_size)))
+        if _is_number(self.sampling_fraction) and not 0.0 < float(self.sampling_fraction) <= 1.0:  # type: ignore[arg-type]
+            message = "the sampling fraction must lie in (0, 1]"
+            problems.append(Problem(rule="bad-option", message=message, value=str(self.sampling_fraction)))
+        if self.psu_ids not in PSU_IDS:
+            message = "psu_ids must be 'within-stratum' or 'unique'"
             problems.append(Problem(rule="bad-option", message=message, value=str(self.psu_ids)))
         if self.single_psu == "collapse" and not self.collapse_with:
             message = "single-PSU policy 'collapse' needs partner strata (collapse_with)"
@@ -93,21 +108,34 @@ class SampleDesign:
     @property
     def columns(self) -> tuple[str, ...]:
         """The data columns the design reads."""
-        cols = [self.weight, self.strata, self.psu, self.fpc if isinstance(self.fpc, str) else None]
+        fpc = self._fpc
+        cols = [self.weight, self.strata, self.psu, fpc if isinstance(fpc, str) else None]
         return tuple(c for c in cols if c is not None)
 
-    def fpc_values(self, frame: pl.DataFrame) -> dict[str, float] | None:
-        """Stratum label -> N_h (or f_h) from the fpc column or mapping; the column must be constant within stratum."""
-        if self.fpc is None:
-            return None
-        if not isinstance(self.fpc, str):
-            return {str(k): float(v) for k, v in self.fpc.items()}
-        if self.fpc not in frame.columns:
-            problem = Problem(rule="missing-column", message="FPC column not found", column=self.fpc)
-            raise DataError("the data lack the FPC column", [problem])
+    @property
+    def has_fpc(self) -> bool:
+        """Whether a population size or sampling fraction is declared."""
+        return self._fpc is not None
+
+    @property
+    def _fpc(self) -> FpcInput:
+        return self.sampling_fraction if self.sampling_fraction is not None else self.population_size
+
+    def fpc_values(self, frame: pl.DataFrame) -> dict[str, float] | float | None:
+        """Stratum label -> N_h (or f_h, with `sampling_fraction`) from the column or mapping, or the one
+        number given; a column must be constant within stratum."""
+        fpc = self._fpc
+        if fpc is None or _is_number(fpc):
+            return None if fpc is None else float(fpc)  # type: ignore[arg-type]
+        if not isinstance(fpc, str):
+            return {str(k): float(v) for k, v in fpc.items()}
+        if fpc not in frame.columns:
+            what = "sampling-fraction" if self.sampling_fraction is not None else "population-size"
+            problem = Problem(rule="missing-column", message=f"{what} column not found", column=fpc)
+            raise DataError(f"the data lack the {what} column", [problem])
         stratum = pl.col(self.strata) if self.strata else pl.lit("all")
         per = (
-            frame.select(stratum.cast(pl.String).alias("s"), pl.col(self.fpc).cast(pl.Float64).alias("v"))
+            frame.select(stratum.cast(pl.String).alias("s"), pl.col(fpc).cast(pl.Float64).alias("v"))
             .group_by("s")
             .agg(pl.col("v").min().alias("lo"), pl.col("v").max().alias("hi"), pl.col("v").null_count().alias("nulls"))
             .sort("s")
@@ -119,8 +147,9 @@ class SampleDesign:
                 [
                     Problem(
                         rule="fpc-not-constant",
-                        message="the FPC must be given, and be the same, for every respondent of a stratum",
-                        column=self.fpc,
+                        message="the population size or sampling fraction must be given, and be the same, "
+                        "for every respondent of a stratum",
+                        column=fpc,
                         count=bad.height,
                         examples=tuple(bad["s"].head(5).to_list()),
                     )
@@ -128,12 +157,14 @@ class SampleDesign:
             )
         return dict(zip(per["s"].to_list(), per["lo"].to_list(), strict=True))
 
-    def layout(self, gt: GroupTotals, *, fpc_values: Mapping[str, float] | None = None) -> PsuLayout:
+    def layout(self, gt: GroupTotals, *, fpc_values: Mapping[str, float] | float | None = None) -> PsuLayout:
         """The PSU layout for variance: collapsed strata, sampling fractions f_h, single-PSU check."""
         psu_stratum, labels = gt.psu_stratum, gt.stratum_labels
         n_h = np.bincount(psu_stratum, minlength=len(labels))
-        population = _population_counts(labels, n_h, fpc_values, fpc_name=self.fpc)
-        if self.fpc is not None and population is None:
+        population = _population_counts(
+            labels, n_h, fpc_values, fpc_name=self._fpc, as_fraction=self.sampling_fraction is not None
+        )
+        if self.has_fpc and population is None:
             raise ValueError("the design has an FPC: pass fpc_values=design.fpc_values(frame)")
         if self.single_psu == "collapse":
             psu_stratum, labels, population = _collapse(psu_stratum, labels, population, self.collapse_with)
@@ -145,7 +176,7 @@ class SampleDesign:
                 [
                     Problem(
                         rule="single-psu",
-                        message="strata with one PSU; choose a single-PSU policy (certainty, centre, or collapse "
+                        message="strata with one PSU; choose a single-PSU policy (certainty, grand-mean, or collapse "
                         "with a partner stratum) or fix the design columns",
                         column=self.strata,
                         count=len(lone),
@@ -160,12 +191,19 @@ class SampleDesign:
         )
 
 
+def _is_number(value: object) -> bool:
+    return isinstance(value, int | float) and not isinstance(value, bool)
+
+
 def _population_counts(
-    labels: tuple[str, ...], n_h: np.ndarray, values: Mapping[str, float] | None, *, fpc_name: object
+    labels: tuple[str, ...], n_h: np.ndarray, values: Mapping[str, float] | float | None, *, fpc_name: object,
+    as_fraction: bool,
 ) -> np.ndarray | None:
-    """N_h per stratum from counts or fractions (a value <= 1 is f_h, so N_h = n_h / f_h)."""
+    """N_h per stratum from the declared population sizes, or from sampling fractions (N_h = n_h / f_h)."""
     if values is None:
         return None
+    if not isinstance(values, Mapping):
+        values = dict.fromkeys(labels, float(values))
     column = fpc_name if isinstance(fpc_name, str) else None
     missing = [s for s in labels if s not in values]
     problems = []
@@ -173,14 +211,14 @@ def _population_counts(
         problems.append(
             Problem(
                 rule="fpc-missing",
-                message="no FPC for these strata",
+                message="no population size or sampling fraction for these strata",
                 column=column,
                 count=len(missing),
                 examples=tuple(missing[:20]),
             )
         )
     pop = np.array([values.get(s, np.nan) for s in labels], dtype=np.float64)
-    as_count = np.where((pop > 0) & (pop <= 1), n_h / np.where(pop > 0, pop, 1.0), pop)
+    as_count = np.where(pop > 0, n_h / np.where(pop > 0, pop, 1.0), np.nan) if as_fraction else pop
     bad = [
         s for s, v, n in zip(labels, as_count, n_h, strict=True) if s not in missing and not (v >= n and np.isfinite(v))
     ]
@@ -188,7 +226,8 @@ def _population_counts(
         problems.append(
             Problem(
                 rule="fpc-too-small",
-                message="the FPC gives a population smaller than the number of sampled PSUs (or is 0 / negative)",
+                message="a sampling fraction outside (0, 1]" if as_fraction
+                else "a population size smaller than the number of sampled PSUs (or 0 / negative)",
                 column=column,
                 count=len(bad),
                 examples=tuple(bad[:20]),
@@ -262,11 +301,11 @@ class PsuLayout:
         sums = sum_by(h, z, self.n_strata)
         centre = sums / np.maximum(n_h, 1)[:, None]
         lone = n_h == 1
-        if self.single_psu == "centre" and lone.any():
+        if self.single_psu == "grand-mean" and lone.any():
             centre[lone] = z.mean(axis=0)
         with np.errstate(divide="ignore", invalid="ignore"):
             factor = (1.0 - self.fraction) * np.where(lone, 1.0, n_h / (n_h - 1))
-        if self.single_psu != "centre":
+        if self.single_psu != "grand-mean":
             factor = np.where(lone, 0.0, factor)
         dev = z - centre[h]
         dev[np.abs(dev) <= 1e-12 * (np.abs(z) + np.abs(centre[h]))] = 0.0  # rounding noise of equal PSU totals

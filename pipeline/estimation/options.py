@@ -2,7 +2,7 @@
 
 ```toml
 [variance]
-method = "taylor"      # "taylor" (default), "jk1", "jkn", "brr", "fay" or "bootstrap"
+method = "taylor"      # "taylor" (default), "jackknife", "stratified-jackknife", "brr", "fay" or "bootstrap"
 replicates = 500       # bootstrap only: number of replicates R
 seed = 20260301        # bootstrap only: random seed, so reruns reproduce
 fay = 0.5              # "fay" only: Fay's coefficient rho in (0, 1)
@@ -20,8 +20,9 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 from pipeline.errors import Problem
+from pipeline.renamed import renamed_value
 
-METHODS = ("taylor", "jk1", "jkn", "brr", "fay", "bootstrap")
+METHODS = ("taylor", "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap")
 KEYS = ("method", "replicates", "seed", "fay", "level")
 
 
@@ -47,7 +48,10 @@ def parse_variance(raw: Mapping[str, object]) -> tuple[VarianceOptions, list[Pro
         if key not in KEYS:
             bad(key, f"unknown key (known: {', '.join(KEYS)})", raw[key])
     method = raw.get("method", "taylor")
-    if method not in METHODS:
+    renamed = renamed_value("variance.method", method)
+    if renamed is not None:
+        problems.append(renamed)
+    elif method not in METHODS:
         bad("method", f"must be one of {', '.join(METHODS)}", method)
     replicates = raw.get("replicates")
     if replicates is not None and (isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 2):

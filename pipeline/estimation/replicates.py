@@ -11,9 +11,10 @@ is a_r(j) * f_r(c) and all replicate totals of all cells are matrix products on 
 Methods (Wolter 2007, Introduction to Variance Estimation, 2nd ed., chapters 3-5; journal,
 volume, page and equation numbers below are from memory; every multiplier is also checked by an
 identity or an expectation in tests/test_replicates.py):
-  jk1        delete one PSU, strata ignored: R = P, factor P/(P-1) on the other PSUs, 0 on the
+  jackknife  delete one PSU, strata ignored: R = P, factor P/(P-1) on the other PSUs, 0 on the
              deleted one; variance multiplier (P-1)/P (Wolter section 4.2, from memory).
-  jkn        stratified delete-one-PSU jackknife: R = P, factor n_h/(n_h-1) on the other PSUs of
+  stratified-jackknife
+             delete one PSU within its stratum: R = P, factor n_h/(n_h-1) on the other PSUs of
              the deleted PSU's stratum h, 1 elsewhere; multiplier (n_h-1)/n_h per replicate
              (Rust & Rao 1996, Stat. Methods Med. Res. 5:283-310, section 3; Wolter section 4.5).
   brr / fay  balanced repeated replication with exactly 2 PSUs per stratum: replicate r takes
@@ -29,7 +30,7 @@ identity or an expectation in tests/test_replicates.py):
              variance is then sum_h n_h/(n_h-1) sum_j (z_hj - zbar_h)^2, the with-replacement
              formula (multinomial moments; checked by simulation in the tests).
   supplied   replicate-weight columns shipped with the data, with their declared method and
-             scale (`supplied_factors`): successive-difference replication uses 4/R
+             multiplier (`supplied_factors`): successive-difference replication uses 4/R
              (Fay & Train 1995, Proc. ASA Section on Government Statistics 154-159; ACS PUMS
              User Guide section VII.B).
 
@@ -50,8 +51,9 @@ from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.hadamard import hadamard, order_at_least
 from pipeline.estimation.totals import GroupTotals, sum_by
 
-METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap")
-SUPPLIED_METHODS = ("jk1", "jkn", "brr", "fay", "bootstrap", "sdr")
+CENTRES = ("full-sample", "replicate-mean")  # what replicate deviations are taken from
+METHODS = ("jackknife", "stratified-jackknife", "brr", "fay", "bootstrap")
+SUPPLIED_METHODS = ("jackknife", "stratified-jackknife", "brr", "fay", "bootstrap", "sdr")
 DEFAULT_BOOTSTRAP_REPLICATES = 500  # common practice, no source
 MAX_FACTOR_BYTES = 2 * 2**30  # largest (R, P) factor matrix built
 SPARSE_SHARE = 0.1  # replay through the sparse correction when at most this share of factors differ from 1
@@ -63,28 +65,29 @@ DENSE_FILL = 1.5  # (PSU, class) layout product when P * C <= DENSE_FILL * G (be
 class ReplicateFactors:
     """Replicate r multiplies the base weight of every respondent in PSU j by factors[r, j].
 
-    The variance of an estimate theta is scale * sum_r rscales[r] * (theta_r - centre_r)^2,
-    where centre_r is the full-sample estimate ("full") or the mean of the replicates that share
-    replicate_stratum[r] ("mean"; one group for every method but the stratified jackknife).
+    The variance of an estimate theta is multiplier * sum_r multipliers[r] * (theta_r - centre_r)^2,
+    where centre_r is the full-sample estimate ("full-sample") or the mean of the replicates that
+    share replicate_stratum[r] ("replicate-mean"; one group for every method but the stratified
+    jackknife).
     For supplied replicate weights `factors` has no columns (shape (R, 0)): the replicate totals
     come from the weight columns themselves (`supplied_replicate_totals`).
     """
 
     factors: np.ndarray  # (R, P)
-    scale: float  # overall multiplier
-    rscales: np.ndarray  # (R,) per-replicate multipliers (ones when unused)
-    method: str  # "jk1" | "jkn" | "brr" | "fay" | "bootstrap" | "sdr"
-    centre: str = "full"  # "full": deviations around the full-sample estimate; "mean": around the replicate mean
+    multiplier: float  # overall variance multiplier
+    multipliers: np.ndarray  # (R,) per-replicate multipliers (ones when unused)
+    method: str  # "jackknife" | "stratified-jackknife" | "brr" | "fay" | "bootstrap" | "sdr"
+    centre: str = "full-sample"  # deviations around the full-sample estimate, or "replicate-mean"
     df: int | None = None  # degrees of freedom for intervals and tests (see replicate_variance.replicate_df)
-    replicate_stratum: np.ndarray | None = None  # (R,) group of each replicate for centre "mean"
+    replicate_stratum: np.ndarray | None = None  # (R,) group of each replicate for centre "replicate-mean"
     supplied: bool = False  # True: replicate weights read from the data
     notes: tuple[str, ...] = field(default_factory=tuple)  # methodology notes for the book
 
     def __post_init__(self) -> None:
-        if self.centre not in ("full", "mean"):
+        if self.centre not in CENTRES:
             raise SpecError(
                 "unknown replicate centre",
-                [Problem(rule="bad-option", message=f"centre must be 'full' or 'mean', not {self.centre!r}")],
+                [Problem(rule="bad-option", message=f"centre must be 'full-sample' or 'replicate-mean', not {self.centre!r}")],
             )
 
     @property
@@ -102,7 +105,7 @@ def make_replicates(
     seed: int | None = None,
     sampling_fraction: np.ndarray | None = None,
     stratum_labels: Sequence[str] | None = None,
-    centre: str = "full",
+    centre: str = "full-sample",
     single_psu: str = "error",
 ) -> ReplicateFactors:
     """PSU-level replicate factors for `method` (formulas in the module docstring).
@@ -113,9 +116,9 @@ def make_replicates(
     seed: bootstrap random seed (None = 0, so runs reproduce).
     sampling_fraction: (H,) first-stage sampling fraction per stratum, for the jackknife FPC.
     stratum_labels: names of the strata, used in error messages.
-    single_psu: strata with one PSU under "jkn" and "bootstrap": "error" (default) or "certainty"
-    (the lone PSU keeps factor 1 in every replicate, so the stratum adds no variance, as a PSU
-    selected with certainty; jkn makes no replicate for it). Collapsing strata is done by passing
+    single_psu: strata with one PSU under "stratified-jackknife" and "bootstrap": "error" (default)
+    or "certainty" (the lone PSU keeps factor 1 in every replicate, so the stratum adds no variance,
+    as a PSU selected with certainty; the stratified jackknife makes no replicate for it). Collapsing strata is done by passing
     the collapsed `psu_stratum`.
 
     Raises SpecError for an unknown method or bad option, DataError listing every stratum that the
@@ -133,13 +136,13 @@ def make_replicates(
             [Problem(rule="bad-option", message=f"need {n_strata} sampling fractions in [0, 1), one per stratum")],
         )
     _check_size(method, len(psu_stratum), replicates)
-    if method == "jk1":
+    if method == "jackknife":
         _require_psus(n_h.sum(keepdims=True), labels=("all strata",), at_least=2, method=method)
-        return _jk1(psu_stratum, f_h, centre=centre, n_strata=n_strata)
+        return _jackknife(psu_stratum, f_h, centre=centre, n_strata=n_strata)
     certainty = single_psu == "certainty"
-    if method == "jkn":
+    if method == "stratified-jackknife":
         _require_psus(n_h, labels=labels, at_least=1 if certainty else 2, method=method)
-        return _jkn(psu_stratum, n_h, f_h, centre=centre)
+        return _stratified_jackknife(psu_stratum, n_h, f_h, centre=centre)
     if method in ("brr", "fay"):
         _require_two(n_h, labels=labels)
         return _brr(psu_stratum, fay, f_h, centre=centre)
@@ -182,7 +185,7 @@ def _check_options(method: str, *, fay: float, replicates: int | None, single_ps
 
 def _check_size(method: str, n_psus: int, replicates: int | None) -> None:
     """Refuse factor matrices above MAX_FACTOR_BYTES (a jackknife over respondent-level PSUs)."""
-    n_rep = {"jk1": n_psus, "jkn": n_psus, "bootstrap": replicates or DEFAULT_BOOTSTRAP_REPLICATES}.get(method, 0)
+    n_rep = {"jackknife": n_psus, "stratified-jackknife": n_psus, "bootstrap": replicates or DEFAULT_BOOTSTRAP_REPLICATES}.get(method, 0)
     if n_rep * n_psus * 8 > MAX_FACTOR_BYTES:
         raise DataError(
             f"too many PSUs for the '{method}' replicates",
@@ -224,7 +227,7 @@ def _require_two(n_h: np.ndarray, *, labels: Sequence[str]) -> None:
                     rule="brr-needs-two-psus",
                     message=f"{len(bad)} strata do not have exactly 2 PSUs (they have "
                     + ", ".join(f"{labels[h]}: {n_h[h]}" for h in bad[:5])
-                    + "); use the stratified jackknife ('jkn') or the bootstrap instead",
+                    + "); use the stratified jackknife ('stratified-jackknife') or the bootstrap instead",
                     count=len(bad),
                     examples=tuple(str(labels[h]) for h in bad[:5]),
                 )
@@ -238,17 +241,17 @@ def _fpc_note(method: str, f_h: np.ndarray) -> tuple[str, ...]:
     return ()
 
 
-def _jk1(psu_stratum: np.ndarray, f_h: np.ndarray, *, centre: str, n_strata: int) -> ReplicateFactors:
+def _jackknife(psu_stratum: np.ndarray, f_h: np.ndarray, *, centre: str, n_strata: int) -> ReplicateFactors:
     """Delete-one-PSU jackknife ignoring strata (Wolter 2007 section 4.2, from memory)."""
     p = len(psu_stratum)
     factors = np.full((p, p), p / (p - 1))
     np.fill_diagonal(factors, 0.0)
-    notes = ("JK1 treats all PSUs as one stratum.",) if n_strata > 1 else ()
+    notes = ("The unstratified jackknife treats all PSUs as one stratum.",) if n_strata > 1 else ()
     return ReplicateFactors(
         factors=factors,
-        scale=(p - 1) / p,
-        rscales=1.0 - f_h[psu_stratum],
-        method="jk1",
+        multiplier=(p - 1) / p,
+        multipliers=1.0 - f_h[psu_stratum],
+        method="jackknife",
         centre=centre,
         df=p - 1,
         replicate_stratum=np.zeros(p, dtype=np.int64),
@@ -256,7 +259,7 @@ def _jk1(psu_stratum: np.ndarray, f_h: np.ndarray, *, centre: str, n_strata: int
     )
 
 
-def _jkn(psu_stratum: np.ndarray, n_h: np.ndarray, f_h: np.ndarray, *, centre: str) -> ReplicateFactors:
+def _stratified_jackknife(psu_stratum: np.ndarray, n_h: np.ndarray, f_h: np.ndarray, *, centre: str) -> ReplicateFactors:
     """Stratified delete-one-PSU jackknife (Rust & Rao 1996 section 3; Wolter 2007 section 4.5).
 
     One replicate per PSU of every stratum with at least 2 PSUs (lone PSUs: certainty, factor 1).
@@ -273,9 +276,9 @@ def _jkn(psu_stratum: np.ndarray, n_h: np.ndarray, f_h: np.ndarray, *, centre: s
     lone = int((n_h == 1).sum())
     return ReplicateFactors(
         factors=factors,
-        scale=1.0,
-        rscales=(nr - 1) / nr * (1.0 - f_h[h]),
-        method="jkn",
+        multiplier=1.0,
+        multipliers=(nr - 1) / nr * (1.0 - f_h[h]),
+        method="stratified-jackknife",
         centre=centre,
         df=int(n_h[sampled].sum() - sampled.sum()),
         replicate_stratum=h.copy(),
@@ -299,8 +302,8 @@ def _brr(psu_stratum: np.ndarray, rho: float, f_h: np.ndarray, *, centre: str) -
     factors = 1.0 + (1.0 - rho) * alpha[:, psu_stratum] * sign[None, :]
     return ReplicateFactors(
         factors=factors,
-        scale=1.0 / (r * (1.0 - rho) ** 2),
-        rscales=np.ones(r),
+        multiplier=1.0 / (r * (1.0 - rho) ** 2),
+        multipliers=np.ones(r),
         method="fay" if rho > 0 else "brr",
         centre=centre,
         df=n_strata,
@@ -336,8 +339,8 @@ def _bootstrap(
         notes += (f"{int(lone.sum())} single-PSU strata treated as certainty (no variance contribution).",)
     return ReplicateFactors(
         factors=factors,
-        scale=1.0 / replicates,
-        rscales=np.ones(replicates),
+        multiplier=1.0 / replicates,
+        multipliers=np.ones(replicates),
         method="bootstrap",
         centre=centre,
         df=int(n_h[sampled].sum() - sampled.sum()),
@@ -351,16 +354,17 @@ def supplied_factors(
     replicates: int,
     *,
     fay: float = 0.0,
-    scale: float | None = None,
-    rscales: np.ndarray | None = None,
-    centre: str = "full",
+    multiplier: float | None = None,
+    multipliers: np.ndarray | None = None,
+    centre: str = "full-sample",
     df: int | None = None,
 ) -> ReplicateFactors:
     """The variance recipe of replicate-weight columns shipped with the data.
 
-    Default multipliers when `scale` is not declared: sdr 4/R (Fay & Train 1995; ACS PUMS User
-    Guide VII.B), jk1 (R-1)/R, brr 1/R, fay 1/(R (1-rho)^2), bootstrap 1/R; jkn needs the declared
-    per-replicate `rscales` ((n_h-1)/n_h of each replicate's stratum). df: declared, else R - 1
+    Default multipliers when `multiplier` is not declared: sdr 4/R (Fay & Train 1995; ACS PUMS User
+    Guide VII.B), jackknife (R-1)/R, brr 1/R, fay 1/(R (1-rho)^2), bootstrap 1/R;
+    stratified-jackknife needs the declared per-replicate `multipliers` ((n_h-1)/n_h of each
+    replicate's stratum). df: declared, else R - 1
     (common practice, no source).
     """
     problems = []
@@ -373,30 +377,30 @@ def supplied_factors(
         )
     if replicates < 2:
         problems.append(Problem(rule="bad-option", message=f"at least 2 replicate-weight columns are needed, not {replicates}"))
-    if method == "jkn" and rscales is None:
+    if method == "stratified-jackknife" and multipliers is None:
         problems.append(
-            Problem(rule="bad-option", message="supplied 'jkn' replicate weights need their per-replicate multipliers")
+            Problem(rule="bad-option", message="supplied 'stratified-jackknife' replicate weights need their per-replicate multipliers")
         )
     if not 0.0 <= fay < 1.0:
         problems.append(Problem(rule="bad-option", message=f"Fay's coefficient must be in [0, 1), not {fay}"))
-    if rscales is not None and np.shape(rscales) != (replicates,):
+    if multipliers is not None and np.shape(multipliers) != (replicates,):
         problems.append(
-            Problem(rule="bad-option", message=f"{np.size(rscales)} per-replicate multipliers for {replicates} replicates")
+            Problem(rule="bad-option", message=f"{np.size(multipliers)} per-replicate multipliers for {replicates} replicates")
         )
     if problems:
         raise SpecError("the supplied replicate-weight options are invalid", problems)
     defaults = {
         "sdr": 4.0 / replicates,
-        "jk1": (replicates - 1) / replicates,
-        "jkn": 1.0,
+        "jackknife": (replicates - 1) / replicates,
+        "stratified-jackknife": 1.0,
         "brr": 1.0 / replicates,
         "fay": 1.0 / (replicates * (1.0 - fay) ** 2),
         "bootstrap": 1.0 / replicates,
     }
     return ReplicateFactors(
         factors=np.empty((replicates, 0)),
-        scale=defaults[method] if scale is None else float(scale),
-        rscales=np.ones(replicates) if rscales is None else np.asarray(rscales, dtype=np.float64),
+        multiplier=defaults[method] if multiplier is None else float(multiplier),
+        multipliers=np.ones(replicates) if multipliers is None else np.asarray(multipliers, dtype=np.float64),
         method=method,
         centre=centre,
         df=replicates - 1 if df is None else df,

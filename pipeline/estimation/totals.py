@@ -142,12 +142,12 @@ def group_totals(
     strata: str | None,
     psu: str | None,
     classes: str | None = None,
-    psu_ids: str = "nested",
+    psu_ids: str = "within-stratum",
 ) -> GroupTotals:
     """The one grouped pass: Y[g, k] = sum_{i in g} w_i y_ik and the unweighted counts (module docstring).
 
     strata None: one stratum; psu None: every respondent is its own PSU (single-stage design).
-    psu_ids "nested": PSU ids restart within each stratum (a PSU is the pair (stratum, id));
+    psu_ids "within-stratum": PSU ids restart within each stratum (a PSU is the pair (stratum, id));
     "unique": ids are unique across strata, and an id found in two strata is an error.
     classes: a column of weighting-class indices (integers 0..C-1, used as they are, so they line
     up with the weighting recipe's classes) or of labels (indexed in sorted order).
@@ -158,8 +158,8 @@ def group_totals(
     values, negative or non-finite weights, PSU ids repeated across strata under "unique", and
     quantities that evaluate to null or NaN.
     """
-    if psu_ids not in ("nested", "unique"):
-        raise ValueError(f"psu_ids must be 'nested' or 'unique', not {psu_ids!r}")
+    if psu_ids not in ("within-stratum", "unique"):
+        raise ValueError(f"psu_ids must be 'within-stratum' or 'unique', not {psu_ids!r}")
     problems = [
         Problem(rule="missing-column", message=f"the design names column '{col}', which is not in the data", column=col)
         for col in (weight, strata, psu, classes)
@@ -693,8 +693,8 @@ def _check_unique_psus(key: _GroupKey, *, psu: str) -> None:
                 Problem(
                     rule="psu-in-several-strata",
                     message="these PSU ids appear in more than one stratum although PSU ids were declared unique "
-                    "across strata; if ids restart within each stratum declare them nested "
-                    '(psu_ids = "nested" in the spec, --psu-ids nested on the command line)',
+                    "across strata; if ids restart within each stratum declare so "
+                    '(psu_ids = "within-stratum" in the spec, --psu-ids within-stratum on the command line)',
                     column=psu,
                     count=shared.height,
                     examples=tuple(str(v) for v in shared["id"].sort().head(5).to_list()),

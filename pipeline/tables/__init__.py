@@ -22,7 +22,7 @@ from pipeline.errors import SpecError
 from pipeline.estimation.api import FPC_REPLICATE_METHODS
 from pipeline.estimation.design import SampleDesign
 from pipeline.estimation.options import VarianceOptions
-from pipeline.spec import Study
+from pipeline.staging.spec import Study
 from pipeline.tables.banners import Banner, build_banner
 from pipeline.tables.cells import WavePlan, cell_frame, plan_wave
 from pipeline.tables.fit import DesignInputs, FitState, fit_wave
@@ -82,9 +82,8 @@ def tables_spec(study: Study) -> TablesSpec | None:
     return spec
 
 
-def _fpc(study: Study) -> dict[str, float] | None:
-    source = study.design.population or study.design.sampling_fraction
-    return {str(k): float(v) for k, v in source.items()} if source else None
+def _by_stratum(values: dict) -> dict[str, float] | None:
+    return {str(k): float(v) for k, v in values.items()} if values else None
 
 
 def design_inputs(study: Study, recipe: FittedRecipe, options: VarianceOptions) -> DesignInputs:
@@ -93,12 +92,12 @@ def design_inputs(study: Study, recipe: FittedRecipe, options: VarianceOptions) 
     calibration = recipe.calibration_matrix()
     return DesignInputs(
         design=SampleDesign(
-            weight=_WEIGHT, strata=design.strata, psu=design.psu, psu_ids=design.psu_ids, fpc=_fpc(study),
+            weight=_WEIGHT, strata=design.strata, psu=design.psu, psu_ids=design.psu_ids,
+            population_size=_by_stratum(design.population), sampling_fraction=_by_stratum(design.sampling_fraction),
             single_psu=design.single_psu, collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
             second_stage_fraction=design.second_stage_fraction,
         ),
         options=options,
-        fpc_values=_fpc(study),
         classes=_CLASS,
         reweight=recipe.replay,
         calibration_matrix=None if calibration.shape[1] == 0 else calibration,

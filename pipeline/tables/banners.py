@@ -17,7 +17,7 @@ from dataclasses import dataclass
 
 import polars as pl
 
-from pipeline.spec import Study, Variable
+from pipeline.staging.spec import Study, Variable
 from pipeline.tables.spec import BannerSpec
 
 TOTAL = "Total"

@@ -32,7 +32,7 @@ import polars as pl
 
 from pipeline.estimation import api
 from pipeline.estimation.intervals import korn_graubard_interval, t_interval
-from pipeline.spec import Study
+from pipeline.staging.spec import Study
 from pipeline.tables.banners import Banner, Column
 from pipeline.tables.fit import Plan
 from pipeline.tables.spec import TablesSpec
@@ -161,7 +161,7 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
             for order, row_cells in pairs_of_row.items():
                 kind, y, base = kinds[order]
                 _cross_pairs(wp, name, order, kind, y, base, bases[_key(base)], value, row_cells)
-        if variable.type in ("single", "scale"):
+        if variable.type in ("single", "rating"):
             _joint_cells(wp, name, banner, columns, exprs, cell_index, study)
     return wp
 

@@ -76,7 +76,6 @@ class DesignInputs:
 
     design: SampleDesign
     options: VarianceOptions
-    fpc_values: Mapping[str, float] | None
     classes: str | None = None
     reweight: Callable[[np.ndarray], np.ndarray] | None = None
     calibration_matrix: np.ndarray | None = None
@@ -207,7 +206,7 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
     ratios = api._ratios(plan, gt)  # type: ignore[arg-type]
     t = final.totals.sum(axis=0)
     theta = ratios.value(t)
-    layout = design.layout(gt, fpc_values=inputs.fpc_values)
+    layout = design.layout(gt, fpc_values=design.fpc_values(frame))
     calibration = None
     if inputs.calibration_matrix is not None:
         calibration = Calibration(np.asarray(inputs.calibration_matrix, dtype=np.float64),

@@ -30,7 +30,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from pipeline.errors import Problem
-from pipeline.spec import Study
+from pipeline.staging.spec import Study
 
 TABLES_KEYS = ("banner", "significance", "low_base", "suppress_below", "adjust", "reference_wave", "sets")
 BANNER_KEYS = ("name", "columns", "label")

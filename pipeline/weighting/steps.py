@@ -22,16 +22,36 @@ merges small categories before the step (see pipeline.weighting.margins).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from pipeline.errors import Problem, SpecError
 from pipeline.weighting.margins import Collapse
 from pipeline.weighting.targets import TargetTable, inline_targets, read_targets_csv, split_margin
 
-if TYPE_CHECKING:
-    from pipeline.spec import Study
+
+@dataclass(frozen=True)
+class StepContext:
+    """The plain facts about a study that the steps are checked against (built by the spec).
+
+    folder: where targets files are resolved; source: the spec file, named in messages;
+    variable_types: codebook variable name -> type; coded: the variables a margin, cell or class
+    may use (single-choice and rating variables, and the strata column); codes: variable -> its
+    codebook codes as text, in order (the order margins and collapsing follow).
+    The steps never read the spec itself, so the weighting package does not import it.
+    """
+
+    folder: Path
+    source: str
+    variable_types: Mapping[str, str] = field(default_factory=dict)
+    coded: frozenset[str] = frozenset()
+    codes: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
+
+    def code_order(self, variables: set[str]) -> dict[str, list[str]]:
+        """Codebook code order (as text) of those of `variables` that have codes."""
+        return {name: list(self.codes[name]) for name in variables if name in self.codes}
 
 
 @dataclass(frozen=True)
@@ -166,12 +186,6 @@ class _Reader:
         return str(value)
 
 
-def _known_codes(study: Study) -> set[str]:
-    return {name for name, v in study.variables.items() if v.type in ("single", "scale")} | (
-        {study.design.strata} if study.design.strata else set()
-    )
-
-
 def _variables(r: _Reader, key: str, value: object, known: set[str]) -> tuple[str, ...]:
     names = split_margin(value) if isinstance(value, str) else value
     if not isinstance(names, (list, tuple)) or not names or not all(isinstance(n, str) for n in names):
@@ -179,7 +193,7 @@ def _variables(r: _Reader, key: str, value: object, known: set[str]) -> tuple[st
         return ()
     for n in names:
         if n not in known:
-            r.bad(key, f"'{n}' is not a single-choice or scale variable of the codebook (nor the strata column)")
+            r.bad(key, f"'{n}' is not a single-choice or rating variable of the codebook (nor the strata column)")
     return tuple(names)
 
 
@@ -230,7 +244,7 @@ def _collapse(r: _Reader, known: set[str]) -> Collapse | None:
     order: dict[str, tuple[tuple[str, ...], ...] | str] = {}
     for var, rule in dict(value.get("order", {})).items():
         if var not in known:
-            r.bad(f"collapse.order.{var}", "is not a single-choice or scale variable of the codebook")
+            r.bad(f"collapse.order.{var}", "is not a single-choice or rating variable of the codebook")
         if rule == "adjacent":
             order[var] = "adjacent"
         elif isinstance(rule, list) and all(isinstance(g, list) and len(g) >= 2 for g in rule):
@@ -240,7 +254,7 @@ def _collapse(r: _Reader, known: set[str]) -> Collapse | None:
     return Collapse(min_count, order)
 
 
-def _parse_one(i: int, raw: object, study: Study, problems: list[Problem]) -> Step | None:
+def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem]) -> Step | None:
     where = f"weighting[{i}]"
     if not isinstance(raw, dict):
         problems.append(Problem("spec-weighting", f"{where}: each [[weighting]] entry must be a table"))
@@ -252,11 +266,11 @@ def _parse_one(i: int, raw: object, study: Study, problems: list[Problem]) -> St
     r = _Reader(raw, where, problems)
     for key in sorted(set(raw) - _KEYS[kind]):
         r.bad(key, f"unknown key for step '{kind}'; allowed: {', '.join(sorted(_KEYS[kind] - {'step'}))}")
-    known = _known_codes(study)
-    folder = study.path.parent
+    known = set(context.coded)
+    folder = context.folder
     if kind == "nonresponse":
         status = raw.get("status")
-        if not isinstance(status, str) or status not in study.variables:
+        if not isinstance(status, str) or status not in context.variable_types:
             r.bad("status", f"must name a codebook variable holding the response status, got {status!r}")
         classes = _variables(r, "classes", raw["classes"], known) if "classes" in raw else ()
         responded, nonresp = r.codes("responded", required=True), r.codes("nonrespondent", required=True)
@@ -308,7 +322,7 @@ def _parse_one(i: int, raw: object, study: Study, problems: list[Problem]) -> St
         r.bad("numeric", "must be a table variable = population total")
         numeric = {}
     for var, tot in numeric.items():
-        if var not in study.variables or study.variables[var].type != "numeric":
+        if context.variable_types.get(var) != "numeric":
             r.bad(f"numeric.{var}", "is not a numeric variable of the codebook")
         if isinstance(tot, bool) or not isinstance(tot, (int, float)):
             r.bad(f"numeric.{var}", f"must be a population total (a number), got {tot!r}")
@@ -321,21 +335,14 @@ def _parse_one(i: int, raw: object, study: Study, problems: list[Problem]) -> St
     )
 
 
-def parse_steps(raw: tuple[dict, ...], study: Study) -> list[Step]:
-    """Parse the raw `[[weighting]]` tables of `study`; every problem is collected into one SpecError.
+def parse_steps(raw: tuple[dict, ...], context: StepContext) -> list[Step]:
+    """Parse the raw `[[weighting]]` tables against the study's `context`; every problem is collected into one SpecError.
 
     Problems name the key, e.g. `weighting[2].margins[0]`. Targets files are read here (paths relative
-    to the spec's folder) so their problems are reported with the spec's.
+    to `context.folder`, the spec's folder) so their problems are reported with the spec's.
     """
     problems: list[Problem] = []
-    steps = [_parse_one(i, item, study, problems) for i, item in enumerate(raw)]
+    steps = [_parse_one(i, item, context, problems) for i, item in enumerate(raw)]
     if problems:
-        raise SpecError(f"{study.path}: the [[weighting]] steps have {len(problems)} problem(s)", problems)
+        raise SpecError(f"{context.source}: the [[weighting]] steps have {len(problems)} problem(s)", problems)
     return [s for s in steps if s is not None]
-
-
-def code_order(study: Study | None, variables: set[str]) -> dict[str, list[str]]:
-    """Codebook code order (as text) of `variables` (`Variable.valid_codes`); empty without a study."""
-    if study is None:
-        return {}
-    return {name: [str(c) for c in study.variables[name].valid_codes] for name in variables if name in study.variables}

@@ -18,12 +18,12 @@ from pipeline.sqlfiles import sql
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
 from pipeline.weighting.recipe import FittedRecipe, fit_recipe, largest
-from pipeline.weighting.steps import code_order, parse_steps
+from pipeline.weighting.steps import parse_steps
 
 if TYPE_CHECKING:
     import duckdb
 
-    from pipeline.spec import Study
+    from pipeline.staging.spec import Study
 
 TABLES = ("weights", "weighting_steps", "weighting_margins", "weighting_largest", "weighting_response", "weighting_notes")
 ID = "respondent_id"
@@ -40,12 +40,13 @@ def build_report(recipe: FittedRecipe, *, wave: str, n_input: int) -> WeightingR
 
 def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> tuple[FittedRecipe, WeightingReport]:
     """Fit the study's weighting on one staged wave (nothing written); the recipe and its report."""
-    from pipeline.database import load_responses
+    from pipeline.staging.database import load_responses
 
-    steps = parse_steps(study.weighting, study)
+    context = study.step_context()
+    steps = parse_steps(study.weighting, context)
     data = load_responses(con, study, [wave_id])
     base, _ = design_base_weights(data, study, id_column=ID)
-    recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=code_order(study, set(study.variables)))
+    recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=context.code_order(set(study.variables)))
     return recipe, build_report(recipe, wave=wave_id, n_input=data.height)
 
 

@@ -3,7 +3,7 @@
 Each column's values are profiled in one SQL pass (sql/draft_profile.sql) and the column is
 drafted as: an item of a multi-response set (0/1 columns sharing a name prefix such as
 aware_kestrel, aware_lumen), a single-choice variable (at most MAX_SINGLE_CODES distinct whole
-numbers or short texts; SPSS value labels become its labels), or numeric (other numbers).
+numbers or short texts), or numeric (other numbers).
 Free-text columns are listed in a closing comment and left out. The draft is valid for
 `load_spec`; comments marked REVIEW say what a person must check.
 """
@@ -21,8 +21,8 @@ from pathlib import Path
 import duckdb
 
 from pipeline.errors import DataError, Problem
-from pipeline.readers import file_format, read_raw, read_sav
 from pipeline.sqlfiles import sql
+from pipeline.staging.readers import read_raw
 
 MAX_SINGLE_CODES = 20  # a column with more distinct values is drafted as numeric (or left out if text)
 _RAW = "__wavebook_draft"
@@ -79,12 +79,7 @@ def draft_spec(data_path: str | Path, *, spec_path: str | Path | None = None, id
         respondent_id = _pick_id(con, data, columns, id_column)
     finally:
         con.close()
-    column_labels: dict[str, str] = {}
-    value_labels: dict[str, dict[object, str]] = {}
-    if file_format(data) == "sav":
-        meta = read_sav(data)[1]
-        column_labels, value_labels = meta.column_labels, meta.value_labels
-    return _Writer(data, folder, columns, profiles, respondent_id, column_labels, value_labels).text()
+    return _Writer(data, folder, columns, profiles, respondent_id).text()
 
 
 def _profiles(con: duckdb.DuckDBPyConnection, columns: list[str]) -> dict[str, _Profile]:
@@ -129,16 +124,12 @@ class _Writer:
         columns: list[str],
         profiles: dict[str, _Profile],
         respondent_id: str,
-        column_labels: dict[str, str],
-        value_labels: dict[str, dict[object, str]],
     ) -> None:
         self.data = data
         self.folder = folder
         self.columns = columns
         self.profiles = profiles
         self.respondent_id = respondent_id
-        self.column_labels = column_labels
-        self.value_labels = value_labels
 
     def text(self) -> str:
         lines = self.header() + self.design()
@@ -202,10 +193,10 @@ class _Writer:
             'kind = "probability"   # REVIEW: "nonprobability" for a quota sample or an online panel',
             '# strata = "stratum_column"   # REVIEW: the stratum column, if the sample was stratified',
             '# psu = "cluster_column"      # REVIEW: the first-stage unit (cluster), if clustered',
-            '# psu_ids = "nested"           # or "unique" when PSU ids do not restart within strata',
+            '# psu_ids = "within-stratum"   # or "unique" when PSU ids do not restart within strata',
             f"# base_weight = {toml_string(weight)}   # REVIEW: a design weight column, or:",
             f"# selection_probability = {toml_string(probability)}",
-            '# single_psu = "error"         # strata with one PSU: "error", "certainty", "centre" or "collapse"',
+            '# single_psu = "error"         # strata with one PSU: "error", "certainty", "grand-mean" or "collapse"',
             "# (if a design column is drafted below as a variable, you may keep or delete that variable)",
         ]
 
@@ -234,18 +225,16 @@ class _Writer:
             f"[variables.{toml_key(name)}.items]   # REVIEW: item labels",
         ]
         prefix = len(name) + 1 if all(i.startswith(name + "_") for i in items) else 0
-        lines += [f"{toml_key(i)} = {toml_string(self.column_labels.get(i, i[prefix:]))}" for i in items]
+        lines += [f"{toml_key(i)} = {toml_string(i[prefix:])}" for i in items]
         return lines
 
     def variable(self, column: str) -> list[str] | None:
         profile = self.profiles.get(column)
-        labels = self.value_labels.get(column, {})
-        label = self.column_labels.get(column, column)
-        head = ["", f"[variables.{toml_key(column)}]", f"label = {toml_string(label)}   # REVIEW: the question text"]
+        head = ["", f"[variables.{toml_key(column)}]", f"label = {toml_string(column)}   # REVIEW: the question text"]
         if profile is None:
             return None
         if profile.codes is not None and (profile.whole_numbers or profile.non_numbers > 0):
-            return head + self.single(profile, labels)
+            return head + self.single(profile)
         if profile.non_numbers == 0:
             return head + [
                 'type = "numeric"',
@@ -255,28 +244,14 @@ class _Writer:
             ]
         return None
 
-    def single(self, profile: _Profile, labels: dict[object, str]) -> list[str]:
-        named = {_code_key(k): v for k, v in labels.items()}
-        seen = list(profile.codes or ())
-        codes = list(dict.fromkeys([*named, *seen]))
-        if all(re.match(r"^-?[0-9]+$", c) for c in codes):
-            codes.sort(key=int)
-        else:
-            codes.sort()
-        note = "REVIEW: label each code" if any(c not in named for c in codes) else "labels from the SPSS file"
-        pairs = ", ".join(f"{toml_key(c)} = {toml_string(named.get(c, c))}" for c in codes)
+    def single(self, profile: _Profile) -> list[str]:
+        codes = list(profile.codes or ())
+        pairs = ", ".join(f"{toml_key(c)} = {toml_string(c)}" for c in codes)
         return [
-            f'type = "single"   # {len(seen)} codes seen; REVIEW: "scale" for a rating scale '
-            "(then add exclude_from_mean and nets)",
-            f"values = {{ {pairs} }}   # {note}",
+            f'type = "single"   # {len(codes)} codes seen; REVIEW: "rating" for a rating scale '
+            "(then add exclude_from_statistics and nets)",
+            f"values = {{ {pairs} }}   # REVIEW: label each code",
         ]
-
-
-def _code_key(code: object) -> str:
-    """An SPSS value-label key (1.0, 'A') as code text ('1', 'A')."""
-    if isinstance(code, float) and code.is_integer():
-        return str(int(code))
-    return str(code)
 
 
 def _number(x: float | None) -> str:

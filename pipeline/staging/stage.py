@@ -1,7 +1,7 @@
 """Stage a wave: read its raw file, check it, and replace the wave in the study database atomically.
 
-`stage_wave` reads the file into a temp table of text (pipeline.readers), runs every check
-(pipeline.checks) and, only when no check fails, writes the wave in ONE transaction: add the
+`stage_wave` reads the file into a temp table of text (pipeline.staging.readers), runs every check
+(pipeline.staging.checks) and, only when no check fails, writes the wave in ONE transaction: add the
 columns the spec gained, delete the wave's old rows, insert the typed rows, record the wave in
 `waves` and its warnings in `problems`. Any failure rolls the transaction back, so the database
 is exactly as it was. Staging one wave never touches another wave's rows.
@@ -17,8 +17,11 @@ from pathlib import Path
 
 import duckdb
 
-from pipeline.checks import run_checks
-from pipeline.database import (
+from pipeline.errors import DataError, Problem
+from pipeline.progress import step
+from pipeline.sqlfiles import sql
+from pipeline.staging.checks import run_checks
+from pipeline.staging.database import (
     add_new_columns,
     column_types,
     connect,
@@ -27,11 +30,8 @@ from pipeline.database import (
     staged_waves,
     table_columns,
 )
-from pipeline.errors import DataError, Problem
-from pipeline.progress import step
-from pipeline.readers import prepare_connection, read_raw
-from pipeline.spec import Study, Wave
-from pipeline.sqlfiles import sql
+from pipeline.staging.readers import prepare_connection, read_raw
+from pipeline.staging.spec import Study, Wave
 
 RAW_TABLE = "__wavebook_raw"
 

@@ -2,7 +2,8 @@
 
 `load_spec(path)` reads and validates the file and returns a `Study`. Validation collects every
 problem (unknown keys, wrong types, references to undeclared variables) into one `SpecError`,
-each problem naming the key (e.g. `variables.satisfaction.exclude_from_mean`).
+each problem naming the key (e.g. `variables.satisfaction.exclude_from_statistics`). A key or value
+with a retired name is refused naming its replacement (`pipeline.renamed`).
 
 This module defines the objects every later stage reads; sections owned by later stages
 (`[[weighting]]`, `[variance]`) are parsed by those stages' own modules and kept here as raw
@@ -16,12 +17,16 @@ import re
 import tomllib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 from pipeline.errors import Problem, SpecError
+from pipeline.renamed import renamed_key, renamed_value
+
+if TYPE_CHECKING:
+    from pipeline.weighting.steps import StepContext
 
 Code = int | str
-VariableType = Literal["single", "multi", "numeric", "scale"]
+VariableType = Literal["single", "multi", "numeric", "rating"]
 
 
 @dataclass(frozen=True)
@@ -42,12 +47,12 @@ class Design:
     kind: "probability" (strata/PSU/weights known) or "nonprobability" (quota or online panel:
     equal base weights; the book carries the non-probability caution).
     strata, psu: column names (None = unstratified / each respondent is its own PSU).
-    psu_ids: "nested" (PSU ids restart within each stratum) or "unique" (unique across strata).
+    psu_ids: "within-stratum" (PSU ids restart within each stratum) or "unique" (unique across strata).
     base_weight / selection_probability: at most one column name; base weight = 1 / probability.
     population: first-stage population size per stratum code (PSUs in the stratum; respondents
     in a single-stage design), for the finite population correction.
     sampling_fraction: alternatively, the first-stage sampling fraction per stratum code.
-    single_psu: policy for strata with one PSU: "error", "certainty", "centre" or "collapse".
+    single_psu: policy for strata with one PSU: "error", "certainty", "grand-mean" or "collapse".
     collapse_with: for "collapse", stratum code -> partner stratum code.
     second_stage_fraction: with PSUs and a finite population correction, the share of each selected
     PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
@@ -59,12 +64,12 @@ class Design:
     kind: Literal["probability", "nonprobability"] = "probability"
     strata: str | None = None
     psu: str | None = None
-    psu_ids: Literal["nested", "unique"] = "nested"
+    psu_ids: Literal["within-stratum", "unique"] = "within-stratum"
     base_weight: str | None = None
     selection_probability: str | None = None
     population: dict[Code, float] = field(default_factory=dict)
     sampling_fraction: dict[Code, float] = field(default_factory=dict)
-    single_psu: Literal["error", "certainty", "centre", "collapse"] = "error"
+    single_psu: Literal["error", "certainty", "grand-mean", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
     same_psus_across_waves: bool = False
@@ -85,9 +90,10 @@ class Variable:
     type "multi": a multiple-response set; `items` maps each item column to its label, an item
     column holds 1 (selected) or 0 (not selected); missing means not asked.
     type "numeric": a number; optional `minimum` / `maximum` bounds are checked at staging.
-    type "scale": a rating scale; `values` labels the codes, `exclude_from_mean` lists codes such
-    as "don't know" that are shown in distributions but excluded from means.
-    nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "scale".
+    type "rating": a rating scale; `values` labels the codes, `exclude_from_statistics` lists codes
+    such as "don't know" that are shown in distributions but left out of the mean, median, minimum,
+    maximum and number of answers.
+    nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "rating".
     """
 
     name: str
@@ -96,7 +102,7 @@ class Variable:
     values: dict[Code, str] = field(default_factory=dict)
     items: dict[str, str] = field(default_factory=dict)
     nets: dict[str, tuple[Code, ...]] = field(default_factory=dict)
-    exclude_from_mean: tuple[Code, ...] = ()
+    exclude_from_statistics: tuple[Code, ...] = ()
     minimum: float | None = None
     maximum: float | None = None
 
@@ -107,22 +113,22 @@ class Variable:
 
     @property
     def int_coded(self) -> bool:
-        """Whether the codes are integers (every key of `values` an integer literal; always for a scale)."""
-        return self.type in ("single", "scale") and all(isinstance(c, int) for c in self.values)
+        """Whether the codes are integers (every key of `values` an integer literal; always for a rating)."""
+        return self.type in ("single", "rating") and all(isinstance(c, int) for c in self.values)
 
     @property
     def valid_codes(self) -> tuple[Code, ...]:
         """The codes a response may hold, in order.
 
-        single: the labelled codes. scale: the labelled codes plus every integer between the
-        lowest and the highest labelled code that is not excluded from the mean (so 1..9 need
-        no label on a 0-10 scale). Other types have no codes.
+        single: the labelled codes. rating: the labelled codes plus every integer between the
+        lowest and the highest labelled code that is not excluded from the statistics (so 1..9
+        need no label on a 0-10 scale). Other types have no codes.
         """
         if self.type == "single":
             return tuple(self.values)
-        if self.type != "scale" or not self.values:
+        if self.type != "rating" or not self.values:
             return ()
-        on_scale = [c for c in self.values if c not in self.exclude_from_mean]
+        on_scale = [c for c in self.values if c not in self.exclude_from_statistics]
         filled = set(range(min(on_scale), max(on_scale) + 1)) if on_scale else set()
         return tuple(sorted(filled | set(self.values)))
 
@@ -148,6 +154,19 @@ class Study:
     def database_path(self) -> Path:
         """The study database file."""
         return self.database if self.database is not None else self.path.with_suffix(".duckdb")
+
+    def step_context(self) -> StepContext:
+        """What the `[[weighting]]` steps are checked against: plain facts, never the spec itself."""
+        from pipeline.weighting.steps import StepContext
+
+        coded = {name for name, v in self.variables.items() if v.type in ("single", "rating")}
+        return StepContext(
+            folder=self.path.parent,
+            source=str(self.path),
+            variable_types={name: v.type for name, v in self.variables.items()},
+            coded=frozenset(coded | ({self.design.strata} if self.design.strata else set())),
+            codes={name: tuple(str(c) for c in v.valid_codes) for name, v in self.variables.items() if v.valid_codes},
+        )
 
     def wave(self, wave_id: str) -> Wave:
         """The wave with id `wave_id` (KeyError naming the known ids otherwise)."""
@@ -182,14 +201,14 @@ _DESIGN_KEYS = (
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
     "single": ("label", "type", "values", "nets"),
-    "scale": ("label", "type", "values", "exclude_from_mean", "nets"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "nets"),
     "multi": ("label", "type", "items"),
     "numeric": ("label", "type", "minimum", "maximum"),
 }
 _ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
 _VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "single": ("label", "values"),
-    "scale": ("label", "values"),
+    "rating": ("label", "values"),
     "multi": ("label", "items"),
     "numeric": ("label",),
 }
@@ -211,8 +230,9 @@ def load_spec(path: str | Path) -> Study:
     """Read and validate a study spec (TOML); return the `Study`.
 
     Every problem is collected and raised together as one `SpecError`; each `Problem` names the
-    dotted key (`variables.satisfaction.exclude_from_mean`) and has one of the rules
-    toml-syntax, missing-file, unknown-key, missing-key, wrong-type, bad-value, key-not-for-type,
+    dotted key (`variables.satisfaction.exclude_from_statistics`) and has one of the rules
+    toml-syntax, missing-file, unknown-key, missing-key, wrong-type, bad-value, renamed-key,
+    renamed-value, key-not-for-type,
     conflicting-keys, undeclared-code, duplicate-column, reserved-name. Wave files are resolved
     against the spec's folder but not opened (staging checks them). The insides of `[variance]`
     and `[[weighting]]` are validated by their own modules (`pipeline.estimation.options.
@@ -263,7 +283,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
         problems += parse_variance(variance)[1]
     if study is not None:
         try:
-            parse_steps(study.weighting, study)
+            parse_steps(study.weighting, study.step_context())
         except SpecError as exc:
             problems += exc.problems
         problems += parse_tables(study)[1]
@@ -334,6 +354,10 @@ class _Checker:
     def choice(self, table: dict, key: str, name: str, options: tuple[str, ...], default: str) -> str:
         value = self.typed(table, key, name, str)
         if value is None:
+            return default
+        renamed = renamed_value(f"{key}.{name}", value, file=self.file)
+        if renamed is not None:
+            self.problems.append(renamed)
             return default
         if value not in options:
             self.add("bad-value", f"{key}.{name}", f"'{value}' is not one of: {', '.join(options)}", value=value)
@@ -449,13 +473,20 @@ class _Checker:
         return out
 
     def variable(self, name: str, table: dict, key: str) -> Variable | None:
+        retired = [p for k in table if (p := renamed_key(key, k, file=self.file)) is not None]
+        self.problems += retired
+        if retired:
+            table = {k: v for k, v in table.items() if renamed_key(key, k) is None}
         vtype = self.typed(table, key, "type", str)
         if "type" not in table:
-            self.add("missing-key", f"{key}.type", "required key 'type' is missing (single, multi, scale or numeric)")
+            self.add("missing-key", f"{key}.type", "required key 'type' is missing (single, multi, rating or numeric)")
             return None
         if vtype not in _VARIABLE_KEYS:
-            if vtype is not None:
-                self.add("bad-value", f"{key}.type", f"'{vtype}' is not one of: single, multi, scale, numeric", value=vtype)
+            renamed = renamed_value(f"{key}.type", vtype, file=self.file)
+            if renamed is not None:
+                self.problems.append(renamed)
+            elif vtype is not None:
+                self.add("bad-value", f"{key}.type", f"'{vtype}' is not one of: single, multi, rating, numeric", value=vtype)
             return None
         allowed = _VARIABLE_KEYS[vtype]
         for k in table:
@@ -476,16 +507,18 @@ class _Checker:
             return None
         codes = _codes_from_keys(list(labels))
         values = dict(zip(codes, labels.values(), strict=True))
-        if vtype == "scale" and not all(isinstance(c, int) for c in codes):
-            self.add("wrong-type", f"{key}.values", "the codes of a scale must all be integers")
+        if vtype == "rating" and not all(isinstance(c, int) for c in codes):
+            self.add("wrong-type", f"{key}.values", "the codes of a rating must all be integers")
             return None
         base = Variable(name, vtype, label, values=values)  # type: ignore[arg-type]
         exclude: tuple[Code, ...] = ()
-        if vtype == "scale" and "exclude_from_mean" in table:
-            exclude = self.code_list(table["exclude_from_mean"], f"{key}.exclude_from_mean", base, tuple(values))
-        scaled = Variable(name, vtype, label, values=values, exclude_from_mean=exclude)  # type: ignore[arg-type]
-        nets = self.nets(table, key, scaled)
-        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_mean=exclude)  # type: ignore[arg-type]
+        if vtype == "rating" and "exclude_from_statistics" in table:
+            exclude = self.code_list(
+                table["exclude_from_statistics"], f"{key}.exclude_from_statistics", base, tuple(values)
+            )
+        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        nets = self.nets(table, key, rated)
+        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_statistics=exclude)  # type: ignore[arg-type]
 
     def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
         low = self.typed(table, key, "minimum", float)
@@ -569,10 +602,10 @@ class _Checker:
         kind = self.choice(raw, "design", "kind", ("probability", "nonprobability"), "probability")
         strata = self.typed(raw, "design", "strata", str)
         psu = self.typed(raw, "design", "psu", str)
-        psu_ids = self.choice(raw, "design", "psu_ids", ("nested", "unique"), "nested")
+        psu_ids = self.choice(raw, "design", "psu_ids", ("within-stratum", "unique"), "within-stratum")
         base_weight = self.typed(raw, "design", "base_weight", str)
         probability = self.typed(raw, "design", "selection_probability", str)
-        single_psu = self.choice(raw, "design", "single_psu", ("error", "certainty", "centre", "collapse"), "error")
+        single_psu = self.choice(raw, "design", "single_psu", ("error", "certainty", "grand-mean", "collapse"), "error")
         if base_weight is not None and probability is not None:
             self.add(
                 "conflicting-keys",

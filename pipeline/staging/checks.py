@@ -3,7 +3,7 @@
 Each rule is one query in `sql/check_*.sql` returning rows of (col, value, n, examples, detail);
 this module turns them into `Problem`s with readable messages. Errors stop staging; warnings are
 printed and recorded. Speed: the per-respondent work is a few grouped passes over the raw text
-table (see pipeline.readers). The coded columns are counted once per distinct value
+table (see pipeline.staging.readers). The coded columns are counted once per distinct value
 (`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items, integer codes) and the
 drift rules then work on that small table, and example ids are looked up in one more pass
 (`check_examples.sql`) only when a rule found something. Numeric and design columns are checked
@@ -25,10 +25,10 @@ from dataclasses import dataclass, replace
 import duckdb
 import polars as pl
 
-from pipeline.database import table_columns
 from pipeline.errors import Problem
-from pipeline.spec import Study, Variable
 from pipeline.sqlfiles import sql
+from pipeline.staging.database import table_columns
+from pipeline.staging.spec import Study, Variable
 
 # A category's unweighted share of the answers moving by more than this between the latest
 # earlier wave and this one is reported (share-shift warning). 15 percentage points: common
@@ -49,7 +49,7 @@ MAX_PROBLEMS_PER_COLUMN = 10
 class _Columns:
     """The spec's columns that are present in the file, grouped by what the checks do with them."""
 
-    codes: list[str]  # single and scale
+    codes: list[str]  # single and rating
     int_codes: list[str]
     items: list[str]
     numbers: list[str]  # numeric variables
@@ -137,7 +137,7 @@ def _present_columns(study: Study, present: set[str]) -> _Columns:
     variables = list(study.variables.values())
     design = study.design
     return _Columns(
-        codes=[v.name for v in variables if v.type in ("single", "scale") and v.name in present],
+        codes=[v.name for v in variables if v.type in ("single", "rating") and v.name in present],
         int_codes=[v.name for v in variables if v.int_coded and v.name in present],
         items=[c for v in variables if v.type == "multi" for c in v.items if c in present],
         numbers=[v.name for v in variables if v.type == "numeric" and v.name in present],
@@ -361,7 +361,7 @@ class _Context:
                     "psu-in-several-strata",
                     "error",
                     lambda r: f"{r[4]} PSU id(s) appear in more than one stratum (e.g. PSU '{r[1]}') but "
-                    'design.psu_ids = "unique"; set psu_ids = "nested" if PSU ids restart within each stratum',
+                    'design.psu_ids = "unique"; set psu_ids = "within-stratum" if PSU ids restart within each stratum',
                 ),
                 "check_psu_unique.sql",
                 {"column": design.psu},

@@ -13,9 +13,9 @@ import duckdb
 import polars as pl
 
 from pipeline.errors import DataError, Problem
-from pipeline.readers import prepare_connection
-from pipeline.spec import Study
 from pipeline.sqlfiles import sql
+from pipeline.staging.readers import prepare_connection
+from pipeline.staging.spec import Study
 
 DESIGN_TEXT = "VARCHAR"
 
@@ -24,7 +24,7 @@ def column_types(study: Study) -> dict[str, str]:
     """The study's own columns of `responses` and their DuckDB types, in table order.
 
     Design columns first (strata and PSU VARCHAR, base weight and selection probability DOUBLE),
-    then the codebook columns: single/scale BIGINT when every code is an integer else VARCHAR,
+    then the codebook columns: single/rating BIGINT when every code is an integer else VARCHAR,
     multi-response items TINYINT, numeric DOUBLE. A column that is both a design column and a
     codebook variable (e.g. region as strata) takes its codebook type. The respondent id column
     is stored as `respondent_id` and is not listed here.

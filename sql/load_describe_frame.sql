@@ -1,2 +1,0 @@
--- Column names and types of a registered data frame.
-describe select * from {{ frame|ident }}
