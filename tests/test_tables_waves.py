@@ -67,3 +67,56 @@ def test_satterthwaite_and_wave_pairs():
                                [20.0])
     assert wave_pairs(["W1", "W2", "W3"], None) == [("W2", "W1"), ("W3", "W2")]
     assert wave_pairs(["W1", "W2", "W3"], "W1") == [("W2", "W1"), ("W3", "W2"), ("W3", "W1")]
+
+
+def _panel_waves() -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Two waves drawn in the same 2 x 5 PSUs, with a PSU effect shared by both waves."""
+    rng = np.random.default_rng(77)
+    effect = rng.normal(0, 1.0, (2, 5))
+    frames = []
+    for wave in ("W1", "W2"):
+        rows = []
+        for h in range(2):
+            for j in range(5):
+                for i in range(12):
+                    latent = effect[h, j] + rng.normal(0, 0.7) + (0.3 if wave == "W2" else 0.0)
+                    rows.append({"respondent_id": f"{wave}-{h}-{j}-{i}", "h": str(h), "psu": str(j),
+                                 "w": float(rng.uniform(1, 4)), "y": 1 + int(latent > 0), "g": 1 + i % 2,
+                                 "x": float(5 + 2 * latent)})
+        frames.append(pl.DataFrame(rows))
+    return frames[0], frames[1]
+
+
+def test_shared_psus_change_variance_equals_a_direct_stacked_computation():
+    """same_psus_across_waves: z_i = d_i (y_i - p_t)/W_t for wave-t respondents and -d_i (y_i - p_s)/W_s for
+    wave-s respondents, PSU totals over both waves, then the with-replacement PSU variance (a direct
+    computation of the stacked design, Lohr 2022 section 9.1 applied to the stacked sample, from memory)."""
+    from dataclasses import replace as dc_replace
+
+    w1, w2 = _panel_waves()
+    study = dc_replace(STUDY, design=dc_replace(STUDY.design, same_psus_across_waves=True))
+    tab = tabulate(w1, study, ("g",), wave="W1")
+    tab = tabulate(w2, study, ("g",), wave="W2", tabulation=tab)
+    result = tab.finish()
+    got = result.tests.filter((pl.col("comparison") == "waves") & (pl.col("variable") == "y") & (pl.col("row") == 2))
+    both = pl.concat([w1.with_columns(wave=pl.lit("W1")), w2.with_columns(wave=pl.lit("W2"))])
+    w, y, g = both["w"].to_numpy(), both["y"].to_numpy(), both["g"].to_numpy()
+    later = (both["wave"] == "W2").to_numpy()
+    psu = (both["h"] + "/" + both["psu"]).to_numpy()
+    independent = []
+    for column, d in (("Total", np.ones(len(g), bool)), ("g=1", g == 1), ("g=2", g == 2)):
+        z = np.zeros(len(w))
+        for sign, in_wave in ((1.0, later), (-1.0, ~later)):
+            m = d & in_wave
+            p = (w * (y == 2) * m).sum() / (w * m).sum()
+            z += sign * m * ((y == 2) - p) / (w * m).sum()
+        labels, inv = np.unique(psu, return_inverse=True)
+        totals = np.bincount(inv, weights=w * z)
+        strata = np.array([s.split("/")[0] for s in labels])
+        v = sum(5 / 4 * ((totals[strata == h] - totals[strata == h].mean()) ** 2).sum() for h in ("0", "1"))
+        row = got.filter(pl.col("column_a") == column)
+        np.testing.assert_allclose(row["se_difference"][0], 100 * np.sqrt(v), rtol=1e-9)
+        cells = result.cells.filter((pl.col("variable") == "y") & (pl.col("row") == 2) & (pl.col("column") == column))
+        independent.append(np.sqrt((cells["se"] ** 2).sum()))
+    # the shared PSU effect correlates the waves positively: the change is more precise than independence says
+    assert got.sort("column_a")["se_difference"].to_numpy()[0] < independent[0]

@@ -27,7 +27,8 @@ from pipeline.tables.banners import Banner, build_banner
 from pipeline.tables.cells import WavePlan, cell_frame, plan_wave
 from pipeline.tables.fit import DesignInputs, FitState, fit_wave
 from pipeline.tables.rao_scott import rao_scott
-from pipeline.tables.significance import TEST_COLUMNS, column_tests, letters
+from pipeline.tables.significance import TEST_COLUMNS, column_tests, letters, mark
+from pipeline.tables.stacked import WaveRows, stacked_change_variance
 from pipeline.tables.spec import TablesSpec, parse_tables
 from pipeline.tables.wave_change import change_columns, wave_tests
 from pipeline.weighting import FittedRecipe
@@ -146,6 +147,8 @@ class Tabulation:
     cells: list[pl.DataFrame] = field(default_factory=list)
     tests: list[pl.DataFrame] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    kept: dict[str, WaveRows] = field(default_factory=dict)  # waves kept for the stacked design
+    stacked: dict[tuple[str, str], pl.DataFrame] = field(default_factory=dict)
 
     @property
     def within_applies(self) -> bool:
@@ -165,18 +168,31 @@ class Tabulation:
         if not wp.refs:
             return
         frame = wave_frame(responses, recipe).with_columns(list(wp.derived.values()))
-        state = fit_wave(frame, wp.plan, wp.medians, design_inputs(self.study, recipe, self.options), weight=_WEIGHT)
+        inputs = design_inputs(self.study, recipe, self.options)
+        state = fit_wave(frame, wp.plan, wp.medians, inputs, weight=_WEIGHT)
+        if self.study.design.same_psus_across_waves:
+            self._stack(WaveRows(wave, frame, recipe, layout, inputs))
         cells = cell_frame(wave, wp, state, self.spec, level=self.options.level,
                            weighting_variables=set(recipe.class_frame.columns))
         tests = column_tests(cells, state, self.spec, wp)
         independence = pl.DataFrame(_independence(wave, wp, state), schema=TEST_COLUMNS, strict=False)
         if independence.height:
-            from pipeline.tables.significance import mark
-
             independence = mark(independence.drop("p_adjusted", "significant", "significant_lighter"), self.spec,
                                 group=["wave", "table", "banner", "column_a"])
         self.cells.append(letters(cells, tests))
         self.tests.append(pl.concat([tests, independence], how="vertical_relaxed"))
+
+    def _stack(self, rows: WaveRows) -> None:
+        """The stacked-design change variances of `rows`' wave from the previous and the reference wave."""
+        order = [w.id for w in self.study.waves]
+        earlier_ids = [w for w in order[:order.index(rows.wave)] if w in self.kept]
+        wanted = set(earlier_ids[-1:]) | ({self.spec.reference_wave} & set(earlier_ids))
+        for earlier in sorted(wanted, key=order.index):
+            self.stacked[(rows.wave, earlier)] = stacked_change_variance(
+                self.study, self.spec, self.banners, self.options, self.kept[earlier], rows, weight=_WEIGHT,
+                classes=_CLASS)
+        keep = {rows.wave} | ({self.spec.reference_wave} & (set(self.kept) | {rows.wave}))
+        self.kept = {w: r for w, r in {**self.kept, rows.wave: rows}.items() if w in keep}
 
     def finish(self) -> BannerTables:
         """Every wave's cells and tests, with the wave-over-wave tests and the chance-marks count."""
@@ -185,7 +201,7 @@ class Tabulation:
             empty = pl.DataFrame(schema=TEST_COLUMNS)
             return BannerTables(pl.DataFrame(), empty, ChanceMarks(0, self.spec.levels), self.spec, tuple(self.notes))
         cells = pl.concat(self.cells, how="vertical_relaxed")
-        waves = wave_tests(cells, self.spec, wave_ids)
+        waves = wave_tests(cells, self.spec, wave_ids, self.stacked or None)
         tests = pl.concat([*self.tests, waves], how="vertical_relaxed")
         cells = change_columns(cells, waves, wave_ids).drop("estimator")
         made = int(tests["p_value"].is_not_null().sum())

@@ -110,13 +110,16 @@ def _key(expr: pl.Expr) -> str:
 
 
 def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout: pl.DataFrame, *,
-              cross_cells: bool = False) -> WavePlan:
+              cross_cells: bool = False, into: WavePlan | None = None, medians: bool = True,
+              joints: bool = True) -> WavePlan:
     """Every cell, median and joint proportion of one wave's banner tables (module docstring).
 
     cross_cells: also name the products of the quantities of every tested pair of cells (the
-    within-PSU term of a two-stage design with an FPC needs them, `pipeline.tables.within`).
+    within-PSU term of a two-stage design with an FPC needs them, `pipeline.tables.within`);
+    into: add to this plan (the stacked waves of `pipeline.tables.stacked`); medians, joints:
+    whether to plan the median cells and the Rao-Scott joint proportions.
     """
-    wp = WavePlan()
+    wp = into if into is not None else WavePlan()
     plan = wp.plan
     for name, variable in study.variables.items():
         banner_spec = spec.banner_of(name)
@@ -134,6 +137,8 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
         for column in columns:
             d = column.domain
             for order, kind, y, base in exprs:
+                if kind == "median" and not medians:
+                    continue
                 base_q = plan.q(f"b|{name}|{bases[_key(base)]}|{column.key}", base & d)
                 if kind == "median":
                     derived = f"__median|{name}"
@@ -161,7 +166,7 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
             for order, row_cells in pairs_of_row.items():
                 kind, y, base = kinds[order]
                 _cross_pairs(wp, name, order, kind, y, base, bases[_key(base)], value, row_cells)
-        if variable.type in ("single", "rating"):
+        if joints and variable.type in ("single", "rating"):
             _joint_cells(wp, name, banner, columns, exprs, cell_index, study)
     return wp
 

@@ -8,7 +8,7 @@ Waves drawn as independent samples: the change d = theta_t - theta_s has varianc
 freedom v(d)^2 / (v_t^2 / df_t + v_s^2 / df_s) (Satterthwaite 1946, Biometrics Bulletin 2:110-114).
 
 Waves that re-interview the same PSUs (`design.same_psus_across_waves = true`): the two waves are
-stacked into one design (`stacked_change_variance`), a PSU drawn in both contributing its
+stacked into one design (`pipeline.tables.stacked`), a PSU drawn in both contributing its
 covariance: with z_hj(t) the PSU totals of the linearized values of wave t,
 
     v(d) = sum_h n_h/(n_h-1) sum_j ((z_hj(t) - z_hj(s)) - mean_h)^2,
@@ -57,7 +57,7 @@ def wave_tests(cells: pl.DataFrame, spec: TablesSpec, wave_ids: list[str],
         var = v_a + v_b
         df = satterthwaite(v_a, joined["df"].to_numpy(), v_b, joined["df_b"].to_numpy())
         if stacked is not None and (wave, earlier) in stacked:
-            same = joined.select(KEY).join(stacked[(wave, earlier)], on=KEY, how="left")
+            same = joined.select(KEY).join(stacked[(wave, earlier)], on=KEY, how="left", maintain_order="left")
             var = same["variance"].to_numpy().astype(float)
             df = same["df"].to_numpy().astype(float)
         diff = (joined["estimate"] - joined["estimate_b"]).to_numpy()
