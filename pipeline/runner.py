@@ -32,6 +32,7 @@ from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import file_sha256, stage_wave
 from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.exports import write_exports
+from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -115,7 +116,8 @@ def weigh_and_estimate(
 
 
 def run_study(
-    spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False
+    spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False,
+    xlsx: bool = False,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
@@ -123,10 +125,17 @@ def run_study(
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
     (`weigh_and_estimate`), and renders the book to `out` (default `default_book_path`).
+    With `[tables]`, the banner exports `<book stem>_cells` / `_tests` are written beside the book,
+    and with `xlsx` the workbook `<book stem>_tables.xlsx` (`pipeline.tables.workbook`).
     Raises SpecError / DataError with every problem found.
     """
     study = load_spec(spec_path)
     options = variance_options(study)
+    spec = tables_spec(study)
+    if xlsx and spec is None:
+        problem = Problem("no-tables", "--xlsx writes the banner tables, but the spec has no [tables] table",
+                          file=str(study.path))
+        raise SpecError(f"{study.path}: nothing to write to a workbook", [problem])
     for wave_id in waves_to_stage(study, restage=restage):
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
@@ -139,7 +148,6 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    spec = tables_spec(study)
     tabulation = Tabulation(study, spec, options) if spec is not None else None
     cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
@@ -149,6 +157,8 @@ def run_study(
         tables = tabulation.finish()
         with progress.step("writing the banner exports", quiet=quiet):
             write_exports(tables, out_path.parent, out_path.stem)
+            if xlsx:
+                write_workbook(tables, study, out_path.parent / f"{out_path.stem}_tables.xlsx")
         variance = (*variance, tables.chance.sentence(), *tables.notes)
     with progress.step("writing the book", quiet=quiet):
         return render_book(

@@ -78,7 +78,7 @@ def test_demo_run_writes_exports_and_suppressed_cells_hold_no_number(tmp_path):
     text = spec.read_text(encoding="utf-8")
     assert "suppress_below = 20" in text
     spec.write_text(text.replace("suppress_below = 20", "suppress_below = 150"), encoding="utf-8")
-    book = run_study(folder / "study.toml", quiet=True)
+    book = run_study(folder / "study.toml", quiet=True, xlsx=True)
     stem = book.parent / book.stem
     cells = read_export(Path(f"{stem}_cells.parquet"))
     tests = read_export(Path(f"{stem}_tests.parquet"))
@@ -102,3 +102,17 @@ def test_demo_run_writes_exports_and_suppressed_cells_hold_no_number(tmp_path):
     assert "respondent_id" not in cells.columns and "resp_id" not in cells.columns
     assert set(cells["wave"]) == {"W1", "W2", "W3"}
     assert set(tests["comparison"]) >= {"columns", "total", "waves", "independence"}
+    assert tests.filter(pl.col("comparison") == "columns")["p_value"].is_not_null().sum() > 100
+    _check_workbook(Path(f"{stem}_tables.xlsx"), cells)
+
+
+def _check_workbook(path: Path, cells: pl.DataFrame) -> None:
+    """One sheet per table; the suppression symbol and the legend are in it (read from the .xlsx XML)."""
+    import re
+    import zipfile
+
+    with zipfile.ZipFile(path) as z:
+        workbook = z.read("xl/workbook.xml").decode()
+        strings = z.read("xl/sharedStrings.xml").decode()
+    assert len(re.findall(r"<sheet ", workbook)) == cells["table"].n_unique()
+    assert "<t>*</t>" in strings and "fewer than 150 respondents (not shown)" in strings

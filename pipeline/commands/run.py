@@ -9,12 +9,18 @@ EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --xlsx, --restage (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
         metavar="BOOK.html",
         help="where to write the book (default: book/<spec name>.html beside the spec)",
+    )
+    parser.add_argument(
+        "--xlsx",
+        action="store_true",
+        help="also write the banner tables as a spreadsheet workbook (<book>_tables.xlsx; needs [tables] "
+        "and the xlsx extra: pip install 'wavebook[xlsx]')",
     )
     parser.add_argument(
         "--restage",
@@ -27,6 +33,6 @@ def run(args: argparse.Namespace) -> int:
     """Run the study and print the book's path."""
     from pipeline.runner import run_study
 
-    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet)
+    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet, xlsx=args.xlsx)
     print(path)
     return 0
