@@ -23,8 +23,7 @@ from pathlib import Path
 import polars as pl
 
 from pipeline import progress
-from pipeline.book import render_book
-from pipeline.book_weighting import variance_lines, weighting_section
+from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.staging.database import load_responses, open_database, staged_waves

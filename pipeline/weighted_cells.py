@@ -8,7 +8,12 @@ the fitted weighting recipe of each wave and the `[variance]` options, and retur
       p = sum_i w_i a_i y_i / sum_i w_i a_i,   y_i = 1 when i's answer is in the row, a_i = 1 when
       i is in the row's base (answered; for "missing" rows every respondent of the wave);
   statistic "mean": the weighted mean of the answers (codes excluded from the statistics left out);
-  statistic "median": the weighted median with its Woodruff (1952) interval.
+  statistic "median": the weighted median with its Woodruff (1952) interval; for a rating scale
+      the interpolated median of grouped data (each answer k spread evenly over k -/+ 1/2,
+      `pipeline.estimation.quantiles`), so ties at a scale point never collapse the interval;
+      for a numeric question the smallest answer with at least half the weight at or below it.
+A row whose variance cannot be estimated (one respondent, or all its respondents in one PSU)
+has no standard error, interval or design effect; medians carry no design effect.
 
 A percentage of a variable the weighting calibrates to population figures (a raking margin, a
 post-stratification cell) is set by the weighting: its standard error is 0 up to the raking
@@ -55,6 +60,7 @@ _WEIGHT = "__base_weight"
 _CLASS = "__class"
 _FINAL = "__final_weight"
 PERCENT_KINDS = ("category", "net", "item", "missing")
+RATING_TYPES = ("scale", "rating")  # whole-number answers: medians by the grouped-data rule
 # A percentage of a weighting variable whose standard error (on the 0-1 scale) is below this is
 # a figure the weighting sets to its population target: calibration residuals are then exactly 0
 # (Taylor) or replicate raking meets the target to its tolerance (1e-6 by default), while any
@@ -168,8 +174,11 @@ def wave_estimates(
         single_psu=design.single_psu,
         collapse_with={str(k): str(v) for k, v in design.collapse_with.items()},
         second_stage_fraction=design.second_stage_fraction,
+        first_stage=design.first_stage,
+        psu_inclusion=design.psu_inclusion_probability,
         mean=means,
         quantile=[(c, 0.5) for c in medians] or None,
+        interpolate_quantiles=[c for c in medians if study.variables[meaning[c][0]].type in RATING_TYPES],
         variance=options.method,
         fay=options.fay,
         replicates=options.replicates,

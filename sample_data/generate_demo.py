@@ -71,8 +71,9 @@ Files written
 - population_truth.csv: `wave,measure,variable,category,value,base`: the population's true
   value of each main measure in each wave (measure "proportion" or "mean"; `base` names who it is
   computed over). Proportions of `aware` are per item (category = the item column).
-- area_frame.csv: per region, its label, the areas and adults in the population (the FPC uses the
-  areas), and the areas selected per wave.
+- area_frame.csv: per region, its label, the areas and adults in the population, and the areas
+  selected per wave (areas are drawn with probability proportional to adults: the spec's
+  `first_stage = "pps"`).
 - area_sizes.csv: every area of the frame: region, area, urban_rural, adults.
 """
 

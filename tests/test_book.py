@@ -21,8 +21,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import book as book_module
-from pipeline.book import LOW_BASE, VERY_LOW_BASE, build_context, render_book
+from pipeline.book import render as book_module
+from pipeline.book.render import LOW_BASE, VERY_LOW_BASE, build_context, render_book
 from pipeline.errors import WavebookError
 from pipeline.staging.spec import Design, Study, Variable, Wave
 from pipeline.topline import CELL_SCHEMA, unweighted_toplines
@@ -521,7 +521,7 @@ def test_percentages_round_half_up(percent: float, shown: str) -> None:
 
 
 def test_small_percentage_intervals_keep_a_decimal() -> None:
-    from pipeline.book import _percent_interval
+    from pipeline.book.render import _percent_interval
 
     assert _percent_interval(0.0, 0.24) == "0.0–0.2"  # whole numbers would print an empty-looking 0–0
     assert _percent_interval(0.31, 1.9) == "0.3–1.9"

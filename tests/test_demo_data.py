@@ -238,9 +238,9 @@ def test_spec_codebook_matches_the_generator() -> None:
     assert variables["recommend"]["nets"] == GEN.RECOMMEND_NETS
 
 
-def test_spec_fpc_and_labels_match_the_area_frame() -> None:
-    population = {int(k): v for k, v in SPEC["design"]["population"].items()}
-    assert population == dict(zip(FRAME["region"], FRAME["areas"]))
+def test_spec_design_and_labels_match_the_area_frame() -> None:
+    # the generator draws areas with probability proportional to size: no equal-probability FPC
+    assert SPEC["design"]["first_stage"] == "pps" and "population" not in SPEC["design"]
     labels = {int(k): v for k, v in SPEC["variables"]["region"]["values"].items()}
     assert labels == dict(zip(FRAME["region"], FRAME["region_label"]))
     sizes = pl.read_csv(DEMO / "area_sizes.csv")

@@ -164,7 +164,7 @@ def test_whole_psus_drop_the_within_term() -> None:
     assert half["se"][0] ** 2 - first == pytest.approx((unknown["se"][0] ** 2 - first) / 2, rel=1e-9)
 
 
-def test_covariance_with_the_within_term_is_refused() -> None:
+def test_covariance_needs_the_within_psu_cross_moments() -> None:
     from pipeline.estimation import SampleDesign, group_totals, taylor_variance
     from pipeline.estimation.estimands import Ratios
 
@@ -173,8 +173,9 @@ def test_covariance_with_the_within_term_is_refused() -> None:
     layout = SampleDesign(weight="w", strata="h", psu="j", population_size={"A": 12.0, "B": 9.0}).layout(
         gt, fpc_values={"A": 12.0, "B": 9.0})
     ratios = Ratios(num=[0], den=[-1])
-    # a covariance needs within-PSU cross-moments, which are not computed: an error, not a silent omission
-    with pytest.raises(ValueError, match="variances only"):
+    # per-PSU variances cannot stand in for the (P, m, m) cross-moments of a covariance
+    # (`taylor.within_psu_covariance`; tests/test_estimation_covariance.py checks the values)
+    with pytest.raises(ValueError, match="covariances with covariance=True"):
         taylor_variance(gt, ratios, layout, covariance=True, within=np.zeros((gt.n_psus, 1)))
 
 

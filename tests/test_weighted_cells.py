@@ -170,7 +170,7 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     from html.parser import HTMLParser
 
     from pipeline.book import build_context, render_book
-    from pipeline.book_weighting import variance_lines, weighting_section
+    from pipeline.book import variance_lines, weighting_section
     from pipeline.weighting.store import build_report
 
     study, responses, layout, _ = wave

@@ -56,6 +56,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "within-PSU variance term is added in full; 1: whole PSUs were taken)",
     )
     design.add_argument(
+        "--first-stage",
+        choices=("equal", "pps"),
+        default="equal",
+        help="how PSUs were drawn: equal probability within stratum (default) or pps, probability proportional "
+        "to size (no population size or sampling fraction: with-replacement variance unless --psu-inclusion is given)",
+    )
+    design.add_argument(
+        "--psu-inclusion",
+        metavar="COL",
+        help="with --first-stage pps: each PSU's first-stage inclusion probability, for the (1 - pi) approximation "
+        "(Taylor only; default: none)",
+    )
+    design.add_argument(
         "--single-psu",
         type=option_value("--single-psu"),
         choices=SINGLE_PSU_POLICIES,
@@ -96,6 +109,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
     var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
     parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
+    parser.add_argument(
+        "--interval",
+        choices=("korn-graubard", "logit", "t"),
+        default="korn-graubard",
+        help="interval of proportions (default korn-graubard: exact binomial limits on the effective sample size; "
+        "means, totals and ratios always use t, quantiles the Woodruff interval)",
+    )
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
     add_retired_options(parser)
 
@@ -156,9 +176,12 @@ def run(args: argparse.Namespace) -> int:
             replicates=args.replicates,
             seed=args.seed,
             level=args.level,
+            interval=args.interval,
             single_psu=args.single_psu,
             collapse_with=collapse,
             second_stage_fraction=args.second_stage_fraction,
+            first_stage=args.first_stage,
+            psu_inclusion=args.psu_inclusion,
             source=str(path),
         ).select(COLUMNS)
     if args.format == "json":

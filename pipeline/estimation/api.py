@@ -27,9 +27,16 @@ from pipeline.estimation import deff as deff_mod
 from pipeline.estimation import intervals
 from pipeline.estimation.design import PsuLayout, SampleDesign
 from pipeline.estimation.estimands import Ratios
-from pipeline.estimation.quantiles import weighted_cdfs, woodruff_interval
-from pipeline.estimation.result import COLUMNS, EstimateTable, interval
-from pipeline.estimation.taylor import Calibration, SquaredTotals, taylor_variance, within_psu_variance
+from pipeline.estimation.quantiles import WeightedCdf, weighted_cdfs, woodruff_interval
+from pipeline.estimation.result import COLUMNS, EstimateTable
+from pipeline.estimation.result import interval as interval_for
+from pipeline.estimation.taylor import (
+    Calibration,
+    ProductMoments,
+    SquaredTotals,
+    taylor_variance,
+    within_psu_variance,
+)
 from pipeline.estimation.totals import GroupTotals, group_totals
 
 VARIANCE_METHODS: tuple[str, ...] = (
@@ -57,6 +64,7 @@ class _Cell:
     s_nd: str | None
     s_dd: str | None
     prob: float = np.nan  # quantiles only
+    interpolated: bool = False  # quantiles of whole-number answers by the grouped-data rule (`quantiles`)
 
 
 def _as_list(value: object) -> list:
@@ -128,11 +136,24 @@ class _Plan:
         s_dd = self.q(f"rxx|{key}", x * x * a)
         self.cells.append(_Cell("ratio", f"{num_col}/{den_col}", "", dom, num, den, base, s_nn, s_nd, s_dd))
 
-    def quantile(self, frame: pl.DataFrame, var: str, prob: float, point: float, dom: str, d: pl.Expr) -> None:
+    def quantile(
+        self, frame: pl.DataFrame, var: str, prob: float, cdf: WeightedCdf, dom: str, d: pl.Expr, *, interpolated: bool
+    ) -> None:
+        """The proportion whose Woodruff interval gives the quantile's: 1[y <= q_hat], or for the
+        grouped-data rule 1[y < k] + lambda 1[y = k] at q_hat = k - 1/2 + lambda (`quantiles`)."""
         base = self.q(f"base|{var}|{dom}", (_answered(var, frame) & d).cast(pl.Float64))
-        below = pl.col(var).cast(pl.Float64).le(point).fill_null(False) if np.isfinite(point) else pl.lit(False)
-        num = self.q(f"le|{var}|{prob!r}|{dom}", (below & d).cast(pl.Float64))
-        self.cells.append(_Cell("quantile", var, f"{prob:g}", dom, num, base, base, num, num, base, prob))
+        y = pl.col(var).cast(pl.Float64)
+        if interpolated and cdf.total > 0:
+            idx, lam = cdf.interpolation_point(prob)
+            k = float(cdf.values[idx])
+            below = (y.lt(k).cast(pl.Float64) + float(lam) * y.eq(k).cast(pl.Float64)).fill_null(0.0)
+            num = self.q(f"smooth|{var}|{prob!r}|{dom}", below * d.cast(pl.Float64))
+        else:
+            point = float(cdf.quantile(prob))
+            below = y.le(point).fill_null(False) if np.isfinite(point) else pl.lit(False)
+            num = self.q(f"le|{var}|{prob!r}|{dom}", (below & d).cast(pl.Float64))
+        self.cells.append(_Cell("quantile", var, f"{prob:g}", dom, num, base, base, num, num, base, prob,
+                                interpolated))
 
 
 def _parse_quantiles(quantile: object) -> list[tuple[str, float]]:
@@ -188,17 +209,21 @@ def estimate_table(
     reweight: Callable[[np.ndarray], np.ndarray] | None = None,
     source: str | None = None,
     second_stage_fraction: float = 0.0,
+    interval: str = "korn-graubard",
+    interpolate_quantiles: str | Sequence[str] | None = None,
+    first_stage: str = "equal",
+    psu_inclusion: str | None = None,
 ) -> EstimateTable:
     """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
     design = SampleDesign(
         weight=weight, strata=strata, psu=psu, psu_ids=psu_ids,  # type: ignore[arg-type]
         population_size=population_size, sampling_fraction=sampling_fraction,
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
-        second_stage_fraction=float(second_stage_fraction),
+        second_stage_fraction=float(second_stage_fraction), first_stage=first_stage, psu_inclusion=psu_inclusion,
     )
     _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
-                   reweight=reweight, calibration_matrix=calibration_matrix)
+                   reweight=reweight, calibration_matrix=calibration_matrix, interval=interval)
     domains = _domains(frame, by)
     plan = _Plan()
     for dom, d in domains.items():
@@ -216,17 +241,18 @@ def estimate_table(
     if quantiles and reweight is not None and classes is not None:
         final_weights = _final_weights(frame, weight=weight, classes=classes, reweight=reweight)
         cdf_frame, cdf_weight = frame.with_columns(final_weights), FINAL_WEIGHT
+    smooth = set(_as_list(interpolate_quantiles))
     for var, prob in quantiles:
         cdfs[var] = cdfs.get(var) or weighted_cdfs(cdf_frame, value=var, weight=cdf_weight, domains=domains)
         for dom, d in domains.items():
-            point = float(cdfs[var][dom].quantile(prob))
-            plan.quantile(frame, var, prob, point, dom, d)
+            plan.quantile(frame, var, prob, cdfs[var][dom], dom, d, interpolated=var in smooth)
     gt = group_totals(frame, plan.quantities, weight=weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
     final = _final_totals(gt, reweight)
     ratios, t = _ratios(plan, gt), final.totals.sum(axis=0)
     fpc_values = design.fpc_values(frame)
+    inclusion = design.inclusion_values(frame, gt)
     if variance == "taylor":
-        layout = design.layout(final, fpc_values=fpc_values)
+        layout = design.layout(final, fpc_values=fpc_values, inclusion=inclusion)
         calibration = None
         if calibration_matrix is not None:
             calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
@@ -237,9 +263,10 @@ def estimate_table(
         theta, v = taylor_variance(final, ratios, layout, calibration=calibration, within=within)
         df: float = layout.df
         has_fpc = layout.has_fpc
+        df_layout: PsuLayout | None = layout
     else:
         # generated replicates follow the design as the variance sees it: collapsed strata, f_h, lone PSUs
-        layout = None if variance == "supplied" else design.layout(gt, fpc_values=fpc_values)
+        layout = None if variance == "supplied" else design.layout(gt, fpc_values=fpc_values, inclusion=inclusion)
         theta = ratios.value(t)
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
@@ -256,7 +283,9 @@ def estimate_table(
             within = _within_psu(frame, plan, gt, final, ratios, calibration, weight=weight, strata=strata, psu=psu,
                                  classes=classes, psu_ids=psu_ids, reweight=reweight)
             v = v + layout.second_stage(within)
-    return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc)
+        df_layout = layout
+    return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc,
+                  df_layout=df_layout, interval_kind=interval)
 
 
 def _final_weights(
@@ -321,6 +350,38 @@ def _squared_totals(
                          index([c.s_dd for c in cells]))
 
 
+def product_moments(
+    frame: pl.DataFrame,
+    quantities: Mapping[str, pl.Expr],
+    gt: GroupTotals,
+    pairs: np.ndarray,
+    *,
+    weight: str,
+    strata: str | None,
+    psu: str | None,
+    classes: str | None = None,
+    psu_ids: str = "within-stratum",
+    reweight: Callable[[np.ndarray], np.ndarray] | None = None,
+) -> ProductMoments:
+    """The squared-weight cross-products sum_{i in g} w_i^2 y_ik y_il of `pairs` (from
+    `taylor.product_pairs`), for `taylor.within_psu_covariance`.
+
+    quantities: the expressions `gt` was computed from (same names and order); w = base * f(c)
+    with the recipe's class factors when `reweight` is given, as in `_squared_totals`. One more
+    grouped pass with the squared base weight over the product expressions, in the groups of `gt`.
+    """
+    names = gt.columns
+    exprs = {f"__pair{q}": (quantities[names[k]] * quantities[names[k2]]).cast(pl.Float64)
+             for q, (k, k2) in enumerate(np.asarray(pairs, dtype=np.int64).tolist())}
+    squared_weight = "__squared_weight"
+    sq = group_totals(frame.with_columns((pl.col(weight).cast(pl.Float64) ** 2).alias(squared_weight)), exprs,
+                      weight=squared_weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
+    if not (np.array_equal(sq.psu, gt.psu) and np.array_equal(sq.cls, gt.cls)):
+        raise AssertionError("the squared-weight pass formed different groups")
+    f = _group_factors(gt, reweight)
+    return ProductMoments(pairs, sq.totals * (f**2)[:, None])
+
+
 def estimate(
     frame: pl.DataFrame,
     *,
@@ -351,6 +412,10 @@ def estimate(
     reweight: Callable[[np.ndarray], np.ndarray] | None = None,
     source: str | None = None,
     second_stage_fraction: float = 0.0,
+    interval: str = "korn-graubard",
+    interpolate_quantiles: str | Sequence[str] | None = None,
+    first_stage: str = "equal",
+    psu_inclusion: str | None = None,
 ) -> pl.DataFrame:
     """Design-based estimates, one row per estimate, as a polars DataFrame.
 
@@ -360,6 +425,9 @@ def estimate(
       correction either population_size (the first-stage population size N_h: a column, a mapping
       stratum -> N_h, or one number without strata) or sampling_fraction (f_h: a column, a mapping
       stratum -> f_h, or one number for every stratum);
+      first_stage: "equal" (default) or "pps" (PSUs drawn with probability proportional to size: no
+      FPC, or with psu_inclusion, a column of each PSU's first-stage inclusion probability, the
+      (1 - pi) approximation of `design`, Taylor only);
       second_stage_fraction: with an FPC and PSUs, the share of each selected PSU's units sampled
       (default 0, unknown: the within-PSU term is added in full; 1: whole PSUs, none is added);
       mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
@@ -368,15 +436,21 @@ def estimate(
       "fay", "bootstrap", "supplied" (replicate_cols: a regular expression matched against whole
       column names or a list of names; replicate_method: how they were made, default "sdr";
       replicate_multiplier: the variance multiplier, default that of the method); fay, replicates,
-      seed for the replicate methods; level: interval level (t intervals with the design df; quantiles: the
-      Woodruff interval); source: the file name used in error messages; single_psu: "error",
+      seed for the replicate methods; level: interval level; interval: for proportions,
+      "korn-graubard" (default), "logit" or "t" (means, totals and ratios: t intervals; quantiles:
+      the Woodruff interval); interpolate_quantiles: columns of whole-number answers whose quantiles
+      use the grouped-data rule (`quantiles` module docstring); source: the file name used in error messages; single_psu: "error",
       "certainty", "grand-mean" or "collapse" (collapse_with);
       classes + calibration_matrix: calibration residuals in Taylor (see `taylor`) and in the
       within-PSU term of the jackknife with a first-stage FPC; classes +
       reweight: `weight` then holds the adjusted base weights and reweight maps (R, C) class
       weight totals to (R, C) class factors (the weighting recipe's replay): final weights are
       base * f(class), and replicate methods replay the recipe in every replicate.
-    A quantile row's deff and n_eff are those of the proportion F(q_hat) its interval comes from.
+    df: the design's for whole-sample rows; a domain's own (PSUs with respondents in its base minus
+    strata with respondents in its base, at least 1) for the domains of `by`.
+    reason: why an estimate, its SE or its design effect is missing (empty domain, zero
+    denominator, one respondent or one PSU: no variance, a Woodruff interval collapsed on a tie, a
+    quantile, which has no design effect).
     Formulas: `taylor`, `design`, `deff`, `intervals`, `quantiles` module docstrings.
     """
     return estimate_table(
@@ -386,7 +460,8 @@ def estimate(
         replicate_cols=replicate_cols, replicate_multiplier=replicate_multiplier, replicate_method=replicate_method,
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
-        reweight=reweight, source=source, second_stage_fraction=second_stage_fraction,
+        reweight=reweight, source=source, second_stage_fraction=second_stage_fraction, interval=interval,
+        interpolate_quantiles=interpolate_quantiles, first_stage=first_stage, psu_inclusion=psu_inclusion,
     ).frame
 
 
@@ -412,8 +487,13 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         options.append(("ask for at least one mean, total, proportion, ratio or quantile", None))
     if req["variance"] not in VARIANCE_METHODS:
         options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))
+    if req["interval"] not in INTERVAL_KINDS:
+        options.append((f"interval must be one of {', '.join(INTERVAL_KINDS)}", str(req["interval"])))
     if req["variance"] == "supplied" and not req["replicate_cols"]:
         options.append(("supplied replicate weights need replicate_cols (a pattern or a list)", None))
+    if req["variance"] != "taylor" and design.psu_inclusion is not None:
+        options.append(("the (1 - pi) approximation of a pps first stage is for Taylor linearization; replicate "
+                        "methods use the with-replacement form: drop the PSU inclusion probabilities", None))
     if req["variance"] == "supplied" and design.has_fpc:
         options.append(("supplied replicate weights carry their own variance recipe; drop the FPC", None))
     if (req["reweight"] is not None or req["calibration_matrix"] is not None) and req["classes"] is None:
@@ -497,6 +577,19 @@ def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] 
     return cols
 
 
+NO_RESPONDENTS = "no respondents with an answer"
+NO_DOMAIN_RESPONDENTS = "no respondents in this domain with an answer"
+ZERO_DENOMINATOR = "denominator total is 0"
+ONE_RESPONDENT = "one respondent: the variance cannot be estimated (no standard error, interval or design effect)"
+ONE_PSU = ("the respondents are all in one PSU: the variance cannot be estimated (no standard error, interval or "
+           "design effect)")
+TIED_QUANTILE = ("the Woodruff interval collapses to a point (a tied value, or a proportion below the quantile "
+                 "with no variance): no standard error or interval can be given (no design effect for a quantile)")
+QUANTILE_DEFF = "no design effect for a quantile (its interval comes from the proportion below it)"
+NO_SRS_VARIANCE = "no design effect: the simple-random-sampling variance is 0 or cannot be estimated"
+INTERVAL_KINDS: tuple[str, ...] = ("korn-graubard", "logit", "t")
+
+
 def _table(
     plan: _Plan,
     gt: GroupTotals,
@@ -510,8 +603,20 @@ def _table(
     level: float,
     method: str,
     has_fpc: bool,
+    df_layout: PsuLayout | None,
+    interval_kind: str,
 ) -> EstimateTable:
-    """Assemble the rows: estimates, SEs, intervals, design effects, bases and reasons."""
+    """Assemble the rows: estimates, SEs, intervals, design effects, bases, degrees of freedom and reasons.
+
+    Degrees of freedom: the design's (`PsuLayout.df`, or the replicate df) for whole-sample rows; a
+    domain row (of `by`) gets the domain's own, PSUs with respondents in its base minus strata with
+    respondents in its base, at least 1 (`PsuLayout.domain_df`), and never more than the design's.
+    Supplied replicate weights carry no PSUs, so their rows keep the declared df.
+    No variance: a mean, proportion, ratio or quantile whose base has one respondent or lies in a
+    single PSU has a variance of 0 by construction, not by evidence: no SE, interval or design
+    effect, and `reason` says why. Proportions get the interval `interval_kind` (default
+    Korn-Graubard), quantiles the Woodruff interval, everything else the t interval.
+    """
     cells = plan.cells
     col = gt.column
     base_idx = np.array([col(c.base) for c in cells])
@@ -532,23 +637,54 @@ def _table(
     srs_n = gt.counts.sum(axis=0)[srs_idx]
     v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=t[srs_idx], base_n=srs_n, fpc=has_fpc)
     deff = deff_mod.design_effect(v, v_srs)
+    n_eff = deff_mod.effective_n(srs_n, deff)
+    present = gt.psu_totals((gt.counts[:, base_idx] > 0).astype(np.float64)) > 0  # (P, m)
+    psus_present = present.sum(axis=0)
+    design_df = np.full(len(cells), max(float(df), 1.0))
+    is_domain = np.array([bool(c.domain) for c in cells])
+    df_cells = design_df.copy()
+    if df_layout is not None:
+        df_cells = np.where(is_domain, np.minimum(design_df, df_layout.domain_df(present)), design_df)
     se = np.sqrt(np.maximum(v, 0.0))
     est = theta.copy()
-    low, high = interval(est, se, n, df, level=level, kind="t", proportion=False)
-    tcrit = float(intervals.critical_value(level, df))
+    is_prop = np.array([c.statistic == "proportion" for c in cells])
+    low, high = interval_for(est, se, n, df_cells, level=level, kind="t", proportion=False)
+    if is_prop.any() and interval_kind != "t":
+        p_low, p_high = interval_for(est[is_prop], se[is_prop], n[is_prop], df_cells[is_prop], level=level,
+                                 kind=interval_kind, proportion=True)  # type: ignore[arg-type]
+        low[is_prop], high[is_prop] = p_low, p_high
+    tcrit = np.asarray(intervals.critical_value(level, df_cells), dtype=np.float64)
     reason = np.full(len(cells), "", dtype=object)
+    missing = np.zeros(len(cells), dtype=bool)
+    no_variance = np.zeros(len(cells), dtype=bool)
+    no_deff = np.zeros(len(cells), dtype=bool)
     for i, c in enumerate(cells):
         if base_w[i] <= 0 or n[i] == 0:
-            reason[i] = "no respondents in this domain with an answer" if c.domain else "no respondents with an answer"
+            reason[i], missing[i] = NO_DOMAIN_RESPONDENTS if c.domain else NO_RESPONDENTS, True
         elif not np.isfinite(theta[i]):
-            reason[i] = "denominator total is 0"
-        if c.statistic == "quantile" and not reason[i]:
+            reason[i], missing[i] = ZERO_DENOMINATOR, True
+        elif c.statistic != "total" and n[i] == 1:
+            reason[i], no_variance[i] = ONE_RESPONDENT, True
+        elif c.statistic != "total" and psus_present[i] < 2:
+            reason[i], no_variance[i] = ONE_PSU, True
+        if c.statistic == "quantile" and not missing[i]:
             cdf = cdfs[c.variable][c.domain]
-            est[i] = float(cdf.quantile(c.prob))
-            low[i], high[i], se[i] = woodruff_interval(cdf, c.prob, se[i], tcrit)
-    missing = reason != ""
-    for arr in (est, se, low, high, deff):
+            est[i] = float(cdf.interpolated_quantile(c.prob) if c.interpolated else cdf.quantile(c.prob))
+            no_deff[i] = True
+            if not no_variance[i]:
+                low[i], high[i], se[i] = woodruff_interval(cdf, c.prob, se[i], float(tcrit[i]),
+                                                           interpolated=c.interpolated)
+                if not high[i] > low[i]:
+                    reason[i], no_variance[i] = TIED_QUANTILE, True
+            if not reason[i]:
+                reason[i] = QUANTILE_DEFF
+        elif not missing[i] and not no_variance[i] and not np.isfinite(deff[i]):
+            reason[i] = NO_SRS_VARIANCE
+    for arr in (est, se, low, high, deff, n_eff):
         arr[missing] = np.nan
+    for arr in (se, low, high, deff, n_eff):
+        arr[no_variance] = np.nan
+    deff[no_deff], n_eff[no_deff] = np.nan, np.nan
     frame = pl.DataFrame(
         {
             "statistic": [c.statistic for c in cells],
@@ -559,10 +695,10 @@ def _table(
             "se": se,
             "ci_low": low,
             "ci_high": high,
-            "df": np.full(len(cells), float(df)),
+            "df": df_cells,
             "deff": deff,
             "n": n.astype(np.int64),
-            "n_eff": deff_mod.effective_n(srs_n, deff),
+            "n_eff": n_eff,
             "reason": reason.astype(str).tolist(),
             "method": [method] * len(cells),
         }

@@ -19,6 +19,18 @@ replacement (from memory); Wolter (2007), Introduction to Variance Estimation, 2
 eq. 3.6) and 6.3 / 7.5 (with-replacement PSU variance, from memory). For a stratified SRS of
 respondents (each respondent its own PSU, weights N_h / n_h) it is exactly Lohr's eq. (3.6).
 
+Size-proportional first stages (`first_stage = "pps"`): the equal-probability f_h = n_h / N_h does
+not describe PSUs drawn with probability proportional to size. Without further information the
+variance is the with-replacement formula above with f_h = 0 (no FPC: the usual, slightly
+conservative, treatment of a without-replacement PPS first stage; Wolter 2007 section 2.4.5,
+from memory). With each PSU's first-stage inclusion probability pi_hj (`psu_inclusion`), the
+usual approximation puts (1 - pi_hj) on each PSU's squared deviation,
+    v(t) = sum_h n_h / (n_h - 1) sum_j (1 - pi_hj) (z_hj - zbar_h)^2  [+ sum_hj pi_hj (1 - f_2) v2(z_hj)]
+(Hajek 1964, Ann. Math. Statist. 35:1491-1523, in its simplified form with the plain stratum
+mean; Sarndal, Swensson & Wretman 1992, Model Assisted Survey Sampling, section 3.6; both from
+memory), and the two-stage within-PSU term takes pi_hj in place of f_h (with equal probabilities
+pi_hj = n_h / N_h and the two forms coincide).
+
 Strata with a single PSU have no within-stratum deviation; the policy says what to do:
   "error"      stop, naming the strata (default);
   "certainty"  treat the lone PSU as selected with certainty: it contributes 0;
@@ -46,6 +58,7 @@ SinglePsu = Literal["error", "certainty", "grand-mean", "collapse"]
 SINGLE_PSU_POLICIES: tuple[str, ...] = ("error", "certainty", "grand-mean", "collapse")
 PSU_IDS: tuple[str, ...] = ("within-stratum", "unique")
 FpcInput = str | Mapping[str, float] | float | None
+FIRST_STAGES: tuple[str, ...] = ("equal", "pps")
 
 
 @dataclass(frozen=True)
@@ -62,6 +75,10 @@ class SampleDesign:
     collapse_with: for single_psu "collapse", stratum label -> partner stratum label.
     second_stage_fraction: f_2, the share of each selected PSU's units taken at the second stage
     (0 when unknown, the safe side; 1 when whole PSUs are taken); used only with an FPC.
+    first_stage: "equal" (equal-probability PSUs within stratum: the FPC 1 - n_h/N_h applies) or
+    "pps" (size-proportional: no FPC, or with psu_inclusion the (1 - pi_hj) approximation of the
+    module docstring). psu_inclusion: with "pps", a column holding each PSU's first-stage
+    inclusion probability (the same for every respondent of the PSU).
     """
 
     weight: str
@@ -73,9 +90,21 @@ class SampleDesign:
     single_psu: SinglePsu = "error"
     collapse_with: Mapping[str, str] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
+    first_stage: str = "equal"
+    psu_inclusion: str | None = None
 
     def __post_init__(self) -> None:
         problems = []
+        if self.first_stage not in FIRST_STAGES:
+            message = f"the first stage must be one of {', '.join(FIRST_STAGES)}"
+            problems.append(Problem(rule="bad-option", message=message, value=str(self.first_stage)))
+        if self.first_stage == "pps" and self._fpc is not None:
+            message = ("a size-proportional first stage takes no equal-probability FPC (1 - n_h/N_h); give each "
+                       "PSU's inclusion probability instead, or nothing (with-replacement variance)")
+            problems.append(Problem(rule="bad-option", message=message))
+        if self.psu_inclusion is not None and (self.first_stage != "pps" or self.psu is None):
+            message = "PSU inclusion probabilities apply to a size-proportional first stage (pps) with PSUs"
+            problems.append(Problem(rule="bad-option", message=message, column=self.psu_inclusion))
         if not 0.0 <= self.second_stage_fraction <= 1.0:
             message = "the second-stage sampling fraction must lie between 0 and 1"
             problems.append(Problem(rule="bad-option", message=message, value=str(self.second_stage_fraction)))
@@ -109,7 +138,8 @@ class SampleDesign:
     def columns(self) -> tuple[str, ...]:
         """The data columns the design reads."""
         fpc = self._fpc
-        cols = [self.weight, self.strata, self.psu, fpc if isinstance(fpc, str) else None]
+        cols = [self.weight, self.strata, self.psu, fpc if isinstance(fpc, str) else None,
+                self.psu_inclusion]
         return tuple(c for c in cols if c is not None)
 
     @property
@@ -157,8 +187,37 @@ class SampleDesign:
             )
         return dict(zip(per["s"].to_list(), per["lo"].to_list(), strict=True))
 
-    def layout(self, gt: GroupTotals, *, fpc_values: Mapping[str, float] | float | None = None) -> PsuLayout:
-        """The PSU layout for variance: collapsed strata, sampling fractions f_h, single-PSU check."""
+    def inclusion_values(self, frame: pl.DataFrame, gt: GroupTotals) -> np.ndarray | None:
+        """(P,) each PSU's first-stage inclusion probability from `psu_inclusion`, in the PSU order of `gt`.
+
+        DataError when it varies within a PSU, is missing, or lies outside (0, 1]."""
+        if self.psu_inclusion is None or self.psu is None:
+            return None
+        stratum = pl.col(self.strata).cast(pl.String) if self.strata else pl.lit("all")
+        per = (
+            frame.select(stratum.alias("s"), pl.col(self.psu).cast(pl.String).alias("j"),
+                         pl.col(self.psu_inclusion).cast(pl.Float64).alias("v"))
+            .group_by("s", "j")
+            .agg(pl.col("v").min().alias("lo"), pl.col("v").max().alias("hi"), pl.col("v").null_count().alias("nulls"))
+        )
+        bad = per.filter((pl.col("lo") != pl.col("hi")) | (pl.col("nulls") > 0) | pl.col("lo").is_null()
+                         | (pl.col("lo") <= 0) | (pl.col("hi") > 1))
+        if bad.height:
+            message = "each PSU needs one inclusion probability in (0, 1], the same for all its respondents"
+            examples = tuple(f"{s}/{j}" for s, j in bad.select("s", "j").head(5).iter_rows())
+            raise DataError("the PSU inclusion probabilities are invalid", [
+                Problem(rule="bad-inclusion-probability", message=message, column=self.psu_inclusion,
+                        count=bad.height, examples=examples)])
+        lookup = {(s, j): v for s, j, v in per.select("s", "j", "lo").iter_rows()}
+        keys = [(gt.stratum_labels[h], label) for h, label in zip(gt.psu_stratum.tolist(), gt.psu_labels, strict=True)]
+        return np.array([lookup[k] for k in keys], dtype=np.float64)
+
+    def layout(
+        self, gt: GroupTotals, *, fpc_values: Mapping[str, float] | float | None = None,
+        inclusion: np.ndarray | None = None
+    ) -> PsuLayout:
+        """The PSU layout for variance: collapsed strata, sampling fractions f_h (or the PSUs' inclusion
+        probabilities of a pps first stage, `inclusion_values`), single-PSU check."""
         psu_stratum, labels = gt.psu_stratum, gt.stratum_labels
         n_h = np.bincount(psu_stratum, minlength=len(labels))
         population = _population_counts(
@@ -185,9 +244,11 @@ class SampleDesign:
                 ],
             )
         fraction = np.zeros(len(labels)) if population is None else n_h / population
+        if self.psu_inclusion is not None and inclusion is None:
+            raise ValueError("the design has PSU inclusion probabilities: pass inclusion=design.inclusion_values(...)")
         return PsuLayout(
             psu_stratum=psu_stratum, stratum_labels=labels, fraction=fraction, single_psu=self.single_psu,
-            second_stage_fraction=self.second_stage_fraction,
+            second_stage_fraction=self.second_stage_fraction, inclusion=inclusion,
         )
 
 
@@ -278,6 +339,14 @@ class PsuLayout:
     fraction: np.ndarray  # (H,) first-stage sampling fraction f_h (0 without FPC)
     single_psu: str
     second_stage_fraction: float = 0.0  # f_2 (SampleDesign)
+    inclusion: np.ndarray | None = None  # (P,) first-stage inclusion probabilities pi_hj of a pps first stage
+
+    @property
+    def psu_fraction(self) -> np.ndarray:
+        """(P,) the factor each PSU's deviation loses and its within term gains: pi_hj, or f_h of its stratum."""
+        if self.inclusion is not None:
+            return np.asarray(self.inclusion, dtype=np.float64)
+        return self.fraction[self.psu_stratum]
 
     @property
     def n_strata(self) -> int:
@@ -289,10 +358,24 @@ class PsuLayout:
         """Design degrees of freedom: PSUs minus strata (Korn & Graubard 1999 section 5.2, from memory)."""
         return len(self.psu_stratum) - self.n_strata
 
+    def domain_df(self, present: np.ndarray) -> np.ndarray:
+        """Degrees of freedom of domain estimates: PSUs with domain members minus strata with domain members.
+
+        present: (P, m) whether PSU j holds at least one respondent of estimate k's base (the domain's
+        respondents who answered). df_k = #{j : present} - #{h : some PSU of h present}, at least 1
+        (Korn & Graubard 1999, Analysis of Health Surveys, section 5.2 on degrees of freedom for
+        subpopulations, from memory). For a domain found in every PSU it is the design df, PSUs minus
+        strata; a domain living in one stratum with 5 PSUs gets 4.
+        """
+        present = np.asarray(present, dtype=bool)
+        psus = present.sum(axis=0)
+        strata = (sum_by(self.psu_stratum, present.astype(np.float64), self.n_strata) > 0).sum(axis=0)
+        return np.maximum(psus - strata, 1).astype(np.float64)
+
     @property
     def has_fpc(self) -> bool:
         """Whether a finite population correction is applied."""
-        return bool(np.any(self.fraction > 0))
+        return bool(np.any(self.psu_fraction > 0))
 
     def _deviations(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(P, m) PSU totals -> deviations from the stratum (or grand) mean and the per-PSU multiplier."""
@@ -304,12 +387,12 @@ class PsuLayout:
         if self.single_psu == "grand-mean" and lone.any():
             centre[lone] = z.mean(axis=0)
         with np.errstate(divide="ignore", invalid="ignore"):
-            factor = (1.0 - self.fraction) * np.where(lone, 1.0, n_h / (n_h - 1))
+            factor = np.where(lone, 1.0, n_h / (n_h - 1))
         if self.single_psu != "grand-mean":
             factor = np.where(lone, 0.0, factor)
         dev = z - centre[h]
         dev[np.abs(dev) <= 1e-12 * (np.abs(z) + np.abs(centre[h]))] = 0.0  # rounding noise of equal PSU totals
-        return dev, factor[h]
+        return dev, (1.0 - self.psu_fraction) * factor[h]
 
     def variance(self, z: np.ndarray) -> np.ndarray:
         """(P, m) PSU totals of linearized variables -> (m,) variances.
@@ -327,8 +410,14 @@ class PsuLayout:
         first-stage FPC the PSU term only carries the between-PSU part times (1 - f_h), and the
         within-PSU part enters with weight f_h. 0 without an FPC or when whole PSUs are taken.
         """
-        f = self.fraction[self.psu_stratum] * (1.0 - self.second_stage_fraction)
+        f = self.psu_fraction * (1.0 - self.second_stage_fraction)
         return (f[:, None] * np.asarray(within, dtype=np.float64)).sum(axis=0)
+
+    def second_stage_covariance(self, within: np.ndarray) -> np.ndarray:
+        """(P, m, m) second-stage covariances of the PSU totals -> (m, m) sum_h f_h (1 - f_2) sum_j c2_j,
+        the covariance form of `second_stage` (same weights)."""
+        f = self.psu_fraction * (1.0 - self.second_stage_fraction)
+        return np.einsum("j,jab->ab", f, np.asarray(within, dtype=np.float64))
 
     def covariance(self, z: np.ndarray) -> np.ndarray:
         """(P, m) PSU totals -> (m, m) covariance matrix, the same formula with cross-products."""

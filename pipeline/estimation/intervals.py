@@ -54,33 +54,60 @@ def logit_interval(
     return np.where(inside, low, np.nan), np.where(inside, high, np.nan)
 
 
+# a variance below this share of p(1-p) (an effective base above 1e12) is rounding noise of a
+# variance that is 0 (common practice, no source: double precision carries about 16 digits)
+RELATIVE_VARIANCE_TOLERANCE = 1e-12
+
+
+def effective_base(p: np.ndarray, var: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """Korn-Graubard effective sample size n* = p(1-p) / v(p), capped at the unweighted base n.
+
+    Cap (deff < 1 gives n* = n, never more): as in the data-presentation standard for proportions
+    of the U.S. National Center for Health Statistics (Parker et al. 2017, Vital Health Stat
+    2(175)); the rule is quoted from memory, the report's text was not found to confirm it.
+    Edges: at p = 0 or p = 1, or when v(p) <= RELATIVE_VARIANCE_TOLERANCE * p(1-p) (a variance that
+    is 0 up to rounding), n* = n, so the interval is the Clopper-Pearson interval of the unweighted
+    base (Korn & Graubard 1998 use n when the variance is 0, from memory).
+    """
+    p = np.asarray(p, dtype=np.float64)
+    var = np.asarray(var, dtype=np.float64)
+    n = np.asarray(n, dtype=np.float64)
+    spread = p * (1 - p)
+    usable = (p > 0) & (p < 1) & (var > RELATIVE_VARIANCE_TOLERANCE * spread)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        n_star = np.where(usable, spread / np.where(usable, var, 1.0), n)
+    return np.minimum(n_star, n)
+
+
 def korn_graubard_interval(
     p: np.ndarray, se: np.ndarray, n: np.ndarray, df: float | np.ndarray | None, *, level: float = 0.95
 ) -> tuple[np.ndarray, np.ndarray]:
     """Korn & Graubard (1998, Survey Methodology 24:193-201) interval for a proportion.
 
-    Clopper-Pearson on the effective sample size n* = p(1-p) / v(p), adjusted for the design df:
+    Clopper-Pearson on the effective sample size n* (`effective_base`: p(1-p)/v(p), capped at n,
+    n at p = 0, p = 1 or a zero variance), adjusted for the design df:
     n*_df = n* (t_{n-1, 1-alpha/2} / t_{df, 1-alpha/2})^2, x* = p n*_df, and
         low = Beta^{-1}(alpha/2; x*, n*_df - x* + 1),  high = Beta^{-1}(1 - alpha/2; x* + 1, n*_df - x*)
-    with low = 0 when x* = 0 and high = 1 when x* = n*_df. When v(p) = 0 (including p = 0 or 1)
-    n* is the unweighted base n (from memory).
+    with low = 0 when x* = 0 (p = 0) and high = 1 when x* = n*_df (p = 1). So at p = 0 the upper
+    limit is 1 - (alpha/2)^(1/n*_df), the Beta(1, n*_df) quantile. NaN when p, se or n is missing
+    or n < 1.
     """
     from scipy import stats
 
     _check_level(level)
     p = np.asarray(p, dtype=np.float64)
-    var = np.asarray(se, dtype=np.float64) ** 2
+    se = np.asarray(se, dtype=np.float64)
     n = np.asarray(n, dtype=np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        n_star = np.where(var > 0, p * (1 - p) / var, n)
+    n_star = effective_base(p, se**2, n)
     ratio = critical_value(level, np.maximum(n - 1, 1)) / critical_value(level, df)
     n_df = n_star * ratio**2
-    x = p * n_df
+    bad = ~np.isfinite(p) | ~np.isfinite(se) | ~np.isfinite(n_df) | (n < 1) | (n_df <= 0)
+    n_df = np.where(bad, 1.0, n_df)
+    x = np.where(bad, 0.5, np.clip(p, 0.0, 1.0) * n_df)
     alpha = 1.0 - level
-    with np.errstate(divide="ignore", invalid="ignore"):
-        low = np.where(x > 0, stats.beta.ppf(alpha / 2, np.maximum(x, 1e-300), n_df - x + 1), 0.0)
-        high = np.where(x < n_df, stats.beta.ppf(1 - alpha / 2, x + 1, np.maximum(n_df - x, 1e-300)), 1.0)
-    bad = ~np.isfinite(p) | ~np.isfinite(n_df) | (n_df <= 0)
+    at_zero, at_one = x <= 0, x >= n_df
+    low = np.where(at_zero, 0.0, stats.beta.ppf(alpha / 2, np.where(at_zero, 1.0, x), n_df - x + 1))
+    high = np.where(at_one, 1.0, stats.beta.ppf(1 - alpha / 2, x + 1, np.where(at_one, 1.0, n_df - x)))
     return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
 
 

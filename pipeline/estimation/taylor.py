@@ -126,6 +126,100 @@ def within_psu_variance(
     return np.where(m >= 2, np.maximum(v2, 0.0), 0.0)
 
 
+@dataclass(frozen=True)
+class ProductMoments:
+    """Group sums of squared-weight cross-products, for the within-PSU term of a covariance.
+
+    pairs: (Q, 2) int column indices (k, l), k <= l, into GroupTotals.columns; totals: (G, Q) with
+    totals[g, q] = sum_{i in g} w_i^2 y_ik y_il (w the final weights, the groups of GroupTotals).
+    The interface between the grouped pass (which computes the sums) and the covariance formula:
+    `product_pairs` says which pairs a covariance needs. The quantity 1 (the weight column) is an
+    ordinary column, so sum w^2 y_k = pair (k, one) and sum w^2 = pair (one, one).
+    """
+
+    pairs: np.ndarray
+    totals: np.ndarray
+
+    def __post_init__(self) -> None:
+        pairs = np.sort(np.asarray(self.pairs, dtype=np.int64).reshape(-1, 2), axis=1)
+        object.__setattr__(self, "pairs", pairs)
+        totals = np.asarray(self.totals, dtype=np.float64)
+        if totals.ndim != 2 or totals.shape[1] != len(pairs):
+            raise ValueError(f"product totals of shape {totals.shape} for {len(pairs)} pairs")
+        object.__setattr__(self, "totals", totals)
+
+    def lookup(self, wanted: np.ndarray) -> np.ndarray:
+        """(n, 2) pairs -> (n,) their columns in `totals`; ValueError naming the first missing pair."""
+        wanted = np.sort(np.asarray(wanted, dtype=np.int64).reshape(-1, 2), axis=1)
+        index = {(int(a), int(b)): q for q, (a, b) in enumerate(self.pairs.tolist())}
+        missing = [tuple(p) for p in wanted.tolist() if tuple(p) not in index]
+        if missing:
+            raise ValueError(f"the product moments lack {len(missing)} needed pairs, e.g. columns {missing[0]}")
+        return np.array([index[(a, b)] for a, b in wanted.tolist()], dtype=np.int64)
+
+
+def _used_columns(estimand: Estimand, t: np.ndarray) -> np.ndarray:
+    """Columns of the totals the linearized variables read (rows of D that are not all 0)."""
+    d = np.nan_to_num(estimand.linearize(t))
+    return np.flatnonzero(np.any(d != 0, axis=1))
+
+
+def product_pairs(gt: GroupTotals, estimand: Estimand, *, weight_column: int | None = None) -> np.ndarray:
+    """(Q, 2) the column pairs (k <= l) whose squared-weight cross-products `within_psu_covariance` needs.
+
+    Every pair of the columns the estimands' linearized variables read; with `weight_column` (the
+    quantity 1, needed for calibration residuals) that column joins them.
+    """
+    cols = _used_columns(estimand, gt.totals.sum(axis=0))
+    if weight_column is not None:
+        cols = np.union1d(cols, [weight_column])
+    a, b = np.triu_indices(len(cols))
+    return np.column_stack([cols[a], cols[b]])
+
+
+def within_psu_covariance(
+    gt: GroupTotals,
+    estimand: Estimand,
+    moments: ProductMoments,
+    *,
+    weight_column: int,
+    calibration: Calibration | None = None,
+) -> np.ndarray:
+    """(P, m, m) second-stage covariances c2_j(a, b) of the PSU totals of linearized variables.
+
+    c2_j(a, b) = m_j/(m_j - 1) [sum_{i in j} u_ia u_ib - U_ja U_jb / m_j],  U_j = sum_{i in j} u_i,
+    the cross-product form of `within_psu_variance` (whose diagonal it is; Cochran 1977, Sampling
+    Techniques, 3rd ed., section 11.9, the covariance by the same algebra, from memory). u_ia =
+    w_i (z_ia - beta_a(c_i)) with z_ia = y_i' D_a and beta = x_c' B the calibration fit (0 without
+    calibration). From the group sums S2 = sum w^2 y y', S1 = sum w^2 y, S0 = sum w^2 of `moments`:
+        sum_{i in g} u_ia u_ib = D_a' S2_g D_b - beta_a S1_g' D_b - beta_b S1_g' D_a + beta_a beta_b S0_g.
+    m_j counts the PSU's respondents with a non-zero weight; c2_j = 0 when m_j < 2. Memory: (P, m, m),
+    plus (G, m, m) with calibration: meant for the estimates a test compares, not for a whole book.
+    """
+    t = gt.totals.sum(axis=0)
+    d = np.nan_to_num(estimand.linearize(t))
+    m = d.shape[1]
+    pairs = product_pairs(gt, estimand)
+    psum = gt.psu_totals(moments.totals[:, moments.lookup(pairs)])
+    half = np.where(pairs[:, 0] == pairs[:, 1], 0.5, 1.0)
+    cross = np.einsum("jq,qa,qb->jab", psum * half, d[pairs[:, 0]], d[pairs[:, 1]])
+    cross = cross + cross.transpose(0, 2, 1)
+    if calibration is not None:
+        beta = _fitted(gt, gt.totals @ d, calibration)[gt.cls]  # (G, m)
+        cols = _used_columns(estimand, t)
+        s1 = moments.totals[:, moments.lookup(np.column_stack([cols, np.full(len(cols), weight_column)]))]
+        s1d = s1 @ d[cols]  # (G, m): S1_g' D
+        s0 = moments.totals[:, moments.lookup(np.array([[weight_column, weight_column]]))][:, 0]
+        mixed = beta[:, :, None] * s1d[:, None, :]
+        per_group = (beta * s0[:, None])[:, :, None] * beta[:, None, :] - mixed - mixed.transpose(0, 2, 1)
+        cross = cross + gt.psu_totals(per_group.reshape(len(beta), m * m)).reshape(-1, m, m)
+    u = gt.psu_totals(linearized_group_totals(gt, estimand, calibration=calibration))
+    n_j = gt.psu_totals(gt.counts[:, [weight_column]].astype(float))[:, 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c2 = (n_j / (n_j - 1))[:, None, None] * (cross - u[:, :, None] * u[:, None, :] / n_j[:, None, None])
+    return np.where((n_j >= 2)[:, None, None], c2, 0.0)
+
+
 def taylor_variance(
     gt: GroupTotals,
     estimand: Estimand,
@@ -140,18 +234,18 @@ def taylor_variance(
     v(theta) = sum_h (1-f_h) n_h/(n_h-1) sum_j (z_hj - zbar_h)^2 with z_hj the PSU totals of the
     linearized variable (calibration residuals when `calibration` is given). `within`: (P, m)
     second-stage variances of the PSU totals (`within_psu_variance`), added as
-    sum_h f_h sum_j v2(z_hj), the second term of the two-stage estimator (variances only: the
-    covariance of a two-stage design with an FPC needs cross-moments, so that pair is refused).
+    sum_h f_h (1 - f_2) sum_j v2(z_hj), the second term of the two-stage estimator; with
+    `covariance`, (P, m, m) second-stage covariances (`within_psu_covariance`), added the same way.
     Estimates with a zero denominator total are NaN, and so are their variances.
     """
-    if within is not None and covariance:
-        raise ValueError("the within-PSU term is computed for variances only, not covariances")
+    if within is not None and np.ndim(within) != (3 if covariance else 2):
+        raise ValueError("within must be (P, m) second-stage variances, or (P, m, m) covariances with covariance=True")
     t = gt.totals.sum(axis=0)
     theta = estimand.value(t)
     z = gt.psu_totals(linearized_group_totals(gt, estimand, calibration=calibration))
     v = layout.covariance(z) if covariance else layout.variance(z)
     if within is not None:
-        v = v + layout.second_stage(within)
+        v = v + (layout.second_stage_covariance(within) if covariance else layout.second_stage(within))
     undefined = ~np.isfinite(theta)
     if covariance:
         v[undefined, :] = np.nan

@@ -57,6 +57,10 @@ class Design:
     second_stage_fraction: with PSUs and a finite population correction, the share of each selected
     PSU's units taken at the second stage (0 when unknown, the safe side; 1 when whole PSUs are
     taken), for the within-PSU term of the two-stage variance (pipeline.estimation.design).
+    first_stage: "equal" (PSUs drawn with equal probability within stratum, default) or "pps"
+    (probability proportional to size: no finite population correction, with-replacement variance,
+    unless psu_inclusion_probability names a column of each PSU's first-stage inclusion
+    probability, which gives the (1 - pi) approximation of pipeline.estimation.design).
     same_psus_across_waves: the waves re-interview the same PSUs (a panel of areas), so wave-over-wave
     changes are estimated on the waves stacked into one design (pipeline.tables.wave_change).
     """
@@ -72,13 +76,18 @@ class Design:
     single_psu: Literal["error", "certainty", "grand-mean", "collapse"] = "error"
     collapse_with: dict[Code, Code] = field(default_factory=dict)
     second_stage_fraction: float = 0.0
+    first_stage: Literal["equal", "pps"] = "equal"
+    psu_inclusion_probability: str | None = None
     same_psus_across_waves: bool = False
 
     @property
     def columns(self) -> tuple[str, ...]:
         """The data columns the design reads."""
         return tuple(
-            c for c in (self.strata, self.psu, self.base_weight, self.selection_probability) if c is not None
+            c
+            for c in (self.strata, self.psu, self.base_weight, self.selection_probability,
+                      self.psu_inclusion_probability)
+            if c is not None
         )
 
 
@@ -197,6 +206,8 @@ _DESIGN_KEYS = (
     "single_psu",
     "collapse_with",
     "second_stage_fraction",
+    "first_stage",
+    "psu_inclusion_probability",
     "same_psus_across_waves",
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
@@ -638,10 +649,19 @@ class _Checker:
         if second is not None and not 0 <= second <= 1:
             self.add("bad-value", "design.second_stage_fraction", f"must lie between 0 and 1, not {second}", value=second)
             second = None
-        if second is not None and (psu is None or not (population or fraction)):
+        first_stage = self.choice(raw, "design", "first_stage", ("equal", "pps"), "equal")
+        inclusion = self.typed(raw, "design", "psu_inclusion_probability", str)
+        if first_stage == "pps" and (population or fraction):
+            self.add("conflicting-keys", "design.population" if population else "design.sampling_fraction",
+                     "a size-proportional first stage (first_stage = \"pps\") takes no equal-probability correction "
+                     "1 - n_h/N_h: drop it (with-replacement variance) or give psu_inclusion_probability")
+        if inclusion is not None and (first_stage != "pps" or psu is None):
+            self.add("conflicting-keys", "design.psu_inclusion_probability",
+                     "psu_inclusion_probability applies to first_stage = \"pps\" with design.psu")
+        if second is not None and (psu is None or not (population or fraction or inclusion)):
             self.add("conflicting-keys", "design.second_stage_fraction",
                      "second_stage_fraction only applies with design.psu and a finite population correction "
-                     "(population or sampling_fraction)")
+                     "(population, sampling_fraction or psu_inclusion_probability)")
         same_psus = self.typed(raw, "design", "same_psus_across_waves", bool)
         return Design(
             kind=kind,  # type: ignore[arg-type]
@@ -655,6 +675,8 @@ class _Checker:
             single_psu=single_psu,  # type: ignore[arg-type]
             collapse_with=collapse,
             second_stage_fraction=float(second) if second is not None else 0.0,
+            first_stage=first_stage,  # type: ignore[arg-type]
+            psu_inclusion_probability=inclusion,
             same_psus_across_waves=bool(same_psus),
         )
 

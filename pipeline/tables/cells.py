@@ -9,9 +9,10 @@ numeric or rating variable) and banner column d (a domain indicator, `pipeline.t
 
 with standard errors from the design (`pipeline.tables.fit`), the Korn and Graubard (1998) interval
 for percentages and the t interval for means, both with the domain's degrees of freedom (PSUs with
-domain members minus strata with domain members, `fit.domain_df`), the design effect and the
+domain members minus strata with domain members, `PsuLayout.domain_df`), the design effect and the
 effective base n / deff (Kish 1965 section 8.2). Rows are those of the wave's topline layout
-(`pipeline.topline`), so the Total column of a banner table is the weighted topline.
+(`pipeline.topline`), so the Total column of a banner table is the weighted topline. Degrees of
+freedom, and the missing SE of a cell on one respondent or in one PSU, are the core's (`api._table`).
 
 For the Rao-Scott test of a single-choice stub against a single-choice break the plan also holds
 the joint proportions p_rc = t(y_r a d_c) / t(a D) (D: the respondent is in some category column
@@ -36,7 +37,7 @@ from pipeline.staging.spec import Study
 from pipeline.tables.banners import Banner, Column
 from pipeline.tables.fit import Plan
 from pipeline.tables.spec import TablesSpec
-from pipeline.weighted_cells import SET_BY_WEIGHTING_SE, _row_expressions
+from pipeline.weighted_cells import RATING_TYPES, SET_BY_WEIGHTING_SE, _row_expressions
 
 CELL_COLUMNS: dict[str, pl.DataType] = {
     "wave": pl.String(),
@@ -85,7 +86,7 @@ class WavePlan:
 
     plan: Plan = field(default_factory=Plan.empty)
     refs: list[CellRef] = field(default_factory=list)
-    medians: dict[int, tuple[str, pl.Expr]] = field(default_factory=dict)
+    medians: dict[int, tuple[str, pl.Expr, bool]] = field(default_factory=dict)  # column, domain, interpolated
     derived: dict[str, pl.Expr] = field(default_factory=dict)  # derived column name -> expression
     # (table, banner, break variable) -> (row labels, column keys, (r, c) estimator indices)
     joints: dict[tuple[str, str, str], tuple[list[int], list[str], np.ndarray]] = field(default_factory=dict)
@@ -145,7 +146,7 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
                     wp.derived[derived] = pl.when(base).then(pl.col(name).cast(pl.Float64)).otherwise(None).alias(derived)
                     k = plan.add(api._Cell("quantile", name, "0.5", column.key, base_q, base_q, base_q,
                                            base_q, base_q, base_q, 0.5))
-                    wp.medians[k] = (derived, d)
+                    wp.medians[k] = (derived, d, variable.type in RATING_TYPES)
                     statistic = "median"
                 elif kind == "mean":
                     num = plan.q(f"x|{name}|{column.key}", value * (base & d).cast(pl.Float64))

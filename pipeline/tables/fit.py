@@ -39,7 +39,7 @@ from pipeline.estimation.estimands import Ratios
 from pipeline.estimation.options import VarianceOptions
 from pipeline.estimation.quantiles import weighted_cdfs
 from pipeline.estimation.taylor import Calibration, _fitted
-from pipeline.estimation.totals import GroupTotals, group_totals, sum_by
+from pipeline.estimation.totals import GroupTotals, group_totals
 from pipeline.tables.within import Cross, WithinTerms
 
 CHUNK_VALUES = 2**24  # largest (groups x estimators) block of linearized values held at once (128 MiB)
@@ -142,20 +142,6 @@ class FitState:
         return cov + self.layout.second_stage(c2).reshape(k, k)
 
 
-def domain_df(layout: PsuLayout, present: np.ndarray) -> np.ndarray:
-    """Degrees of freedom of domain estimates: PSUs with domain members minus strata with domain members, at least 1.
-
-    present: (P, m) whether PSU j holds a respondent of estimator k's base. Korn and Graubard (1999),
-    Analysis of Health Surveys, section 5.2 (from memory). A domain found in every PSU gets the
-    design df (PSUs minus strata). The same rule as the core's domain df (issue 9); one place to
-    hand over.
-    """
-    present = np.asarray(present, dtype=bool)
-    psus = present.sum(axis=0)
-    strata = (sum_by(layout.psu_stratum, present.astype(np.float64), layout.n_strata) > 0).sum(axis=0)
-    return np.maximum(psus - strata, 1).astype(np.float64)
-
-
 def linearized_psu_totals(gt: GroupTotals, ratios: Ratios, *, calibration: Calibration | None) -> np.ndarray:
     """(P, m) PSU totals of the linearized variables (or calibration residuals) of `ratios`.
 
@@ -184,29 +170,42 @@ def linearized_psu_totals(gt: GroupTotals, ratios: Ratios, *, calibration: Calib
     return out
 
 
-def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, pl.Expr]], inputs: DesignInputs,
-             *, weight: str) -> FitState:
-    """The one grouped pass of a wave and the estimates, variances and state of `plan` (module docstring)."""
+def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, pl.Expr, bool]],
+             inputs: DesignInputs, *, weight: str) -> FitState:
+    """The one grouped pass of a wave and the estimates, variances and state of `plan` (module docstring).
+
+    medians: estimator index -> (column, domain, interpolated): the quantity of a median is the
+    proportion below it, 1[y <= q] or, for whole-number answers by the grouped-data rule,
+    1[y < k] + lambda 1[y = k] (`pipeline.estimation.quantiles`), as in the core's `estimate_table`.
+    Degrees of freedom are the core's: a domain's own (PSUs minus strata with domain members).
+    """
     design, options = inputs.design, inputs.options
     cdfs: dict[str, dict[str, object]] = {}
     if medians:
         cdf_weight = inputs.final_weight or weight
-        for k, (column, d) in medians.items():
+        for k, (column, d, interpolated) in medians.items():
             cell = plan.cells[k]
             cdf = weighted_cdfs(frame, value=column, weight=cdf_weight, domains={cell.domain: d})[cell.domain]
             cdfs.setdefault(cell.variable, {})[cell.domain] = cdf
-            point = float(cdf.quantile(0.5))
-            below = pl.col(column).le(point).fill_null(False) if np.isfinite(point) else pl.lit(False)
-            num = plan.q(f"le|{column}|{cell.domain}", (below & d).cast(pl.Float64))
+            y = pl.col(column)
+            if interpolated and cdf.total > 0:
+                idx, lam = cdf.interpolation_point(0.5)
+                at = float(cdf.values[idx])
+                below = (y.lt(at).cast(pl.Float64) + float(lam) * y.eq(at).cast(pl.Float64)).fill_null(0.0)
+                num = plan.q(f"smooth|{column}|{cell.domain}", below * d.cast(pl.Float64))
+            else:
+                point = float(cdf.quantile(0.5))
+                below = y.le(point).fill_null(False) if np.isfinite(point) else pl.lit(False)
+                num = plan.q(f"le|{column}|{cell.domain}", (below & d).cast(pl.Float64))
             plan.cells[k] = api._Cell("quantile", cell.variable, "0.5", cell.domain, num, cell.base, cell.base,
-                                      num, num, cell.base, 0.5)
+                                      num, num, cell.base, 0.5, interpolated)
     gt = group_totals(frame, plan.quantities, weight=weight, strata=design.strata, psu=design.psu,
                       classes=inputs.classes, psu_ids=design.psu_ids)
     final = api._final_totals(gt, inputs.reweight)
     ratios = api._ratios(plan, gt)  # type: ignore[arg-type]
     t = final.totals.sum(axis=0)
     theta = ratios.value(t)
-    layout = design.layout(gt, fpc_values=design.fpc_values(frame))
+    layout = design.layout(gt, fpc_values=design.fpc_values(frame), inclusion=design.inclusion_values(frame, gt))
     calibration = None
     if inputs.calibration_matrix is not None:
         calibration = Calibration(np.asarray(inputs.calibration_matrix, dtype=np.float64),
@@ -245,11 +244,10 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
         within_own = within.covariance_terms(every, every, own)
         v = v + layout.second_stage(np.maximum(within_own, 0.0))
     table = api._table(plan, gt, ratios, t, theta, v, df, cdfs, level=options.level,  # type: ignore[arg-type]
-                       method=method, has_fpc=layout.has_fpc).frame
+                       method=method, has_fpc=layout.has_fpc, df_layout=layout, interval_kind="t").frame
     base_idx = np.array([gt.column(c.base) for c in plan.cells], dtype=np.int64)
-    present = gt.psu_totals((gt.counts[:, base_idx] > 0).astype(np.float64)) > 0
     return FitState(
-        table=table, theta=theta, variance=v, df=df, domain_df=np.minimum(domain_df(layout, present), df),
+        table=table, theta=theta, variance=v, df=df, domain_df=table["df"].to_numpy().astype(np.float64),
         base_weighted=t[base_idx], method=method, layout=layout, z=z, theta_r=theta_r, factors=rf,
         within=within, within_own=within_own, columns=gt._column_index,
     )

@@ -128,7 +128,7 @@ class BookContext:
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
     version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book_weighting`), None for an unweighted book.
+    meet (`pipeline.book.weighting`), None for an unweighted book.
     """
 
     title: str
@@ -370,13 +370,33 @@ def _design_lines(design: Design) -> tuple[str, ...]:
         lines.append(f"Base weights: 1 / selection probability (column '{design.selection_probability}').")
     else:
         lines.append("Base weights: equal for every respondent.")
-    if design.population:
+    if design.first_stage == "pps" and design.psu_inclusion_probability:
+        lines.append(
+            "First-stage units drawn with probability proportional to size: each unit's squared deviation is "
+            f"multiplied by one minus its inclusion probability (column '{design.psu_inclusion_probability}'), "
+            "the usual approximation for such samples."
+        )
+    elif design.first_stage == "pps":
+        lines.append(
+            "First-stage units drawn with probability proportional to size: standard errors use the "
+            "with-replacement formula, with no finite population correction (slightly conservative)."
+        )
+    elif design.population:
         lines.append("Finite population correction from the declared population of first-stage units per stratum.")
     elif design.sampling_fraction:
         lines.append("Finite population correction from the declared sampling fractions per stratum.")
     else:
         lines.append("No finite population correction declared.")
     return tuple(lines)
+
+
+MEDIAN_WEIGHTED = (
+    "The median of a rating scale is the interpolated median of grouped answers: each answer k "
+    "counts as spread evenly from k - 0.5 to k + 0.5, and the median is the point with half the "
+    "weight below it. The median of a number is the smallest answer with at least half the weight "
+    "at or below it. Medians carry no design effect."
+)
+MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
 
 
 def _methodology(*, weighted: bool) -> tuple[str, ...]:
@@ -404,7 +424,7 @@ def _methodology(*, weighted: bool) -> tuple[str, ...]:
         "row counts respondents with no answer to any item.",
         "Rating scales and numbers: the mean, median, minimum and maximum use the answers given, "
         "leaving out codes such as 'don't know' where the codebook says so (noted under the table). "
-        "The median is the middle answer, or the midpoint of the two middle answers.",
+        + (MEDIAN_WEIGHTED if weighted else MEDIAN_UNWEIGHTED),
     ]
     return tuple(paragraphs)
 
