@@ -30,6 +30,7 @@ from pipeline.staging.database import load_responses, open_database, staged_wave
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import file_sha256, stage_wave
 from pipeline.tables import Tabulation, tables_spec
+from pipeline.tables.book_view import banner_views, legend
 from pipeline.tables.exports import write_exports
 from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
@@ -152,6 +153,8 @@ def run_study(
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     out_path = Path(out) if out is not None else default_book_path(study)
     variance = variance_lines(options, study, calibrated=calibrated)
+    banners: tuple = ()
+    banner_legend: tuple[str, ...] = ()
     if tabulation is not None:
         tables = tabulation.finish()
         with progress.step("writing the banner exports", quiet=quiet):
@@ -159,6 +162,7 @@ def run_study(
             if xlsx:
                 write_workbook(tables, study, out_path.parent / f"{out_path.stem}_tables.xlsx")
         variance = (*variance, tables.chance.sentence(), *tables.notes)
+        banners, banner_legend = banner_views(tables, study), legend(tables)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
@@ -167,4 +171,6 @@ def run_study(
             weighting=weighting_section(study, reports),
             variance=variance,
             level=options.level,
+            banners=banners,
+            banner_legend=banner_legend,
         )

@@ -94,8 +94,9 @@ def test_demo_builds_a_book_with_one_table_per_variable(demo_run: tuple[Path, Pa
     parser = _Counter()
     parser.feed(book.read_text(encoding="utf-8"))
     study = load_spec(folder / "study.toml")
-    variable_tables = [c for c in parser.table_classes if "weights" not in c.split()]
+    variable_tables = [c for c in parser.table_classes if "result" in c.split() and "weights" not in c.split()]
     assert len(variable_tables) == len(study.variables)
+    assert sum("banner" in c.split() for c in parser.table_classes) == len(study.variables)  # the demo's [tables]
     weight_tables = [c for c in parser.table_classes if "weights" in c.split()]
     assert len(weight_tables) == (2 if study.weighting else 1)  # summary (+ margins when raked)
     assert "script" not in parser.tags

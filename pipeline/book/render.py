@@ -21,7 +21,7 @@ import math
 import os
 import re
 import tempfile
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import cache
 from pathlib import Path
 
@@ -128,7 +128,9 @@ class BookContext:
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
     version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book.weighting`), None for an unweighted book.
+    meet (`pipeline.book.weighting`), None for an unweighted book. banners: the banner tables
+    (`pipeline.tables.book_view.BannerView`, latest wave of each) and banner_legend their legend,
+    empty without `[tables]`.
     """
 
     title: str
@@ -144,6 +146,8 @@ class BookContext:
     generated_at: str
     version: str
     weighting: WeightingSection | None = None
+    banners: tuple = ()
+    banner_legend: tuple[str, ...] = ()
 
 
 def render_book(
@@ -154,6 +158,8 @@ def render_book(
     weighting: WeightingSection | None = None,
     variance: tuple[str, ...] = (),
     level: float = 0.95,
+    banners: tuple = (),
+    banner_legend: tuple[str, ...] = (),
 ) -> Path:
     """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
 
@@ -162,6 +168,8 @@ def render_book(
     file system), so a failure never leaves a half-written or missing book. Returns `out_path`.
     """
     context = build_context(study, cells, weighting=weighting, variance=variance, level=level)
+    if banners:
+        context = replace(context, banners=tuple(banners), banner_legend=tuple(banner_legend))
     html = _environment().get_template("book.html.j2").render(book=context)
     out_path = Path(out_path)
     out_path.parent.mkdir(parents=True, exist_ok=True)
