@@ -1,4 +1,5 @@
-"""Errors the user can act on. The CLI prints them and exits with status 1.
+"""Errors the user can act on. The CLI prints them and exits with the error's `exit_code`
+(1 for a problem with the data or the spec, 2 for a usage error; see pipeline/cli.py).
 
 Every input problem is collected before stopping: a `WavebookError` carries the whole list,
 so the user fixes everything in one round.
@@ -21,6 +22,7 @@ class Problem:
     value: str | None = None
     count: int | None = None
     examples: tuple[str, ...] = field(default_factory=tuple)
+    line: int | None = None  # line of the file (1 = the first line, e.g. a CSV header)
 
     def render(self) -> str:
         """One readable line: severity, where, the message, the count and up to five example ids."""
@@ -28,6 +30,7 @@ class Problem:
             part
             for part in (
                 f"file {self.file}" if self.file else "",
+                f"line {self.line}" if self.line is not None else "",
                 f"column '{self.column}'" if self.column else "",
                 f"value '{self.value}'" if self.value is not None else "",
             )
@@ -38,13 +41,17 @@ class Problem:
             text += f" ({where})"
         if self.count is not None:
             text += f"; {self.count} row{'s' if self.count != 1 else ''}"
-        if self.examples:
+        if self.examples and all(e.startswith("row ") for e in self.examples):
+            text += "; e.g. rows " + ", ".join(e.removeprefix("row ") for e in self.examples[:5])
+        elif self.examples:
             text += "; e.g. ids " + ", ".join(self.examples[:5])
         return text
 
 
 class WavebookError(Exception):
     """A problem with the user's spec or data. `problems` holds every problem found."""
+
+    exit_code = 1
 
     def __init__(self, summary: str, problems: list[Problem] | None = None) -> None:
         self.summary = summary
@@ -64,3 +71,9 @@ class SpecError(WavebookError):
 
 class DataError(WavebookError):
     """A data file breaks a rule (duplicate ids, codes outside the codebook, bad design values...)."""
+
+
+class UsageError(WavebookError):
+    """The command line itself is wrong (an option out of range, options that contradict); exit 2."""
+
+    exit_code = 2

@@ -26,12 +26,13 @@ from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
+from pipeline.outputs import check_output, file_sha256, study_inputs
 from pipeline.staging.database import load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
-from pipeline.staging.stage import file_sha256, stage_wave
+from pipeline.staging.stage import stage_wave
 from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.book_view import banner_views, legend
-from pipeline.tables.exports import write_exports
+from pipeline.tables.exports import export_paths, write_exports
 from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
@@ -42,6 +43,19 @@ from pipeline.weighting.store import fit_wave, store
 def default_book_path(study: Study) -> Path:
     """`<spec folder>/book/<spec stem>.html`."""
     return study.path.parent / "book" / f"{study.path.stem}.html"
+
+
+def book_path(study: Study, out: str | Path | None, *, force: bool = False) -> Path:
+    """Where the book goes: `out` (an existing folder gets `<folder>/<spec stem>.html`) or
+    `default_book_path`; checked by `pipeline.outputs.check_output` against every input of the
+    study before any work is done (WavebookError output-is-input / output-exists / output-not-a-file)."""
+    if out is None:
+        path = default_book_path(study)
+    else:
+        path = Path(out)
+        if path.is_dir():
+            path = path / f"{study.path.stem}.html"
+    return check_output(path, study_inputs(study), force=force, option="--out")
 
 
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
@@ -116,7 +130,12 @@ def weigh_and_estimate(
 
 
 def run_study(
-    spec_path: str | Path, *, out: str | Path | None = None, restage: bool = False, quiet: bool = False,
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    restage: bool = False,
+    quiet: bool = False,
+    force: bool = False,
     xlsx: bool = False,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
@@ -124,18 +143,22 @@ def run_study(
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), and renders the book to `out` (default `default_book_path`).
-    With `[tables]`, the banner exports `<book stem>_cells` / `_tests` are written beside the book,
-    and with `xlsx` the workbook `<book stem>_tables.xlsx` (`pipeline.tables.workbook`).
-    Raises SpecError / DataError with every problem found.
+    (`weigh_and_estimate`), and renders the book to `book_path(study, out, force=force)`, which is
+    checked first. With `[tables]`, the banner exports `<book stem>_cells` / `_tests` are written
+    beside the book (checked first too), and with `xlsx` the workbook `<book stem>_tables.xlsx`
+    (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
     """
     study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
     options = variance_options(study)
     spec = tables_spec(study)
     if xlsx and spec is None:
         problem = Problem("no-tables", "--xlsx writes the banner tables, but the spec has no [tables] table",
                           file=str(study.path))
         raise SpecError(f"{study.path}: nothing to write to a workbook", [problem])
+    exports = export_paths(out_path, xlsx=xlsx) if spec is not None else []
+    for path in exports:
+        check_output(path, study_inputs(study), force=force, option="--out")
     for wave_id in waves_to_stage(study, restage=restage):
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
@@ -151,16 +174,15 @@ def run_study(
     tabulation = Tabulation(study, spec, options) if spec is not None else None
     cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
-    out_path = Path(out) if out is not None else default_book_path(study)
     variance = variance_lines(options, study, calibrated=calibrated)
     banners: tuple = ()
     banner_legend: tuple[str, ...] = ()
     if tabulation is not None:
         tables = tabulation.finish()
         with progress.step("writing the banner exports", quiet=quiet):
-            write_exports(tables, out_path.parent, out_path.stem)
+            write_exports(tables, exports[:4])
             if xlsx:
-                write_workbook(tables, study, out_path.parent / f"{out_path.stem}_tables.xlsx")
+                write_workbook(tables, study, exports[4])
         variance = (*variance, tables.chance.sentence(), *tables.notes)
         banners, banner_legend = banner_views(tables, study), legend(tables)
     with progress.step("writing the book", quiet=quiet):

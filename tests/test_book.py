@@ -23,6 +23,7 @@ from hypothesis import strategies as st
 
 from pipeline.book import render as book_module
 from pipeline.book.render import LOW_BASE, VERY_LOW_BASE, build_context, render_book
+from pipeline import outputs as outputs_module
 from pipeline.errors import WavebookError
 from pipeline.staging.spec import Design, Study, Variable, Wave
 from pipeline.topline import CELL_SCHEMA, unweighted_toplines
@@ -445,7 +446,7 @@ def test_footer_gives_time_and_version(tmp_path: Path, cells: pl.DataFrame) -> N
 
 
 def test_write_leaves_no_temporary_file(book_path: Path) -> None:
-    assert sorted(p.name for p in book_path.parent.iterdir()) == ["study.html"]
+    assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_failed_render_leaves_previous_book_untouched(book_path: Path, tmp_path: Path, cells: pl.DataFrame) -> None:
@@ -453,7 +454,7 @@ def test_failed_render_leaves_previous_book_untouched(book_path: Path, tmp_path:
     with pytest.raises(WavebookError, match="percent"):
         render_book(_study(tmp_path), cells.drop("percent"), out_path=book_path)
     assert book_path.read_bytes() == before
-    assert sorted(p.name for p in book_path.parent.iterdir()) == ["study.html"]
+    assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_failed_replace_leaves_previous_book_untouched(
@@ -464,11 +465,11 @@ def test_failed_replace_leaves_previous_book_untouched(
     def failing_replace(src: str, dst: str) -> None:
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(book_module.os, "replace", failing_replace)
-    with pytest.raises(OSError, match="simulated"):
+    monkeypatch.setattr(outputs_module.os, "replace", failing_replace)
+    with pytest.raises(WavebookError, match="simulated"):
         render_book(_study(tmp_path), cells, out_path=book_path)
     assert book_path.read_bytes() == before
-    assert sorted(p.name for p in book_path.parent.iterdir()) == ["study.html"]
+    assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_book_file_is_readable_like_a_normal_file(book_path: Path) -> None:

@@ -125,7 +125,7 @@ def test_init_command_refuses_to_overwrite(tmp_path: Path, capsys: pytest.Captur
     assert "review the lines marked REVIEW" in capsys.readouterr().out
     out.write_text("# edited by hand\n", encoding="utf-8")
     assert main(["init", str(data), "--out", str(out)]) == 1
-    assert "already exists" in capsys.readouterr().err
+    assert "[output-exists]" in capsys.readouterr().err
     assert out.read_text(encoding="utf-8") == "# edited by hand\n"
     assert main(["init", str(data), "--out", str(out), "--force", "--id", "resp_id"]) == 0
     assert main(["check", str(out)]) == 0

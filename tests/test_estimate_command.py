@@ -133,7 +133,7 @@ def test_bad_input_exits_1_with_every_problem(tmp_path: Path, capsys: pytest.Cap
                             "--psu-ids", "unique"], capsys)
     assert code == 1 and "psu-in-several-strata" in err and "within-stratum" in err
     code, _, err = run_cli([str(path), "--weight", "wt", "--quantile", "spend", "half", "--level", "95"], capsys)
-    assert code == 1 and "not a number" in err and "--level" in err
+    assert code == 2 and "not a number" in err and "--level" in err  # option values: a usage error
 
 
 def test_command_module_imports_no_heavy_library() -> None:
@@ -206,6 +206,6 @@ def test_single_psu_collapse_with_partner_strata(tmp_path: Path, capsys: pytest.
     code, _, err = run_cli([*common, "--single-psu", "grand-mean"], capsys)
     assert code == 0
     code, _, err = run_cli([*common, "--collapse-with", "west=south"], capsys)
-    assert code == 1 and "--collapse-with needs --single-psu collapse" in err
+    assert code == 2 and "--collapse-with needs --single-psu collapse" in err  # contradicting options: usage
     code, _, err = run_cli([*common, "--single-psu", "collapse", "--collapse-with", "west"], capsys)
-    assert code == 1 and "STRATUM=PARTNER" in err
+    assert code == 2 and "STRATUM=PARTNER" in err  # a malformed option value: usage

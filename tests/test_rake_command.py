@@ -71,5 +71,5 @@ def test_rake_reports_problems_and_writes_nothing(tmp_path: Path, capsys: pytest
     err = capsys.readouterr().err
     assert "'E'" in err and "'S'" in err  # unknown target category and data category without target, together
     assert not out.exists()
-    assert main(["rake", str(data), "--targets", str(targets), "--trim-max", "0.5"]) == 1
+    assert main(["rake", str(data), "--targets", str(targets), "--trim-max", "0.5"]) == 2  # a usage error
     assert "--trim-max" in capsys.readouterr().err

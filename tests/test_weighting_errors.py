@@ -149,7 +149,8 @@ def test_parse_steps_collects_every_problem_naming_keys(tmp_path: Path) -> None:
     with pytest.raises(SpecError) as exc:
         parse_steps(raw, _study(tmp_path).step_context())
     text = exc.value.render()
-    for fragment in ("weighting[0].margins[0]: 'region'", "weighting[0].tolerence: unknown key", "missing.csv",
-                     "weighting[1].upper", "weighting[2].bounds", "weighting[3].step", "weighting[4].responded",
-                     "weighting[4].step: the nonresponse adjustment must be the first"):
+    for fragment in ("weighting step 1, margins[0]: 'region'", "weighting step 1, tolerence: unknown key", "missing.csv",
+                     "weighting step 2, upper", "weighting step 3, bounds", "weighting step 4, step",
+                     "weighting step 5, responded",
+                     "weighting step 5, step: the nonresponse adjustment must be the first"):
         assert fragment in text, fragment

@@ -3,7 +3,7 @@
 `render_book(study, cells, out_path=...)` turns the cells (see `pipeline.topline` for their
 columns) into a `BookContext` (the documented object every template receives), renders
 `templates/book.html.j2` with autoescaping forced on and strict undefined variables, and writes
-the page atomically (a temporary file in the same folder, then `os.replace`).
+the page atomically through `pipeline.outputs` (a temporary file in the same folder, then a rename).
 
 When the cells carry weighted estimates (the columns `estimate`, `ci_low`, `ci_high` added to
 the same rows by the estimation stage), percentages, means and medians show the weighted
@@ -18,9 +18,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-import os
 import re
-import tempfile
 from dataclasses import dataclass, replace
 from functools import cache
 from pathlib import Path
@@ -30,6 +28,7 @@ import polars as pl
 
 from pipeline import __version__
 from pipeline.errors import WavebookError
+from pipeline.outputs import write_text_output
 from pipeline.resources import resource_dir
 from pipeline.staging.spec import Design, Study, Variable, Wave
 
@@ -163,18 +162,17 @@ def render_book(
 ) -> Path:
     """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
 
-    The page is rendered completely in memory first; only then is it written to a temporary
-    file in the destination folder and moved over `out_path` with `os.replace` (atomic on one
-    file system), so a failure never leaves a half-written or missing book. Returns `out_path`.
+    The page is rendered completely in memory first; only then is it written through
+    `pipeline.outputs.write_text_output` (a temporary file in the destination folder moved over
+    `out_path`, recorded as wavebook's own output), so a failure never leaves a half-written or
+    missing book. The caller checks `out_path` first (`pipeline.outputs.check_output`). Returns
+    `out_path`.
     """
     context = build_context(study, cells, weighting=weighting, variance=variance, level=level)
     if banners:
         context = replace(context, banners=tuple(banners), banner_legend=tuple(banner_legend))
     html = _environment().get_template("book.html.j2").render(book=context)
-    out_path = Path(out_path)
-    out_path.parent.mkdir(parents=True, exist_ok=True)
-    _write_atomically(out_path, html)
-    return out_path
+    return write_text_output(Path(out_path), html)
 
 
 def build_context(
@@ -232,31 +230,6 @@ def _environment() -> jinja2.Environment:
     )
     env.filters["thousands"] = lambda number: f"{number:,}"
     return env
-
-
-def _write_atomically(path: Path, text: str) -> None:
-    """Write `text` to a temporary file beside `path`, then replace `path` with it.
-
-    The temporary file gets the permissions of a normally created file (0o666 minus the umask).
-    """
-    handle, temp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            out.write(text)
-            out.flush()
-            os.fsync(out.fileno())
-        os.chmod(temp_name, 0o666 & ~_umask())
-        os.replace(temp_name, path)
-    except BaseException:
-        Path(temp_name).unlink(missing_ok=True)
-        raise
-
-
-def _umask() -> int:
-    """The process's file-creation mask (read by setting it and restoring it at once)."""
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
 
 
 def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:

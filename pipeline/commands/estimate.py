@@ -12,6 +12,8 @@ if TYPE_CHECKING:
 
     import polars as pl
 
+    from pipeline.errors import Problem
+
 HELP = "estimate means, totals, proportions, ratios or quantiles with design-based standard errors"
 EXAMPLE = "wavebook estimate wave3.csv --weight wt --strata region --psu area --proportion q1 --by age_band"
 # the same choices as pipeline.estimation (design.SINGLE_PSU_POLICIES, api.VARIANCE_METHODS; kept literal so
@@ -123,9 +125,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     """Read DATA, estimate, print one row per estimate (CSV or a JSON array)."""
     import json
+    import sys
     from pathlib import Path
 
-    from pipeline.errors import Problem, SpecError
+    from pipeline.errors import Problem, UsageError
     from pipeline.estimation.api import estimate
     from pipeline.estimation.result import COLUMNS
     from pipeline.progress import step
@@ -150,10 +153,12 @@ def run(args: argparse.Namespace) -> int:
     if collapse and args.single_psu != "collapse":
         problems.append(Problem(rule="bad-option", message="--collapse-with needs --single-psu collapse"))
     if problems:
-        raise SpecError("the estimate options are invalid", problems)
+        raise UsageError("the estimate options are invalid", problems)
     path = Path(args.data)
     with step(f"reading {path.name}", quiet=args.quiet):
         frame = _read(path)
+    for warning in weight_warnings(frame, args.weight, source=str(path)):
+        print(warning.render(), file=sys.stderr)
     with step("estimating", quiet=args.quiet):
         result = estimate(
             frame,
@@ -201,6 +206,44 @@ def _column_or_number(value: str | None) -> str | float | None:
         return value
 
 
+DOMINANT_SHARE = 0.5  # one weight holding more than half the total: common practice, no source
+
+
+def weight_warnings(frame: pl.DataFrame, weight: str, *, source: str) -> list[Problem]:
+    """DataError (all-weights-zero) when every weight is zero; a warning (dominant-weight) with the
+    Kish effective n = (sum w)^2 / sum w^2 (Kish 1965, Survey Sampling, section 11.7; from memory) when one
+    weight holds more than DOMINANT_SHARE of the total. Other weight problems (missing, negative,
+    not numeric) are left to the estimator's own checks."""
+    import polars as pl
+
+    from pipeline.errors import DataError, Problem
+
+    if weight not in frame.columns or not frame[weight].dtype.is_numeric() or frame.height == 0:
+        return []
+    w = frame[weight].cast(pl.Float64).drop_nulls()
+    if w.len() and (w == 0).all():
+        raise DataError(
+            f"{source}: every weight is zero",
+            [Problem("all-weights-zero", "every value of the weight column is 0; nothing can be estimated",
+                     file=source, column=weight, value="0", count=w.len())],
+        )
+    total = float(w.sum())
+    if not total > 0 or w.len() < 2 or float(w.max()) <= DOMINANT_SHARE * total:
+        return []
+    n_eff = total**2 / float((w * w).sum())
+    return [
+        Problem(
+            "dominant-weight",
+            f"one weight holds {float(w.max()) / total:.0%} of the total weight; the effective sample size is "
+            f"{n_eff:.1f} of {w.len():,} respondents, so every estimate rests on very few people",
+            severity="warning",
+            file=source,
+            column=weight,
+            value=f"{float(w.max()):g}",
+        )
+    ]
+
+
 def _read(path: Path) -> pl.DataFrame:
     """Read a CSV (types inferred from every row) or Parquet file into polars."""
     import polars as pl
@@ -213,8 +256,11 @@ def _read(path: Path) -> pl.DataFrame:
     if suffix == ".parquet":
         return pl.read_parquet(path)
     if suffix in (".csv", ".txt"):
+        from pipeline.staging.readers import checked_csv_header
+
+        header = checked_csv_header(path)
         try:
-            return pl.read_csv(path, infer_schema_length=None)
+            return pl.read_csv(path, infer_schema_length=None, new_columns=header)
         except pl.exceptions.PolarsError as exc:
             problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
             raise DataError("cannot read the data file", [problem]) from None

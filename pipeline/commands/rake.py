@@ -20,7 +20,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--trim-min", type=float, metavar="X", help="raise weights below X times the mean, then re-rake")
     parser.add_argument("--tolerance", type=float, default=1e-6, metavar="T", help="relative tolerance on every margin (default 1e-6)")
     parser.add_argument("--max-iterations", type=int, default=100, metavar="N", help="raking cycles allowed (default 100)")
-    parser.add_argument("--out", metavar="FILE", help="write every input column plus `weight` to FILE (.csv or .parquet)")
+    parser.add_argument("--out", metavar="FILE",
+                        help="write every input column plus `weight` to FILE (.csv or .parquet; never DATA or TARGETS)")
+    parser.add_argument("--force", action="store_true", help="replace an existing --out file that wavebook did not write")
 
 
 def read_data(path: str) -> object:
@@ -36,7 +38,9 @@ def read_data(path: str) -> object:
         raise FileNotFoundError(f"no data file at {file}")
     suffix = file.suffix.lower()
     if suffix == ".csv":
-        return pl.read_csv(file, infer_schema=False)
+        from pipeline.staging.readers import checked_csv_header
+
+        return pl.read_csv(file, infer_schema=False, new_columns=checked_csv_header(file))
     if suffix == ".parquet":
         return pl.read_parquet(file)
     raise WavebookError(f"cannot read {file}: DATA must be a .csv or .parquet file")
@@ -49,7 +53,8 @@ def run(args: argparse.Namespace) -> int:
     import numpy as np
     import polars as pl
 
-    from pipeline.errors import DataError, Problem, SpecError
+    from pipeline.errors import DataError, Problem, SpecError, UsageError
+    from pipeline.outputs import Input, check_output
     from pipeline.weighting.recipe import fit_recipe
     from pipeline.weighting.steps import RakeStep, TrimStep
     from pipeline.weighting.store import build_report, weights_array, write_frame
@@ -62,7 +67,9 @@ def run(args: argparse.Namespace) -> int:
         ("--max-iterations", args.max_iterations, args.max_iterations >= 1, "at least 1"),
     ) if not ok]
     if bad:
-        raise SpecError("invalid options", bad)
+        raise UsageError("invalid options", bad)
+    inputs = [Input(Path(args.data), "DATA"), Input(Path(args.targets), "the --targets file")]
+    out = check_output(args.out, inputs, force=args.force, option="--out") if args.out else None
     data = read_data(args.data)
     assert isinstance(data, pl.DataFrame)
     targets, problems = read_targets_csv(Path(args.targets), where="--targets")
@@ -77,14 +84,14 @@ def run(args: argparse.Namespace) -> int:
                         [Problem("missing-column", "no such column in the data", file=args.data, column=c) for c in missing])
     if "weight" in data.columns:
         raise DataError(f"{args.data} already has a column 'weight'; rename it before raking")
-    rows = data.with_columns(pl.int_range(1, data.height + 1).cast(pl.String).alias(ROW))
+    rows = data.with_columns(pl.format("row {}", pl.int_range(1, data.height + 1)).alias(ROW))  # messages name rows
     base = weights_array(data, args.weight) if args.weight else np.ones(data.height)
     steps: list = [RakeStep(0, margins, targets, tolerance=args.tolerance, max_iterations=args.max_iterations)]
     if args.trim_max is not None or args.trim_min is not None:
         steps.append(TrimStep(1, upper=args.trim_max, lower=args.trim_min, relative_to="mean"))
     recipe = fit_recipe(rows, steps, base_weights=base, id_column=ROW)
     print(build_report(recipe, wave=Path(args.data).name, n_input=data.height).render())
-    if args.out:
-        write_frame(data.with_columns(pl.Series("weight", recipe.weights)), Path(args.out))
+    if out is not None:
+        write_frame(data.with_columns(pl.Series("weight", recipe.weights)), out)
         print(f"wrote {data.height:,} rows with their weight to {args.out}")
     return 0

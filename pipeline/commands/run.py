@@ -9,12 +9,18 @@ EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --xlsx, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --force, --xlsx, --restage (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
         metavar="BOOK.html",
-        help="where to write the book (default: book/<spec name>.html beside the spec)",
+        help="where to write the book (default: book/<spec name>.html beside the spec; an existing folder "
+        "gets <folder>/<spec name>.html); never the spec, the database, a wave or targets file",
+    )
+    parser.add_argument(
+        "--force",
+        action="store_true",
+        help="replace an existing --out file that wavebook did not write (never an input of the study)",
     )
     parser.add_argument(
         "--xlsx",
@@ -33,6 +39,7 @@ def run(args: argparse.Namespace) -> int:
     """Run the study and print the book's path."""
     from pipeline.runner import run_study
 
-    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet, xlsx=args.xlsx)
+    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet, force=args.force,
+                     xlsx=args.xlsx)
     print(path)
     return 0

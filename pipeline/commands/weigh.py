@@ -13,20 +13,29 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("spec", help="the study spec (TOML)")
     parser.add_argument("--wave", action="append", dest="waves", metavar="ID",
                         help="a wave to weigh (repeatable; default: every staged wave)")
-    parser.add_argument("--export", metavar="FILE", help="also write respondent_id, wave, weight to FILE (.csv or .parquet)")
+    parser.add_argument("--export", metavar="FILE",
+                        help="also write respondent_id, wave, weight to FILE (.csv or .parquet; never an input of the study)")
+    parser.add_argument("--force", action="store_true", help="replace an existing --export file that wavebook did not write")
 
 
 def run(args: argparse.Namespace) -> int:
     """Weigh each selected wave (each stored in its own transaction), print its diagnostics, export if asked."""
-    from pathlib import Path
-
     from pipeline.commands.stage import selected_waves
+    from pipeline.errors import DataError, Problem
+    from pipeline.outputs import check_output, study_inputs
     from pipeline.staging.database import open_database, staged_waves
     from pipeline.progress import step
     from pipeline.staging.spec import load_spec
     from pipeline.weighting.store import export_weights, weigh_wave
 
     study = load_spec(args.spec)
+    export = check_output(args.export, study_inputs(study), force=args.force, option="--export") if args.export else None
+    if not study.database_path.is_file():
+        raise DataError(
+            f"nothing to weigh: no study database at {study.database_path}",
+            [Problem("database-missing", f"stage the waves first: wavebook stage {args.spec}",
+                     file=str(study.database_path))],
+        )
     con = open_database(study)
     try:
         staged = set(staged_waves(con)["wave"].to_list())
@@ -35,8 +44,11 @@ def run(args: argparse.Namespace) -> int:
             with step(f"weighing {wave_id}", quiet=args.quiet):
                 report = weigh_wave(study, wave_id, con=con)
             print(report.render())
-        if args.export:
-            rows = export_weights(con, waves, Path(args.export))
+        if not waves:
+            raise DataError(f"nothing to weigh: no wave is staged in {study.database_path}",
+                            [Problem("wave-not-staged", f"stage the waves first: wavebook stage {args.spec}")])
+        if export is not None:
+            rows = export_weights(con, waves, export)
             print(f"wrote {rows:,} weights to {args.export}")
     finally:
         con.close()

@@ -30,6 +30,10 @@ from pipeline.sqlfiles import sql
 from pipeline.staging.database import table_columns
 from pipeline.staging.spec import Study, Variable
 
+# No design weight above this: more people than the world holds (about 8e9), so the value is a
+# typing or unit error; it also keeps sums of squared weights finite (effective n, design effects).
+LARGEST_WEIGHT = 1e12
+
 # A category's unweighted share of the answers moving by more than this between the latest
 # earlier wave and this one is reported (share-shift warning). 15 percentage points: common
 # practice, no source; large enough that sampling noise at tracker sizes (n >= 300: SE of a
@@ -347,7 +351,43 @@ class _Context:
                 id=id_col,
                 columns=[{"name": c, "probability": c == design.selection_probability} for c in cols.weights],
             )
+        found += self.weight_size_problems()
         found += self.strata_problems()
+        return found
+
+    def weight_size_problems(self) -> list[Problem]:
+        """Design weights (base weight or 1 / selection probability) too large to compute with
+        (error weight-out-of-range, above LARGEST_WEIGHT or not finite) and those above
+        `design.extreme_weight_ratio` times the median weight (warning extreme-weight, with ids)."""
+        design, id_col = self.study.design, self.study.respondent_id
+        found: list[Problem] = []
+        for column in self.columns.weights:
+            context = {"id": id_col, "column": column, "probability": column == design.selection_probability}
+            params = {"column": column, "largest": LARGEST_WEIGHT}
+            weight = "1 / the selection probability" if context["probability"] else "the base weight"
+            found += self.run(
+                _Rule(
+                    "weight-out-of-range",
+                    "error",
+                    lambda r, weight=weight: f"{weight} is not a finite number at most {LARGEST_WEIGHT:g} ({r[4]}); "
+                    "no person stands for that many others: fix the value",
+                ),
+                "check_weight_range.sql",
+                params,
+                **context,
+            )
+            found += self.run(
+                _Rule(
+                    "extreme-weight",
+                    "warning",
+                    lambda r, weight=weight: f"{weight} is over {design.extreme_weight_ratio:g} times the median "
+                    f"weight ({r[4]}); one respondent would carry much of the total: check the value "
+                    "(design.extreme_weight_ratio sets the ratio)",
+                ),
+                "check_weight_ratio.sql",
+                {**params, "ratio": design.extreme_weight_ratio},
+                **context,
+            )
         return found
 
     def strata_problems(self) -> list[Problem]:

@@ -68,16 +68,59 @@ def open_database(study: Study, *, read_only: bool = False) -> duckdb.DuckDBPyCo
     return con
 
 
+DUCKDB_MAGIC = b"DUCK"  # bytes 8-11 of every DuckDB database file
+
+
 def connect(path: Path, *, read_only: bool = False) -> duckdb.DuckDBPyConnection:
-    """A DuckDB connection to the study database file; DataError (rule database-busy) when another
-    process holds it (DuckDB allows one writing process per file)."""
+    """A DuckDB connection to the study database file.
+
+    Refuses, before DuckDB touches it, a file that exists but is not a DuckDB database (a CSV
+    named by `database =`, say): DataError rule not-a-database. A DuckDB error on opening is
+    reported by its cause: database-busy (another process holds the file: DuckDB allows one
+    writing process per file), database-permission, or database-unreadable.
+    """
+    if path.exists():
+        _refuse_non_database(path)
     try:
         return duckdb.connect(str(path), read_only=read_only)
-    except duckdb.IOException as exc:
+    except (duckdb.Error, OSError) as exc:
+        text = str(exc)
+        if "lock" in text.lower():
+            rule, message = "database-busy", "another program is using the database; close it and retry"
+        elif "permission denied" in text.lower() or isinstance(exc, PermissionError):
+            rule, message = "database-permission", "permission denied: wavebook may not read or write this file"
+        else:
+            rule, message = "database-unreadable", f"DuckDB cannot open this file: {text.splitlines()[0] if text else exc}"
+        raise DataError(f"cannot open the study database {path}", [Problem(rule, message, file=str(path))]) from None
+
+
+def _refuse_non_database(path: Path) -> None:
+    """DataError (not-a-database) unless `path` is an empty file or starts like a DuckDB file."""
+    if path.is_dir():
         raise DataError(
             f"cannot open the study database {path}",
-            [Problem("database-busy", f"another program is using the database ({exc}); close it and retry", file=str(path))],
+            [Problem("not-a-database", "this is a folder; `database =` must name a .duckdb file", file=str(path))],
+        )
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(12)
+    except OSError as exc:
+        raise DataError(
+            f"cannot open the study database {path}",
+            [Problem("database-permission", f"{exc.strerror or exc}: wavebook may not read this file", file=str(path))],
         ) from None
+    if head and head[8:12] != DUCKDB_MAGIC:
+        raise DataError(
+            f"cannot open the study database {path}",
+            [
+                Problem(
+                    "not-a-database",
+                    "this file is not a DuckDB database; wavebook never opens another file as the study "
+                    "database: fix `database =` in the spec or move the file away",
+                    file=str(path),
+                )
+            ],
+        )
 
 
 def create_tables(con: duckdb.DuckDBPyConnection, study: Study) -> None:

@@ -9,6 +9,9 @@ identical rows. The table's rowid + 1 is the data row number (rows keep the file
 
 from __future__ import annotations
 
+import csv
+import io
+import re
 from pathlib import Path
 
 import duckdb
@@ -18,6 +21,7 @@ from pipeline.sqlfiles import sql
 
 FORMATS = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
 _FLOAT_TYPES = ("DOUBLE", "FLOAT", "REAL")
+MAX_LISTED = 20  # rows listed one by one in a file's problems; the rest are counted
 
 
 def file_format(path: Path) -> str:
@@ -46,10 +50,18 @@ def prepare_connection(con: duckdb.DuckDBPyConnection) -> None:
     con.execute(sql("load_macro_code.sql"))
 
 
+def literal_path(path: Path) -> str:
+    """`path` as DuckDB's readers take it with every glob character (`*`, `?`, `[`) matched
+    literally (`[*]`, `[?]`, `[[]`): a wave's file name is a name, never a pattern."""
+    return re.sub(r"([*?\[])", r"[\1]", str(path))
+
+
 def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str]:
     """Load `path` into the temp table `table` (text columns); return the file's column names in order.
 
-    Raises DataError (rule missing-file or unreadable-file) naming the file when it cannot be read.
+    Raises DataError naming the file when it cannot be read: missing-file, empty-file,
+    duplicate-column (with the 1-based positions), not-utf8 and ragged-row (with the line numbers
+    and the field counts), unreadable-file (the reader's own message) for anything else.
     """
     path = Path(path)
     if not path.is_file():
@@ -59,20 +71,141 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
         )
     fmt = file_format(path)
     prepare_connection(con)
+    header: list[str] = []
     try:
         if fmt == "parquet":
-            params = {"path": str(path)}
+            params = {"path": literal_path(path)}
             columns = _columns(con.execute(sql("load_describe_parquet.sql"), params).fetchall())
             con.execute(sql("load_parquet.sql", table=table, columns=columns), params)
         else:
-            con.execute(sql("load_csv.sql", table=table), {"path": str(path)})
+            header = csv_header(path)
+            params = {"path": literal_path(path), "columns": dict.fromkeys(header, "VARCHAR")}
+            con.execute(sql("load_csv.sql", table=table), params)
             columns = _columns(con.execute(sql("load_describe_table.sql", table=table)).fetchall())
     except duckdb.Error as exc:
+        problems = csv_problems(path, len(header)) if fmt == "csv" else []
         raise DataError(
             f"cannot read {path}",
-            [Problem("unreadable-file", f"the {fmt} file cannot be read: {exc}", file=str(path))],
+            problems or [Problem("unreadable-file", f"the {fmt} file cannot be read: {_reader_message(exc)}", file=str(path))],
         ) from None
     return [c["name"] for c in columns]
+
+
+def checked_csv_header(path: Path) -> list[str]:
+    """The column names of a CSV file after one strict reading pass over the whole file (DuckDB,
+    nothing kept): DataError listing every ragged row, non-UTF-8 line, duplicate name, or an empty
+    file. For readers that are not strict themselves (polars pads short rows); polars also keeps
+    a doubled quote in a quoted header name, so callers use these names."""
+    header = csv_header(path)
+    con = duckdb.connect()
+    try:
+        con.execute(sql("load_csv_check.sql"), {"path": literal_path(path), "columns": dict.fromkeys(header, "VARCHAR")})
+    except duckdb.Error as exc:
+        problems = csv_problems(path, len(header))
+        raise DataError(
+            f"cannot read {path}",
+            problems or [Problem("unreadable-file", f"the csv file cannot be read: {_reader_message(exc)}", file=str(path))],
+        ) from None
+    finally:
+        con.close()
+    return header
+
+
+def csv_header(path: Path) -> list[str]:
+    """The column names of a CSV file's header line; DataError for an empty file, a header that is
+    not UTF-8, or a name given twice (rule duplicate-column, naming its positions)."""
+    with open(path, "rb") as raw:
+        first = raw.readline()
+        try:
+            first.decode("utf-8")
+        except UnicodeDecodeError:
+            raise DataError(f"cannot read {path}", [_not_utf8(path, [1], 1)]) from None
+        raw.seek(0)
+        text = io.TextIOWrapper(raw, encoding="utf-8-sig", errors="replace", newline="")
+        header = next(csv.reader(text), [])
+    if not any(name.strip() for name in header):
+        raise DataError(
+            f"cannot read {path}",
+            [Problem("empty-file", "the file is empty: a CSV wave file starts with a header line of column names", file=str(path))],
+        )
+    positions: dict[str, list[int]] = {}
+    for position, name in enumerate(header, start=1):
+        positions.setdefault(name, []).append(position)
+    duplicates = [
+        Problem(
+            "duplicate-column",
+            f"the header names column '{name}' {len(where)} times (positions {', '.join(map(str, where))}); "
+            "give each column its own name",
+            file=str(path),
+            line=1,
+            column=name,
+        )
+        for name, where in positions.items()
+        if len(where) > 1
+    ]
+    if duplicates:
+        raise DataError(f"cannot read {path}", duplicates)
+    return header
+
+
+def csv_problems(path: Path, expected: int) -> list[Problem]:
+    """Why a CSV file does not read: its lines that are not UTF-8, and its rows whose field count
+    differs from the header's `expected` (one ragged-row problem per row, up to MAX_LISTED, then
+    a count of the rest). Only called once the reader has failed, so speed does not matter."""
+    bad_lines = []
+    with open(path, "rb") as raw:
+        for number, line in enumerate(raw, start=1):
+            try:
+                line.decode("utf-8")
+            except UnicodeDecodeError:
+                bad_lines.append(number)
+    problems = [_not_utf8(path, bad_lines, len(bad_lines))] if bad_lines else []
+    ragged: list[Problem] = []
+    count = 0
+    with open(path, encoding="utf-8-sig", errors="replace", newline="") as text:
+        reader = csv.reader(text)
+        next(reader, None)
+        for record in reader:
+            if record and len(record) != expected:
+                count += 1
+                if len(ragged) < MAX_LISTED:
+                    ragged.append(
+                        Problem(
+                            "ragged-row",
+                            f"this row has {len(record)} field{'s' if len(record) != 1 else ''} but the header has "
+                            f"{expected}; a summary line, an unquoted comma or a missing field?",
+                            file=str(path),
+                            line=reader.line_num,
+                            value=",".join(record)[:60],
+                        )
+                    )
+    if count > len(ragged):
+        ragged.append(
+            Problem("ragged-row", f"{count - len(ragged)} more rows with the wrong number of fields", file=str(path), count=count - len(ragged))
+        )
+    return problems + ragged
+
+
+def _not_utf8(path: Path, lines: list[int], count: int) -> Problem:
+    shown = ", ".join(map(str, lines[:MAX_LISTED])) + (", ..." if count > MAX_LISTED else "")
+    return Problem(
+        "not-utf8",
+        f"line{'s' if count != 1 else ''} {shown} {'are' if count != 1 else 'is'} not UTF-8 text; "
+        "the file must be saved as UTF-8",
+        file=str(path),
+        line=lines[0],
+        count=count,
+    )
+
+
+def _reader_message(exc: duckdb.Error) -> str:
+    """The reader's own explanation: its first lines, without the SQL, the settings or the hints."""
+    kept = []
+    for line in str(exc).splitlines():
+        if not line.strip() or line.startswith(("LINE ", "Possible", "*", "  ")):
+            break
+        kept.append(line.strip())
+    return " ".join(kept) or type(exc).__name__
 
 
 def _columns(described: list[tuple]) -> list[dict[str, str]]:

@@ -61,6 +61,8 @@ class Design:
     (probability proportional to size: no finite population correction, with-replacement variance,
     unless psu_inclusion_probability names a column of each PSU's first-stage inclusion
     probability, which gives the (1 - pi) approximation of pipeline.estimation.design).
+    extreme_weight_ratio: staging warns (extreme-weight, naming the ids) about a design weight above
+    this multiple of the wave's median weight (default 1,000: common practice, no source).
     same_psus_across_waves: the waves re-interview the same PSUs (a panel of areas), so wave-over-wave
     changes are estimated on the waves stacked into one design (pipeline.tables.wave_change).
     """
@@ -78,6 +80,7 @@ class Design:
     second_stage_fraction: float = 0.0
     first_stage: Literal["equal", "pps"] = "equal"
     psu_inclusion_probability: str | None = None
+    extreme_weight_ratio: float = 1000.0
     same_psus_across_waves: bool = False
 
     @property
@@ -208,6 +211,7 @@ _DESIGN_KEYS = (
     "second_stage_fraction",
     "first_stage",
     "psu_inclusion_probability",
+    "extreme_weight_ratio",
     "same_psus_across_waves",
 )
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
@@ -256,6 +260,16 @@ def load_spec(path: str | Path) -> Study:
         raise SpecError(
             f"cannot read the study spec {spec_path}",
             [Problem("missing-file", f"the spec file {spec_path} does not exist", file=str(spec_path))],
+        ) from None
+    except IsADirectoryError:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("not-a-file", "this is a folder; name the study's .toml file", file=str(spec_path))],
+        ) from None
+    except OSError as exc:
+        raise SpecError(
+            f"cannot read the study spec {spec_path}",
+            [Problem("unreadable-file", f"{exc.strerror or exc}", file=str(spec_path))],
         ) from None
     except UnicodeDecodeError as exc:
         raise SpecError(
@@ -662,6 +676,10 @@ class _Checker:
             self.add("conflicting-keys", "design.second_stage_fraction",
                      "second_stage_fraction only applies with design.psu and a finite population correction "
                      "(population, sampling_fraction or psu_inclusion_probability)")
+        ratio = self.typed(raw, "design", "extreme_weight_ratio", float)
+        if ratio is not None and not ratio > 1:
+            self.add("bad-value", "design.extreme_weight_ratio", f"must be above 1, not {ratio}", value=ratio)
+            ratio = None
         same_psus = self.typed(raw, "design", "same_psus_across_waves", bool)
         return Design(
             kind=kind,  # type: ignore[arg-type]
@@ -677,6 +695,7 @@ class _Checker:
             second_stage_fraction=float(second) if second is not None else 0.0,
             first_stage=first_stage,  # type: ignore[arg-type]
             psu_inclusion_probability=inclusion,
+            extreme_weight_ratio=float(ratio) if ratio is not None else 1000.0,
             same_psus_across_waves=bool(same_psus),
         )
 

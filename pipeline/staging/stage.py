@@ -2,15 +2,14 @@
 
 `stage_wave` reads the file into a temp table of text (pipeline.staging.readers), runs every check
 (pipeline.staging.checks) and, only when no check fails, writes the wave in ONE transaction: add the
-columns the spec gained, delete the wave's old rows, insert the typed rows, record the wave in
-`waves` and its warnings in `problems`. Any failure rolls the transaction back, so the database
-is exactly as it was. Staging one wave never touches another wave's rows.
+columns the spec gained, delete the wave's old rows and their weights, insert the typed rows,
+record the wave in `waves` and its warnings in `problems`. Any failure rolls the transaction
+back, so the database is exactly as it was. Staging one wave never touches another wave's rows.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import hashlib
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -18,6 +17,7 @@ from pathlib import Path
 import duckdb
 
 from pipeline.errors import DataError, Problem
+from pipeline.outputs import file_sha256, same_file
 from pipeline.progress import step
 from pipeline.sqlfiles import sql
 from pipeline.staging.checks import run_checks
@@ -61,12 +61,6 @@ class StageReport:
         return text + f" ({self.seconds:.1f} s)"
 
 
-def file_sha256(path: Path) -> str:
-    """Hex SHA-256 of a file's bytes (read in chunks)."""
-    with open(path, "rb") as handle:
-        return hashlib.file_digest(handle, "sha256").hexdigest()
-
-
 def check_wave(study: Study, wave_id: str) -> list[Problem]:
     """Every problem (errors and warnings) staging `wave_id` would meet; writes nothing.
 
@@ -80,9 +74,34 @@ def check_wave(study: Study, wave_id: str) -> list[Problem]:
         con = duckdb.connect()
         prepare_connection(con)
     try:
-        return _inspect(con, study, wave, quiet=True)
+        problems = _inspect(con, study, wave, quiet=True)
     finally:
         con.close()
+    if any(p.severity == "error" for p in problems):
+        return problems
+    return problems + weighting_rehearsal(study, wave)
+
+
+def weighting_rehearsal(study: Study, wave: Wave) -> list[Problem]:
+    """What weighting `wave` would meet in `wavebook run`, found without writing anything: the wave
+    is staged into a private in-memory database and the study's weighting fitted on it, exactly as
+    `run` does, so `check` sees what only the data can tell (targets naming margins or categories
+    the data lack, a target category without respondents, infeasible trimming bounds...). Returns
+    the fit's errors (or its warnings when it succeeds)."""
+    from pipeline.errors import WavebookError
+    from pipeline.weighting.store import fit_wave
+
+    con = duckdb.connect()
+    try:
+        prepare_connection(con)
+        read_raw(con, wave.file, RAW_TABLE)
+        _write(con, study, wave, digest="", warnings=[])
+        recipe, _ = fit_wave(study, wave.id, con=con)
+    except WavebookError as exc:
+        return exc.problems or [Problem("weighting", exc.summary, file=str(wave.file))]
+    finally:
+        con.close()
+    return list(recipe.warnings)
 
 
 def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageReport:
@@ -130,15 +149,50 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     )
 
 
+def shared_file_problems(study: Study, wave: Wave) -> list[Problem]:
+    """Errors (rule same-file-two-waves) naming both wave ids when `wave`'s raw file is another
+    wave's file: the same file however its path is spelled, or a file with the same bytes
+    (SHA-256; only files of equal size are hashed). Staging it would replace one wave with the other."""
+    if not wave.file.is_file():
+        return []
+    size = wave.file.stat().st_size
+    digest: str | None = None
+    problems = []
+    for other in study.waves:
+        if other.id == wave.id or not other.file.is_file():
+            continue
+        if same_file(wave.file, other.file):
+            reason = "is the same file as"
+        elif other.file.stat().st_size == size:
+            digest = digest or file_sha256(wave.file)
+            if file_sha256(other.file) != digest:
+                continue
+            reason = "has the same bytes (SHA-256) as"
+        else:
+            continue
+        problems.append(
+            Problem(
+                "same-file-two-waves",
+                f"the raw file of wave {wave.id} {reason} the raw file of wave {other.id} ({other.file}); "
+                "each wave needs its own file: fix `file =` of one of them",
+                file=str(wave.file),
+                value=f"{wave.id}, {other.id}",
+            )
+        )
+    return problems
+
+
 def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool) -> list[Problem]:
-    """Read the wave's file into the raw temp table and run every check; return the problems."""
+    """Check the wave's file is its own, read it into the raw temp table and run every check;
+    return the problems."""
+    shared = shared_file_problems(study, wave)
     try:
         with step(f"{wave.id}: reading {wave.file.name}", quiet=quiet):
             file_columns = read_raw(con, wave.file, RAW_TABLE)
     except DataError as exc:
-        return exc.problems
+        return shared + exc.problems
     with step(f"{wave.id}: checking", quiet=quiet):
-        return run_checks(
+        return shared + run_checks(
             con,
             study,
             raw=RAW_TABLE,
@@ -160,7 +214,9 @@ def _earlier_staged(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) ->
 def _write(
     con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, digest: str, warnings: list[Problem]
 ) -> tuple[int, int, list[str]]:
-    """One transaction: new columns, delete the wave, insert its rows, record it; (rows, replaced, added)."""
+    """One transaction: new columns, delete the wave with its weights and weighting diagnostics (they
+    belong to the old rows; the next `weigh` or `run` weighs the new ones), insert its rows, record
+    it; (rows, replaced, added)."""
     con.begin()
     try:
         create_tables(con, study)
@@ -168,6 +224,8 @@ def _write(
         params = {"wave": wave.id}
         replaced = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
         con.execute(sql("stage_delete_wave.sql"), params)
+        for (table,) in con.execute(sql("stage_weighting_tables.sql")).fetchall():
+            con.execute(sql("weighting_delete_wave.sql", table=table), params)
         _insert_rows(con, study, wave)
         rows = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
         now = dt.datetime.now(dt.UTC).replace(tzinfo=None)

@@ -11,44 +11,37 @@ change_from_previous, se_change, change_mark, note). A suppressed or empty cell 
 or "independence" (Rao-Scott, `column_a` names the break); t tests report statistic t with
 df_num 1 and df_den the t's degrees of freedom; the independence test reports F, df_num, df_den.
 
-Each file is written to a temporary file in the destination folder and moved into place, so a
-failure never leaves a half-written export. No respondent-level value is written.
+Each path is checked before the run like the book's (`pipeline.outputs.check_output`) and written
+to a temporary file in the destination folder, then moved into place, so a failure never leaves a
+half-written export. No respondent-level value is written.
 """
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import polars as pl
 
+from pipeline.outputs import write_output
 from pipeline.tables import BannerTables
 
 
-def _atomic(path: Path, write) -> None:  # noqa: ANN001 - a polars writer method
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    os.close(fd)
-    try:
-        write(tmp)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+def export_paths(book: Path, *, xlsx: bool = False) -> list[Path]:
+    """The files beside `book`: `<stem>_cells.csv/.parquet`, `<stem>_tests.csv/.parquet` (and `<stem>_tables.xlsx`)."""
+    book = Path(book)
+    paths = [book.with_name(f"{book.stem}_{name}.{suffix}") for name in ("cells", "tests") for suffix in ("csv", "parquet")]
+    return paths + ([book.with_name(f"{book.stem}_tables.xlsx")] if xlsx else [])
 
 
-def write_exports(tables: BannerTables, folder: Path, stem: str) -> list[Path]:
-    """Write `<stem>_cells.csv/.parquet` and `<stem>_tests.csv/.parquet` into `folder`; returns the paths."""
-    written = []
-    for name, frame in (("cells", tables.cells), ("tests", tables.tests)):
-        for suffix in ("csv", "parquet"):
-            path = Path(folder) / f"{stem}_{name}.{suffix}"
-            writer = frame.write_csv if suffix == "csv" else frame.write_parquet
-            _atomic(path, writer)
-            written.append(path)
-    return written
+def write_exports(tables: BannerTables, paths: list[Path]) -> list[Path]:
+    """Write the cells and tests files to `paths` (`export_paths` order), each through
+    `pipeline.outputs.write_output` (temporary file, rename, recorded as wavebook's output)."""
+    frames = {"cells": tables.cells, "tests": tables.tests}
+    for path in paths:
+        frame = frames[path.stem.rsplit("_", 1)[1]]
+        writer = frame.write_csv if path.suffix == ".csv" else frame.write_parquet
+        write_output(path, writer)
+    return paths
 
 
 def read_export(path: Path) -> pl.DataFrame:

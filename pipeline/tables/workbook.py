@@ -17,6 +17,7 @@ from pathlib import Path
 import polars as pl
 
 from pipeline.errors import Problem, SpecError
+from pipeline.outputs import write_output
 from pipeline.staging.spec import Study
 from pipeline.tables import BannerTables
 
@@ -42,11 +43,12 @@ def write_workbook(tables: BannerTables, study: Study, path: Path) -> Path:
     except ImportError:
         problem = Problem("missing-extra", "the workbook writer is not installed: pip install 'wavebook[xlsx]'")
         raise SpecError("cannot write the banner workbook", [problem]) from None
+    return write_output(Path(path), lambda tmp: _write(xlsxwriter, tables, study, Path(tmp)))
+
+
+def _write(xlsxwriter, tables: BannerTables, study: Study, tmp: Path) -> None:  # noqa: ANN001 - the module
     cells = tables.cells
     levels = tables.spec.levels
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial")
     book = xlsxwriter.Workbook(str(tmp), {"nan_inf_to_errors": True})
     try:
         bold = book.add_format({"bold": True})
@@ -110,9 +112,5 @@ def write_workbook(tables: BannerTables, study: Study, path: Path) -> Path:
                       f"{LOW_BASE} fewer than {tables.spec.low_base} respondents (not tested).")
             sheet.write(r, 0, legend, note)
             sheet.write(r + 1, 0, tables.chance.sentence(), note)
+    finally:
         book.close()
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    tmp.replace(path)
-    return path

@@ -94,7 +94,7 @@ class NonresponseResult:
 
 def adjust_nonresponse(data: pl.DataFrame, base: np.ndarray, step: NonresponseStep, *, id_column: str) -> NonresponseResult:
     """Weighting-class nonresponse adjustment (see module docstring); all status problems in one DataError."""
-    where = f"weighting[{step.index}]"
+    where = f"weighting step {step.index + 1}"
     status = data[step.status].cast(pl.String)
     responded = status.is_in(list(step.responded)).fill_null(False).to_numpy()
     nonresp = status.is_in(list(step.nonrespondent)).fill_null(False).to_numpy()

@@ -97,7 +97,7 @@ class _RakeOp:
                          "PSUs left these margins unreachable or slow to reach; collapse categories so each spans "
                          "several PSUs, or") if self.reference is not None else ";"
             raise DataError(
-                f"weighting[{self.index}] ({self.kind}) did not converge in {fit.iterations} iteration(s) "
+                f"weighting step {self.index + 1} ({self.kind}) did not converge in {fit.iterations} iteration(s) "
                 f"(tolerance {self.tolerance:g}){replicate} set allow_nonconvergence = true to accept it with a warning",
                 [Problem("rake-nonconvergence", f"margin '{m.name}': remaining relative discrepancy {d:.3e}"
                          + (f"; {e} empty category-replicate pair(s)" if e else ""), column=m.name)
@@ -146,20 +146,20 @@ class _CalibrateOp:
             fit = calibrate(current, self.aux(), self.targets(pop), distance=self.distance, bounds=self.bounds,
                             tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
         except np.linalg.LinAlgError as exc:
-            raise DataError(f"weighting[{self.index}] (calibrate): the auxiliary variables are collinear among the "
+            raise DataError(f"weighting step {self.index + 1} (calibrate): the auxiliary variables are collinear among the "
                             "respondents (a category with no weight, or a numeric variable that is constant)") from exc
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {"all calibration totals": fit.discrepancy}, "population": float(pop[0])}
         if not fit.converged:
             raise DataError(
-                f"weighting[{self.index}] (calibrate, {self.distance}) did not converge in {fit.iterations} Newton "
+                f"weighting step {self.index + 1} (calibrate, {self.distance}) did not converge in {fit.iterations} Newton "
                 f"step(s): largest relative miss {fit.discrepancy:.3e}"
                 + (f"; the bounds {self.bounds} may be too tight for these targets" if self.bounds else ""),
                 [Problem("calibration-nonconvergence", "calibration equations not solved", column=", ".join(
                     [m.name for m in self.margins] + self.numeric_names))],
             )
         if (fit.factors <= 0).any():
-            raise DataError(f"weighting[{self.index}] (calibrate, linear): some weights came out zero or negative "
+            raise DataError(f"weighting step {self.index + 1} (calibrate, linear): some weights came out zero or negative "
                             f"({int((fit.factors <= 0).sum())} class(es)); use distance = \"logit\" with bounds")
         if self.start is None:
             self.start = fit.lam[:, 0].copy()
@@ -218,7 +218,7 @@ class FittedRecipe:
         """Record (once per margin) a warning when a replicate left a margin category without weight."""
         for op in self.ops:
             for name, count in op.last.get("empty", {}).items():
-                message = (f"weighting[{op.index}]: in some replicates category(ies) of margin '{name}' had no weight "
+                message = (f"weighting step {op.index + 1}: in some replicates category(ies) of margin '{name}' had no weight "
                            "and were left unadjusted; collapse categories so each spans several PSUs")
                 if all(p.message != message for p in self.warnings):
                     self.warnings.append(Problem("replicate-empty-category", message, severity="warning", column=name,
@@ -255,7 +255,7 @@ def _build_ops(steps: Sequence[Step], classes: ClassIndex, data: pl.DataFrame, c
     notes: dict[int, list[str]] = {}
     problems: list[Problem] = []
     for s in steps:
-        where = f"weighting[{s.index}]"
+        where = f"weighting step {s.index + 1}"
         if isinstance(s, PoststratifyStep):
             margins, note, probs = build_margins(classes, [s.cells], s.targets, code_order=code_order, collapse=s.collapse, where=where)
             ops[s.index] = _RakeOp(s.index, "poststratify", margins, _population(margins, s.total),
@@ -337,7 +337,7 @@ def _bounded_rake(op: _RakeOp, classes: ClassIndex, w: np.ndarray, lower: float,
         if max(worst, default=0.0) <= op.tolerance:
             return w
     raise DataError(
-        f"weighting[{op.index}] margins cannot be met with every weight within [{lower:.4g}, {upper:.4g}] "
+        f"weighting step {op.index + 1} margins cannot be met with every weight within [{lower:.4g}, {upper:.4g}] "
         f"(raking with bounds, {rounds} cycles); widen the trimming bounds or collapse categories",
         [Problem("trim-infeasible", f"margin '{m.name}': remaining relative discrepancy {d:.3e}", column=m.name)
          for m, d in zip(op.margins, worst)],
@@ -364,7 +364,7 @@ def _trim(step: TrimStep, ops: list, classes: ClassIndex, base: np.ndarray, weig
     with bounds (`_bounded_rake`); then t = trimmed / (base * f) and rounds of trim-and-refit
     (t_i *= bound / w_i for weights outside, then the class steps re-run) settle any remainder."""
     lower, upper = _bounds(step, weights_in)
-    where = f"weighting[{step.index}] (trim)"
+    where = f"weighting step {step.index + 1} (trim)"
     conflicts: list[Problem] = []
     t = np.ones_like(base)
     if ops and isinstance(ops[-1], _RakeOp):
@@ -442,7 +442,7 @@ def fit_recipe(
         weights = base * _chain_factors(ops, classes, base)[classes.index]
         step_warn = []
         if not op.last["converged"]:
-            step_warn.append(Problem("rake-nonconvergence", f"weighting[{s.index}] accepted without convergence: "
+            step_warn.append(Problem("rake-nonconvergence", f"weighting step {s.index + 1} accepted without convergence: "
                                      + ", ".join(f"'{k}' {v:.2e}" for k, v in op.last["discrepancy"].items()),
                                      severity="warning"))
         warnings += step_warn

@@ -142,7 +142,7 @@ class _Reader:
         self.raw, self.where, self.problems = raw, where, problems
 
     def bad(self, key: str, message: str) -> None:
-        self.problems.append(Problem("spec-weighting", f"{self.where}.{key}: {message}"))
+        self.problems.append(Problem("spec-weighting", f"{self.where}, {key}: {message}"))
 
     def number(self, key: str, default: float | None, *, positive: bool = True) -> float | None:
         value = self.raw.get(key, default)
@@ -214,6 +214,22 @@ def _margins(r: _Reader, key: str, known: set[str], *, required: bool) -> tuple[
     return margins
 
 
+def _unknown_target_variables(r: _Reader, targets: TargetTable, variables: set[str]) -> None:
+    """A margin of the targets naming a variable the codebook lacks (a misspelling, say) is an
+    error here, before any data is read, with the closest codebook names as a hint."""
+    import difflib
+
+    if not variables:  # no codebook to compare with
+        return
+    key = "targets" if "targets" in r.raw else "totals"
+    for margin in targets.margins:
+        for name in split_margin(margin):
+            if name not in variables:
+                close = difflib.get_close_matches(name, sorted(variables), n=2)
+                hint = f"; did you mean {' or '.join(repr(c) for c in close)}?" if close else ""
+                r.bad(key, f"the targets name margin '{margin}', but '{name}' is not a codebook variable{hint}")
+
+
 def _targets(r: _Reader, folder: Path) -> TargetTable:
     has_file, has_inline = "targets" in r.raw, "totals" in r.raw
     if has_file == has_inline:
@@ -223,9 +239,9 @@ def _targets(r: _Reader, folder: Path) -> TargetTable:
         if not isinstance(r.raw["targets"], str):
             r.bad("targets", f"must be a file path, got {r.raw['targets']!r}")
             return TargetTable({}, source=r.where)
-        table, problems = read_targets_csv(folder / r.raw["targets"], where=f"{r.where}.targets")
+        table, problems = read_targets_csv(folder / r.raw["targets"], where=f"{r.where}, targets")
     else:
-        table, problems = inline_targets(r.raw["totals"], where=f"{r.where}.totals")
+        table, problems = inline_targets(r.raw["totals"], where=f"{r.where}, totals")
     r.problems.extend(problems)
     return table if table is not None else TargetTable({}, source=r.where)
 
@@ -255,13 +271,13 @@ def _collapse(r: _Reader, known: set[str]) -> Collapse | None:
 
 
 def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem]) -> Step | None:
-    where = f"weighting[{i}]"
+    where = f"weighting step {i + 1}"
     if not isinstance(raw, dict):
         problems.append(Problem("spec-weighting", f"{where}: each [[weighting]] entry must be a table"))
         return None
     kind = raw.get("step")
     if kind not in _KEYS:
-        problems.append(Problem("spec-weighting", f"{where}.step: must be one of {', '.join(sorted(_KEYS))}, got {kind!r}"))
+        problems.append(Problem("spec-weighting", f"{where}, step: must be one of {', '.join(sorted(_KEYS))}, got {kind!r}"))
         return None
     r = _Reader(raw, where, problems)
     for key in sorted(set(raw) - _KEYS[kind]):
@@ -295,6 +311,7 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
         return TrimStep(i, upper, lower, relative_to, r.integer("max_rounds", 100))
     collapse = _collapse(r, known)
     targets = _targets(r, folder)
+    _unknown_target_variables(r, targets, set(context.variable_types))
     total = r.number("total", None)
     if kind == "poststratify":
         if "cells" not in raw:
@@ -338,7 +355,8 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
 def parse_steps(raw: tuple[dict, ...], context: StepContext) -> list[Step]:
     """Parse the raw `[[weighting]]` tables against the study's `context`; every problem is collected into one SpecError.
 
-    Problems name the key, e.g. `weighting[2].margins[0]`. Targets files are read here (paths relative
+    Problems name the step as the user counts the [[weighting]] blocks, from 1, and the key, e.g.
+    `weighting step 3, margins[0]`. Targets files are read here (paths relative
     to `context.folder`, the spec's folder) so their problems are reported with the spec's.
     """
     problems: list[Problem] = []

@@ -138,19 +138,15 @@ def export_weights(con: duckdb.DuckDBPyConnection, wave_ids: list[str], path: Pa
 
 
 def write_frame(frame: pl.DataFrame, path: Path) -> None:
-    """Write a frame to `path` (.csv or .parquet) through a temporary file renamed into place."""
+    """Write a frame to `path` (.csv or .parquet) through `pipeline.outputs.write_output` (a
+    temporary file renamed into place, recorded as wavebook's own output). The caller checks
+    `path` first with `pipeline.outputs.check_output`."""
+    from pipeline.outputs import write_output
+
     suffix = path.suffix.lower()
     if suffix not in (".csv", ".parquet"):
         raise WavebookError(f"cannot write {path}: the file name must end in .csv or .parquet")
-    tmp = path.with_name(f".{path.name}.tmp")
-    try:
-        if suffix == ".csv":
-            frame.write_csv(tmp)
-        else:
-            frame.write_parquet(tmp)
-        tmp.replace(path)
-    finally:
-        tmp.unlink(missing_ok=True)
+    write_output(path, frame.write_csv if suffix == ".csv" else frame.write_parquet)
 
 
 def weights_array(frame: pl.DataFrame, column: str) -> np.ndarray:

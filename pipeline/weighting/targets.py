@@ -9,7 +9,7 @@ the codes with " x ". Targets of one margin are proportions (they sum to 1) or c
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 from pipeline.errors import Problem
@@ -54,6 +54,7 @@ def _add(
     margin: str,
     category: str,
     raw_target: object,
+    line: int | None = None,
 ) -> None:
     variables = split_margin(margin)
     codes = split_category(category)
@@ -65,51 +66,93 @@ def _add(
                 f"crosses {len(variables)} variable(s); join one code per variable with ' x '",
                 column=margin,
                 value=str(category),
+                line=line,
             )
+        )
+        return
+    if isinstance(raw_target, str) and not raw_target.strip():
+        problems.append(
+            Problem("target-value", f"{where}: the target of category '{category}' is empty", column=margin, value=category, line=line)
         )
         return
     try:
         target = float(raw_target)  # type: ignore[arg-type]
     except (TypeError, ValueError):
         problems.append(
-            Problem("target-value", f"{where}: target '{raw_target}' is not a number", column=margin, value=category)
+            Problem("target-value", f"{where}: target '{raw_target}' is not a number", column=margin, value=category, line=line)
         )
         return
     if not target >= 0 or target == float("inf"):
         problems.append(
-            Problem("target-value", f"{where}: target {raw_target} must be a finite number >= 0", column=margin, value=category)
+            Problem("target-value", f"{where}: target {raw_target} must be a finite number >= 0", column=margin, value=category,
+                    line=line)
         )
         return
     cells = margins.setdefault(margin_name(variables), {})
     if codes in cells:
         problems.append(
-            Problem("target-duplicate", f"{where}: category '{category}' of margin '{margin}' is listed twice", column=margin, value=category)
+            Problem("target-duplicate", f"{where}: category '{category}' of margin '{margin}' is listed twice", column=margin,
+                    value=category, line=line)
         )
         return
     cells[codes] = target
 
 
 def read_targets_csv(path: Path, *, where: str) -> tuple[TargetTable | None, list[Problem]]:
-    """Read a long targets CSV (`variable,category,target`); returns the table and every problem found."""
-    import polars as pl
+    """Read a long targets CSV (`variable,category,target`); returns the table and every problem found.
 
-    problems: list[Problem] = []
+    The file is read with the standard csv module (targets files are small), so each problem names
+    its line: target-file for a missing, unreadable, empty, non-UTF-8 or semicolon-separated file or
+    a wrong header; ragged-row for a row whose field count differs from the header's; and the
+    problems of each target (target-category, target-value, target-duplicate).
+    """
+    import csv
+    import io
+
     if not path.is_file():
         return None, [Problem("target-file", f"{where}: targets file not found", file=str(path))]
-    frame = pl.read_csv(path, infer_schema=False)
-    missing = [c for c in ("variable", "category", "target") if c not in frame.columns]
+
+    def unusable(message: str, line: int | None = None) -> tuple[None, list[Problem]]:
+        return None, [Problem("target-file", f"{where}: {message}", file=str(path), line=line)]
+
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        return unusable(f"the targets file cannot be read ({exc.strerror or exc})")
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        return unusable(f"line {line} is not UTF-8 text; the targets file must be saved as UTF-8", line)
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header = [cell.strip() for cell in next(reader, [])]
+    if not any(header):
+        return unusable("the targets file is empty; it needs the header variable,category,target and one row per target", 1)
+    if len(header) == 1 and ";" in header[0]:
+        return unusable("the header is separated by semicolons; a targets file is comma-separated: variable,category,target", 1)
+    missing = [c for c in ("variable", "category", "target") if c not in header]
     if missing:
-        return None, [
-            Problem(
-                "target-file",
-                f"{where}: targets file lacks column(s) {', '.join(missing)}; the header must be variable,category,target",
-                file=str(path),
-            )
-        ]
+        return unusable(f"targets file lacks column(s) {', '.join(missing)}; the header must be variable,category,target", 1)
+    index = [header.index(c) for c in ("variable", "category", "target")]
     margins: dict[str, dict[tuple[str, ...], float]] = {}
-    for row in frame.select("variable", "category", "target").iter_rows():
-        _add(margins, problems, where=f"{where} ({path.name})", margin=str(row[0]), category=str(row[1]), raw_target=row[2])
-    problems = [Problem(**{**p.__dict__, "file": str(path)}) for p in problems]
+    problems: list[Problem] = []
+    label = f"{where} ({path.name})"
+    for record in reader:
+        if not any(cell.strip() for cell in record):
+            continue
+        if len(record) != len(header):
+            problems.append(
+                Problem(
+                    "ragged-row",
+                    f"{label}: this row has {len(record)} field(s) but the header has {len(header)}",
+                    line=reader.line_num,
+                    value=",".join(record)[:60],
+                )
+            )
+            continue
+        margin, category, target = (record[i].strip() for i in index)
+        _add(margins, problems, where=label, margin=margin, category=category, raw_target=target, line=reader.line_num)
+    problems = [replace(p, file=str(path)) for p in problems]
     return TargetTable(margins, source=str(path)), problems
 
 

@@ -1,0 +1,95 @@
+"""Issue 8, item 12: small command defects (weigh without a database, row numbers called ids,
+quoted column names, step numbers), each reproduced first.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from pathlib import Path
+
+import pytest
+from conftest import TRACKER_SPEC, Tracker, tracker_rows, write_csv
+from safety_support import AGE_TARGETS, fingerprint, wavebook
+
+
+def test_weigh_without_a_database_is_an_error(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    before = fingerprint(tracker.folder)
+    code, out, err = wavebook(["weigh", str(tracker.spec_path), "--quiet"], capsys)
+    assert (code, out, "[database-missing]" in err) == (1, "", True)
+    assert fingerprint(tracker.folder) == before  # and no empty database left behind
+
+
+def test_rake_names_row_numbers_as_rows_not_ids(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rows = tracker_rows(12)
+    rows[7]["p_select"] = "-1"
+    data = write_csv(tmp_path / "data.csv", rows)
+    (tmp_path / "targets.csv").write_text(AGE_TARGETS, encoding="utf-8")
+    code, _, err = wavebook(["rake", str(data), "--targets", str(tmp_path / "targets.csv"), "--weight", "p_select"], capsys)
+    assert code == 1
+    assert "e.g. rows 8" in err and "ids 8" not in err
+
+
+QUOTED = 'rec"om'
+
+
+def _quoted_file(tmp_path: Path) -> Path:
+    rows = [{**row, QUOTED: row["spend"] or "0"} for row in tracker_rows(12)]
+    return write_csv(tmp_path / "data.csv", rows)
+
+
+def test_estimate_reads_a_column_name_with_a_quote(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data = _quoted_file(tmp_path)
+    code, out, err = wavebook(["estimate", str(data), "--weight", "area", "--mean", QUOTED, "--quiet"], capsys)
+    assert code == 0, err
+    (row,) = list(csv.DictReader(io.StringIO(out)))
+    assert row["variable"] == QUOTED
+    spends = [float(r["spend"] or 0) for r in tracker_rows(12)]
+    weights = [float(r["area"]) for r in tracker_rows(12)]
+    expected = sum(w * y for w, y in zip(weights, spends, strict=True)) / sum(weights)  # weighted mean, by definition
+    assert float(row["estimate"]) == pytest.approx(expected, rel=1e-12)
+
+
+def test_rake_reads_a_column_name_with_a_quote(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data = _quoted_file(tmp_path)
+    targets = tmp_path / "targets.csv"
+    targets.write_text(f'variable,category,target\n"{QUOTED.replace(chr(34), chr(34) * 2)}",0,1\n', encoding="utf-8")
+    rows = [{**row, QUOTED: "0"} for row in tracker_rows(12)]
+    write_csv(data, rows)
+    code, _, err = wavebook(["rake", str(data), "--targets", str(targets), "--quiet"], capsys)
+    assert code == 0, err
+
+
+def test_weighting_steps_are_numbered_from_one(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    tracker.write_spec(TRACKER_SPEC + '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band"]\ntotals = { age_band = { 1 = 1 } }\n'
+                       '\n[[weighting]]\nstep = "trim"\nupper = "high"\n')
+    code, _, err = wavebook(["check", str(tracker.spec_path)], capsys)
+    assert code == 1
+    assert "weighting step 2, upper" in err and "weighting[1]" not in err
+
+
+def _rake_study(tracker: Tracker, targets: str) -> None:
+    tracker.write_spec(TRACKER_SPEC + '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band", "channel"]\ntargets = "targets.csv"\n')
+    (tracker.folder / "targets.csv").write_text(targets, encoding="utf-8")
+
+
+def test_check_finds_a_misspelled_margin_in_the_targets_file(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    _rake_study(tracker, AGE_TARGETS.replace("age_band", "age_bnd") + "channel,shop,0.5\nchannel,web,0.5\n")
+    code, _, err = wavebook(["check", str(tracker.spec_path)], capsys)
+    assert code == 1
+    assert "'age_bnd' is not a codebook variable; did you mean 'age_band'?" in err
+
+
+def test_check_rehearses_the_weighting_run_would_do(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    """A target category the data and codebook lack ('phone') only shows once the data is read:
+    `check` fits the weighting in memory as `run` does, and fails where `run` would."""
+    _rake_study(tracker, AGE_TARGETS + "channel,shop,0.5\nchannel,web,0.3\nchannel,phone,0.2\n")
+    before = fingerprint(tracker.folder)
+    code, out, _ = wavebook(["check", str(tracker.spec_path)], capsys)
+    assert code == 1
+    assert "[target-unknown-category]" in out and "'phone'" in out
+    assert fingerprint(tracker.folder) == before  # check writes nothing
+    code_run, _, err_run = wavebook(["run", str(tracker.spec_path), "--quiet"], capsys)
+    assert code_run == 1 and "[target-unknown-category]" in err_run
+    _rake_study(tracker, AGE_TARGETS + "channel,shop,0.5\nchannel,web,0.5\n")
+    assert wavebook(["check", str(tracker.spec_path)], capsys)[0] == 0
