@@ -90,3 +90,27 @@ def test_difference_variances_add_the_within_psu_covariance():
     zero = np.zeros(len(g))
     np.testing.assert_allclose(cell["se"][0], 100 * np.sqrt(_direct(frame, (y == 2).astype(float),
                                                                     (g == 2).astype(float), zero)), rtol=1e-9)
+
+
+def test_joint_covariance_outer_product_form_equals_the_general_cross_moments():
+    """`joint_covariance_terms` (outer-product form for disjoint numerators over one joint base) equals
+    `covariance_terms` on the products named by `WavePlan.joint_cross`, pair by pair (an algebraic identity)."""
+    from pipeline.tables import design_inputs, wave_frame
+    from pipeline.tables.banners import build_banner
+    from pipeline.tables.cells import plan_wave
+    from pipeline.tables.fit import fit_wave
+
+    frame = _frame()
+    study = _study()
+    spec = TablesSpec(low_base=0, suppress_below=0, banners={"default": BannerSpec("default", ("g",))})
+    recipe = fit_recipe(frame, [], base_weights=frame["w"].to_numpy())
+    wp = plan_wave(study, spec, {"default": build_banner(study, spec.banners["default"])}, layout_rows(study),
+                   cross_cells=True)
+    rows = wave_frame(frame, recipe).with_columns(list(wp.derived.values()))
+    state = fit_wave(rows, wp.plan, wp.medians, design_inputs(study, recipe, VarianceOptions()), weight="__base_weight")
+    (_, _, idx), = [v for k, v in wp.joints.items() if k[0] == "y"]
+    flat = idx.ravel()
+    k = len(flat)
+    general = state.within.covariance_terms(np.repeat(flat, k), np.tile(flat, k), state.cross(wp.joint_cross(flat)))
+    outer = state.within.joint_covariance_terms(flat).reshape(-1, k * k)
+    np.testing.assert_allclose(outer, general, rtol=1e-10, atol=1e-18)
