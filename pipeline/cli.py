@@ -112,6 +112,10 @@ def _run(argv: Sequence[str] | None) -> int:
         print(f"error: cannot use{where}: {exc.strerror or exc}", file=sys.stderr)
         return EXIT_DATA
     except Exception as exc:
+        if _is_storage_error(exc):
+            print(f"error: the study database could not be read or written: {_first_line(exc)}; "
+                  "nothing was half-written (each write is one transaction)", file=sys.stderr)
+            return EXIT_DATA
         print(
             f"internal error: wavebook failed with {type(exc).__name__}: {_first_line(exc)}. "
             "Sorry, this is a bug; please report it with the output of the same command run with --debug.",
@@ -120,6 +124,15 @@ def _run(argv: Sequence[str] | None) -> int:
         if getattr(args, "debug", False):
             traceback.print_exc()
         return EXIT_BUG
+
+def _is_storage_error(exc: BaseException) -> bool:
+    """DuckDB's own I/O errors (a full disk, a file removed or made read-only while in use): a
+    problem of the machine, not of wavebook, reported like an OSError (exit 1)."""
+    return type(exc).__module__.split(".")[0] in ("duckdb", "_duckdb") and type(exc).__name__ in (
+        "IOException",
+        "PermissionException",
+    )
+
 
 def _first_line(exc: BaseException) -> str:
     text = str(exc).strip()

@@ -27,9 +27,10 @@ from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.outputs import check_output, file_sha256, study_inputs
-from pipeline.staging.database import load_responses, open_database, staged_waves
+from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
+from pipeline.staging.wave_columns import wave_signature
 from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.book_view import banner_views, legend
 from pipeline.tables.exports import export_paths, write_exports
@@ -59,10 +60,17 @@ def book_path(study: Study, out: str | Path | None, *, force: bool = False) -> P
 
 
 def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
-    """Ids of the waves to (re)stage, in spec order.
+    """Ids of the waves to (re)stage, in spec order (see `stage_reasons`)."""
+    return list(stage_reasons(study, restage=restage))
+
+
+def stage_reasons(study: Study, *, restage: bool = False) -> dict[str, str]:
+    """The waves to (re)stage, in spec order, each with why.
 
     A wave is staged when `restage` is set, when it is not in the database's `waves` table yet,
-    or when the SHA-256 of its raw file differs from the one recorded at its last staging.
+    when the SHA-256 of its raw file differs from the one recorded at its last staging, or when
+    the spec no longer says what its staged rows hold (its column set, file names, types, codes
+    or recodes changed: `pipeline.staging.wave_columns.wave_signature`).
     Raises DataError listing every wave whose raw file is missing.
     """
     missing = [
@@ -72,14 +80,26 @@ def waves_to_stage(study: Study, *, restage: bool = False) -> list[str]:
     ]
     if missing:
         raise DataError(f"cannot run {study.path}: wave files are missing", missing)
-    if restage or not study.database_path.is_file():
-        return [w.id for w in study.waves]
+    if restage:
+        return {w.id: "restage requested" for w in study.waves}
+    if not study.database_path.is_file():
+        return {w.id: "not staged yet" for w in study.waves}
     con = open_database(study, read_only=True)
     try:
-        recorded = dict(staged_waves(con).select("wave", "sha256").iter_rows())
+        recorded = {wave: (sha, signature) for wave, sha, signature in
+                    staged_waves(con).select("wave", "sha256", "spec_signature").iter_rows()}
     finally:
         con.close()
-    return [w.id for w in study.waves if recorded.get(w.id) != file_sha256(w.file)]
+    types = column_types(study)
+    reasons: dict[str, str] = {}
+    for w in study.waves:
+        if w.id not in recorded:
+            reasons[w.id] = "not staged yet"
+        elif recorded[w.id][0] != file_sha256(w.file):
+            reasons[w.id] = f"its file {w.file.name} changed"
+        elif recorded[w.id][1] != wave_signature(study, w.id, types):
+            reasons[w.id] = "the spec changed what it holds (columns, names, codes or recodes)"
+    return reasons
 
 
 def variance_options(study: Study) -> VarianceOptions:
@@ -93,17 +113,19 @@ def variance_options(study: Study) -> VarianceOptions:
 def weigh_and_estimate(
     study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False,
     tabulation: Tabulation | None = None,
-) -> tuple[pl.DataFrame, dict[str, WeightingReport]]:
+) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
     With `tabulation`, each weighted wave is also given to it (banner tables, `pipeline.tables`).
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
-    (wave, variable, row_order), and the weighting report of each wave. Weighting warnings go to
+    (wave, variable, row_order), the weighting report of each wave, and for replicate methods
+    each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting warnings go to
     stderr. Each wave's estimates come from one grouped pass over that wave's respondents.
     """
     wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
     reports: dict[str, WeightingReport] = {}
+    adjustments: dict[str, dict[str, int]] = {}
     estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
     con = open_database(study)
     try:
@@ -123,10 +145,12 @@ def weigh_and_estimate(
                     tabulation.add_wave(wave_id, responses, recipe, layout)
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
+            if options.method != "taylor":
+                adjustments[wave_id] = recipe.replicate_adjustments()
     finally:
         con.close()
     joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")
-    return joined, reports
+    return joined, reports, adjustments
 
 
 def run_study(
@@ -159,7 +183,10 @@ def run_study(
     exports = export_paths(out_path, xlsx=xlsx) if spec is not None else []
     for path in exports:
         check_output(path, study_inputs(study), force=force, option="--out")
-    for wave_id in waves_to_stage(study, restage=restage):
+    for wave_id, reason in stage_reasons(study, restage=restage).items():
+        if reason.startswith("the spec changed"):
+            print(f"wave {wave_id}: {reason} since it was staged; restaging it from {study.wave(wave_id).file}",
+                  file=sys.stderr)
         report = stage_wave(study, wave_id, quiet=quiet)
         if not quiet:
             print(report.summary(), file=sys.stderr)
@@ -172,9 +199,11 @@ def run_study(
         finally:
             con.close()
     tabulation = Tabulation(study, spec, options) if spec is not None else None
-    cells, reports = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
+    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
-    variance = variance_lines(options, study, calibrated=calibrated)
+    variance = variance_lines(options, study, calibrated=calibrated, replicate_adjustments=adjustments,
+                              replicates={w: options.replicates or 500 for w in adjustments}
+                              if options.method == "bootstrap" else None)
     banners: tuple = ()
     banner_legend: tuple[str, ...] = ()
     if tabulation is not None:

@@ -6,7 +6,14 @@ the fitted weighting recipe of each wave and the `[variance]` options, and retur
 
   category / net / item / missing rows: a weighted percentage, 100 * p with
       p = sum_i w_i a_i y_i / sum_i w_i a_i,   y_i = 1 when i's answer is in the row, a_i = 1 when
-      i is in the row's base (answered; for "missing" rows every respondent of the wave);
+      i is in the row's base (answered; for "missing" rows the respondents asked, for
+      "not-asked" rows every respondent of the wave; pipeline.staging.routing; for categories and
+      nets of a variable with `exclude_from_base` the answers outside those codes, for the
+      "excluded" rows of those codes the respondents asked);
+  balance rows: 100 * the weighted mean over the base of z_i = 1[plus] - 1[minus], i.e. the
+      percentage plus minus the percentage minus; its linearization is that of the difference of
+      the two percentages (same denominator), so its SE is the SE of the linear contrast,
+      var(p+) + var(p-) - 2 cov(p+, p-), covariance included; t interval;
   statistic "mean": the weighted mean of the answers (codes excluded from the statistics left out);
   statistic "median": the weighted median with its Woodruff (1952) interval; for a rating scale
       the interpolated median of grouped data (each answer k spread evenly over k -/+ 1/2,
@@ -39,6 +46,7 @@ import polars as pl
 from pipeline.estimation import estimate_table
 from pipeline.estimation.intervals import korn_graubard_interval
 from pipeline.estimation.options import VarianceOptions
+from pipeline.staging.routing import asked_column, flagged
 from pipeline.staging.spec import Study, Variable
 from pipeline.weighting import FittedRecipe
 
@@ -59,7 +67,7 @@ ESTIMATE_SCHEMA: dict[str, pl.DataType] = {
 _WEIGHT = "__base_weight"
 _CLASS = "__class"
 _FINAL = "__final_weight"
-PERCENT_KINDS = ("category", "net", "item", "missing")
+PERCENT_KINDS = ("category", "excluded", "net", "item", "missing", "not-asked")
 RATING_TYPES = ("scale", "rating")  # whole-number answers: medians by the grouped-data rule
 # A percentage of a weighting variable whose standard error (on the 0-1 scale) is below this is
 # a figure the weighting sets to its population target: calibration residuals are then exactly 0
@@ -75,30 +83,43 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
     indicator. y is None for rows estimated from the value column directly (statistics).
     """
     out: list[tuple[int, str, pl.Expr | None, pl.Expr]] = []
+    asked = pl.col(asked_column(variable.name)) if variable.name in flagged(variable) else pl.lit(True)
     if variable.type == "multi":
         items = list(variable.items)
-        asked = pl.any_horizontal([pl.col(c).is_not_null() for c in items])
-        for order, kind, code in rows.select("row_order", "row_kind", "code").iter_rows():
+        answered_any = pl.any_horizontal([pl.col(c).is_not_null() for c in items])
+        for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
             if kind == "item":
                 out.append((order, kind, pl.col(code).eq(1).fill_null(False), pl.col(code).is_not_null()))
             elif kind == "net":
-                out.append((order, kind, pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in items]), asked))
+                members = variable.nets.get(label, tuple(items))
+                out.append((order, kind, pl.any_horizontal([pl.col(c).eq(1).fill_null(False) for c in members]), answered_any))
             elif kind == "missing":
+                out.append((order, kind, answered_any.not_(), asked))
+            elif kind == "not-asked":
                 out.append((order, kind, asked.not_(), pl.lit(True)))
         return out
     col = pl.col(variable.name)
     text = col.cast(pl.String)
     answered = col.is_not_null()
-    excluded = list(variable.exclude_from_statistics)
+    excluded = list(variable.unscored)
     scored = col.is_not_null() & ~col.is_in(excluded) if excluded else answered
+    in_base = col.is_not_null() & ~col.is_in(list(variable.exclude_from_base)) if variable.exclude_from_base else answered
     for order, kind, code, label in rows.select("row_order", "row_kind", "code", "row_label").iter_rows():
         if kind == "category":
-            out.append((order, kind, text.eq(code).fill_null(False), answered))
+            out.append((order, kind, text.eq(code).fill_null(False), in_base))
+        elif kind == "excluded":
+            out.append((order, kind, text.eq(code).fill_null(False), asked))
         elif kind == "net":
             members = [str(c) for c in variable.nets[label]]
-            out.append((order, kind, text.is_in(members).fill_null(False), answered))
+            out.append((order, kind, text.is_in(members).fill_null(False), in_base))
+        elif kind == "balance":
+            plus, minus = ([str(c) for c in side] for side in variable.balance[label])
+            score = text.is_in(plus).fill_null(False).cast(pl.Float64) - text.is_in(minus).fill_null(False).cast(pl.Float64)
+            out.append((order, kind, score, in_base))
         elif kind == "missing":
-            out.append((order, kind, answered.not_(), pl.lit(True)))
+            out.append((order, kind, answered.not_(), asked))
+        elif kind == "not-asked":
+            out.append((order, kind, asked.not_(), pl.lit(True)))
         elif kind == "statistic" and code in ("mean", "median"):
             out.append((order, code, None, scored))
     return out
@@ -209,7 +230,8 @@ def wave_estimates(
     se[fixed], low[fixed], high[fixed] = 0.0, est[fixed], est[fixed]
     deff = table["deff"].to_numpy().astype(float)
     deff[fixed] = np.nan
-    scale = np.where(percent, 100.0, 1.0)
+    balance = np.array([k == "balance" for k in kinds])
+    scale = np.where(percent | balance, 100.0, 1.0)
     return pl.DataFrame(
         {
             "wave": [wave] * table.height,

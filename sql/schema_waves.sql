@@ -8,5 +8,6 @@ create table if not exists waves (
     source_file varchar not null,
     sha256 varchar not null,
     row_count bigint not null,
-    staged_at timestamp not null         -- UTC
+    staged_at timestamp not null,        -- UTC
+    spec_signature varchar               -- what the spec said the wave holds (pipeline.staging.wave_columns)
 )

@@ -2,14 +2,14 @@
 -- One grouped pass: the variables are unpivoted to (wave, variable, code) and counted together.
 -- Codes are compared as text so integer and text codebooks share one query; a missing answer
 -- produces no row (the caller derives "no answer" from the wave's respondent count).
--- Identifiers: columns (the variables' column names). Bound: $waves VARCHAR[].
+-- Identifiers: columns (the variables' column names), source (the routed responses view, pipeline.staging.routing). Bound: $waves VARCHAR[].
 with answers as (
     select
         wave,
         {%- for column in columns %}
         cast({{ column | ident }} as VARCHAR) as {{ column | ident }}{{ "," if not loop.last }}
         {%- endfor %}
-    from responses
+    from {{ source | ident }}
     where wave in (select unnest($waves::VARCHAR[]))
 ),
 

@@ -2,14 +2,14 @@
 -- level 'item': per item column, respondents with an answer (0 or 1) and respondents who selected it.
 -- level 'set': per set, respondents asked (at least one item answered) and respondents who
 -- selected any item (list_max ignores missing items). Missing items are never counted as "no".
--- Identifiers: items (every item column), sets (list of {name, items}). Bound: $waves VARCHAR[].
+-- Identifiers: items (every item column), sets (list of {name, items}), source (the routed responses view, pipeline.staging.routing). Bound: $waves VARCHAR[].
 with items as (
     select
         wave,
         {%- for column in items %}
         cast({{ column | ident }} as INTEGER) as {{ column | ident }}{{ "," if not loop.last }}
         {%- endfor %}
-    from responses
+    from {{ source | ident }}
     where wave in (select unnest($waves::VARCHAR[]))
 ),
 
@@ -27,7 +27,7 @@ sets as (
             {%- for column in set["items"] %}cast({{ column | ident }} as INTEGER){{ ", " if not loop.last }}{% endfor -%}
         ]) as {{ set["name"] | ident }}{{ "," if not loop.last }}
         {%- endfor %}
-    from responses
+    from {{ source | ident }}
     where wave in (select unnest($waves::VARCHAR[]))
 ),
 

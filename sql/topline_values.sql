@@ -1,7 +1,7 @@
 -- Unweighted summary statistics of numeric and scale variables, per wave: the number of
 -- answers, the number of values used, mean, median (quantile_cont: the midpoint of the two middle values when n is even),
 -- minimum and maximum. Codes excluded from the mean (e.g. "don't know") are left out.
--- Identifiers: columns. Bound: $waves VARCHAR[]; $excluded_variable VARCHAR[] and
+-- Identifiers: columns, source (the routed responses view, pipeline.staging.routing). Bound: $waves VARCHAR[]; $excluded_variable VARCHAR[] and
 -- $excluded_value DOUBLE[] (parallel lists: variable name, excluded code).
 with exclusions as (
     select distinct variable, value
@@ -18,7 +18,7 @@ answers as (
         {%- for column in columns %}
         cast({{ column | ident }} as DOUBLE) as {{ column | ident }}{{ "," if not loop.last }}
         {%- endfor %}
-    from responses
+    from {{ source | ident }}
     where wave in (select unnest($waves::VARCHAR[]))
 ),
 

@@ -191,7 +191,7 @@ def test_rating_statistics_exclude_dont_know_like_polars(cells: pl.DataFrame, da
     answered = data.filter(pl.col("wave") == wave)["satisfaction"].drop_nulls()
     scored = answered.filter(answered != 99).cast(pl.Float64)
     assert _statistics(cells, wave, "satisfaction") == pytest.approx(_summary(scored), rel=1e-12)
-    assert _cell(cells, wave, "satisfaction", "base", "Base: answered")["count"] == answered.len()
+    assert _cell(cells, wave, "satisfaction", "base", "Base: all giving an answer")["count"] == answered.len()
     assert _cell(cells, wave, "satisfaction", "category", "Don't know")["count"] == (answered == 99).sum()
     top_two = _cell(cells, wave, "satisfaction", "net", "Top two box (9-10)")
     assert top_two["count"] == answered.is_in([9, 10]).sum()
@@ -235,7 +235,7 @@ def test_codes_outside_the_codebook_are_shown_not_dropped(con: duckdb.DuckDBPyCo
     stray = _cell(cells, "W1", "region", "category", "Code 7 (not in the codebook)")
     assert stray["count"] == 1
     categories = _rows(cells, "W1", "region", "category")
-    assert categories["count"].sum() == _cell(cells, "W1", "region", "base", "Base: answered")["count"]
+    assert categories["count"].sum() == _cell(cells, "W1", "region", "base", "Base: all giving an answer")["count"]
 
 
 def test_undeclared_waves_are_left_out(con: duckdb.DuckDBPyConnection, tmp_path: Path) -> None:
@@ -410,7 +410,7 @@ def test_nonprobability_caution_only_for_nonprobability_designs(tmp_path: Path, 
 
 
 def test_low_bases_are_marked(book_path: Path, cells: pl.DataFrame) -> None:
-    w2_base = _cell(cells, "W2", "region", "base", "Base: answered")["count"]
+    w2_base = _cell(cells, "W2", "region", "base", "Base: all giving an answer")["count"]
     aware_base = _cell(cells, "W2", "aware", "net", "Any of these")["base"]
     assert VERY_LOW_BASE <= w2_base < LOW_BASE and aware_base < VERY_LOW_BASE  # the fixture's intent
     tree = _parse(book_path)

@@ -102,6 +102,15 @@ def test_demo_builds_a_book_with_one_table_per_variable(demo_run: tuple[Path, Pa
     assert "script" not in parser.tags
 
 
+def test_demo_book_shows_not_asked_rows_and_a_balance_score(demo_run: tuple[Path, Path]) -> None:
+    """The demo routes its spend question (asked_if) and scores a recommendation balance."""
+    _, book = demo_run
+    html = book.read_text(encoding="utf-8")
+    assert html.count('<tr class="row-not-asked">') == 1  # spend
+    assert html.count('<tr class="row-balance">') == 1  # recommend
+    assert "Recommend balance (9-10 minus 0-6)" in html
+
+
 def test_demo_copies_the_study_but_not_run_artefacts(demo_run: tuple[Path, Path]) -> None:
     from pipeline.resources import resource_dir
 

@@ -93,3 +93,60 @@ def test_check_rehearses_the_weighting_run_would_do(tracker: Tracker, capsys: py
     assert code_run == 1 and "[target-unknown-category]" in err_run
     _rake_study(tracker, AGE_TARGETS + "channel,shop,0.5\nchannel,web,0.5\n")
     assert wavebook(["check", str(tracker.spec_path)], capsys)[0] == 0
+
+
+def test_check_finds_a_target_category_without_respondents(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    tracker.write_wave("wave1.csv", [r for r in tracker_rows(12, prefix="a") if r["age_band"] != "3"])
+    tracker.write_spec(TRACKER_SPEC + '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band"]\ntargets = "targets.csv"\n')
+    (tracker.folder / "targets.csv").write_text(AGE_TARGETS, encoding="utf-8")
+    code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
+    assert code == 1
+    assert "[target-empty-cell]" in out and "category '3' of margin 'age_band'" in out
+
+
+TRIM_CASES = {
+    "upper, mean": {"upper": 3.0},
+    "upper and lower, mean": {"upper": 3.0, "lower": 0.3},
+    "upper, median": {"upper": 3.0, "relative_to": "median"},
+    "upper, absolute": {"upper": 8.0, "relative_to": "absolute"},
+    "lower only": {"lower": 0.5},
+}
+
+
+@pytest.mark.parametrize("after_rake", [False, True], ids=["trim only", "rake then trim"])
+@pytest.mark.parametrize("bounds", list(TRIM_CASES.values()), ids=list(TRIM_CASES))
+def test_trim_counts_every_weight_at_a_bound(bounds: dict, after_rake: bool) -> None:
+    """The trim step's 'weights at a bound' equals the weights lying on a bound (within 1e-9 relative)."""
+    import numpy as np
+    import polars as pl
+
+    from pipeline.weighting.recipe import fit_recipe
+    from pipeline.weighting.steps import RakeStep, TrimStep
+    from pipeline.weighting.targets import TargetTable
+
+    rng = np.random.default_rng(20260301)
+    n = 500
+    data = pl.DataFrame({"id": [str(i) for i in range(n)], "g": rng.choice(["1", "2", "3"], n).tolist()})
+    base = rng.lognormal(0.0, 1.0, n)
+    targets = TargetTable({"g": {("1",): 0.3, ("2",): 0.3, ("3",): 0.4}}, source="test")
+    steps = [RakeStep(0, (("g",),), targets), TrimStep(1, **bounds)] if after_rake else [TrimStep(0, **bounds)]
+    recipe = fit_recipe(data, steps, base_weights=base, id_column="id")
+    (report,) = [r for r in recipe.reports if r.kind == "trim"]
+    lower, upper = report.bounds
+    w = recipe.weights
+    on_bound = np.isclose(w, upper, rtol=1e-9, atol=0) | np.isclose(w, lower, rtol=1e-9, atol=0)
+    assert report.trimmed == int(on_bound.sum()) > 0
+
+
+def test_check_warns_of_a_weighting_category_inside_one_psu(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    rows = tracker_rows(12, prefix="a")
+    for row in rows:  # age band 3 only in region 1, area 1
+        row["age_band"] = "3" if (row["region"], row["area"]) == ("1", "1") else str(1 + int(row["resp_id"][1:]) % 2)
+    tracker.write_wave("wave1.csv", rows)
+    step = '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band"]\ntargets = "targets.csv"\n'
+    (tracker.folder / "targets.csv").write_text(AGE_TARGETS, encoding="utf-8")
+    for method, warned in (("jackknife", True), ("taylor", False)):
+        tracker.write_spec(TRACKER_SPEC + f'\n[variance]\nmethod = "{method}"\n' + step)
+        code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
+        assert code == 0, out
+        assert ("[category-in-one-psu]" in out and "category '3' of margin 'age_band'" in out) == warned, method

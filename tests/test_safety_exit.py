@@ -180,3 +180,24 @@ def test_folder_as_spec_on_the_real_command(tmp_path: Path) -> None:
     )
     assert result.returncode == EXIT_DATA
     _no_traceback(result.stderr)
+
+
+def test_full_disk_while_staging_is_a_data_error_and_rolls_back(
+    tracker: Tracker, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import duckdb
+
+    import pipeline.staging.stage
+
+    assert wavebook(["stage", str(tracker.spec_path), "--quiet"], capsys)[0] == 0
+    tracker.write_wave("wave1.csv", tracker_rows(5, prefix="z"))
+    before = fingerprint(tracker.folder)
+
+    def disk_full(*args: object, **kwargs: object) -> None:
+        raise duckdb.IOException("IO Error: Could not write file: No space left on device")
+
+    monkeypatch.setattr(pipeline.staging.stage, "_insert_rows", disk_full)  # inside the staging transaction
+    code, _, err = wavebook(["stage", str(tracker.spec_path), "--wave", "W1", "--quiet"], capsys)
+    assert (code, "No space left on device" in err) == (EXIT_DATA, True)
+    _no_traceback(err)
+    assert fingerprint(tracker.folder) == before

@@ -8,6 +8,7 @@ Refusals leave the study folder byte-identical (SHA-256 fingerprints before and 
 from __future__ import annotations
 
 import shutil
+from pathlib import Path
 
 import duckdb
 import pytest
@@ -95,3 +96,22 @@ def test_restaging_deletes_the_waves_old_weights(tracker: Tracker, capsys: pytes
         assert (_wave_rows(con, "weights"), unmatched) == ({"W1": 15, "W2": 12}, 0)
     finally:
         con.close()
+
+
+@pytest.mark.parametrize("suffix", ["csv", "parquet"])
+def test_estimate_and_rake_read_file_names_literally(tmp_path: Path, suffix: str, capsys: pytest.CaptureFixture[str]) -> None:
+    import polars as pl
+
+    def write(name: str, values: list[float]) -> None:
+        frame = pl.DataFrame({"w": [1.0] * len(values), "y": values, "g": ["a"] * len(values)})
+        frame.write_csv(tmp_path / name) if suffix == "csv" else frame.write_parquet(tmp_path / name)
+
+    write(f"data1.{suffix}", [100.0, 100.0])
+    write(f"data[1].{suffix}", [1.0, 3.0])
+    literal = str(tmp_path / f"data[1].{suffix}")
+    code, out, err = wavebook(["estimate", literal, "--weight", "w", "--mean", "y", "--quiet"], capsys)
+    assert code == 0, err
+    assert float(out.splitlines()[1].split(",")[4]) == 2.0  # the mean of 1 and 3, not of the other file
+    (tmp_path / "targets.csv").write_text("variable,category,target\ng,a,1\n", encoding="utf-8")
+    code, out, err = wavebook(["rake", literal, "--targets", str(tmp_path / "targets.csv"), "--quiet"], capsys)
+    assert code == 0 and "2 of 2 rows weighted" in out, out + err

@@ -46,9 +46,10 @@ REQUIRED_COLUMNS = (
     "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
 )
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
-PERCENT_KINDS = ("category", "net", "item", "missing")
+PERCENT_KINDS = ("category", "excluded", "net", "item", "missing", "not-asked")
 ESTIMATED_STATISTICS = ("mean", "median")
 SET_BY_WEIGHTING = "set by weighting"
+NOT_ASKED_IN_WAVE = "not asked in this wave"
 SET_BY_WEIGHTING_NOTE = (
     "Percentages marked 'set by weighting' equal the population figures the weights were "
     "calibrated to; they carry no sampling error of their own."
@@ -127,7 +128,8 @@ class BookContext:
     reader must keep in mind. sections: one per codebook variable, in spec order.
     low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
     version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book.weighting`), None for an unweighted book. banners: the banner tables
+    meet (`pipeline.book.weighting`), None for an unweighted book. status: the one-line heading of
+    what the figures are (weighted by the weighting steps, by the design weights only, or unweighted). banners: the banner tables
     (`pipeline.tables.book_view.BannerView`, latest wave of each) and banner_legend their legend,
     empty without `[tables]`.
     """
@@ -145,6 +147,7 @@ class BookContext:
     generated_at: str
     version: str
     weighting: WeightingSection | None = None
+    status: str = "Unweighted counts and percentages"
     banners: tuple = ()
     banner_legend: tuple[str, ...] = ()
 
@@ -193,7 +196,7 @@ def build_context(
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
     weighted = all(c in cells.columns for c in ESTIMATE_COLUMNS) and cells["estimate"].is_not_null().any()
     respondents = dict(
-        cells.filter(pl.col("row_kind") == "missing").group_by("wave").agg(pl.col("base").max()).iter_rows()
+        cells.filter(pl.col("row_kind").is_in(["missing", "not-asked"])).group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
     sections = tuple(
@@ -205,6 +208,7 @@ def build_context(
         title=study.title,
         notes=tuple(study.notes),
         weighted=weighted,
+        status=_status(study, weighted=weighted),
         waves=waves,
         design=_design_lines(study.design),
         methodology=_methodology(weighted=weighted) + (variance if weighted else ()),
@@ -242,12 +246,21 @@ def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:
 def _section(
     index: int, variable: Variable, waves: tuple[WaveColumn, ...], cells: pl.DataFrame, *, weighted: bool
 ) -> Section:
-    """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no data)."""
+    """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no
+    data; NOT_ASKED_IN_WAVE where the wave did not ask the variable or the multi item)."""
     by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
-    layout = cells.unique("row_order", keep="first").sort("row_order").select("row_order", "row_kind", "row_label")
+    layout = cells.unique("row_order", keep="first").sort("row_order").select(
+        "row_order", "row_kind", "row_label", "code"
+    )
     rows = []
-    for order, kind, row_label in layout.iter_rows():
-        row_cells = tuple(_cell(by_key.get((order, w.id)), weighted=weighted) for w in waves)
+    for order, kind, row_label, code in layout.iter_rows():
+        item = code if kind == "item" else None
+        row_cells = tuple(
+            Cell(text=NOT_ASKED_IN_WAVE)
+            if (order, w.id) not in by_key and not variable.asked_in(w.id, item)
+            else _cell(by_key.get((order, w.id)), weighted=weighted)
+            for w in waves
+        )
         rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
     notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
     if any(c.interval == SET_BY_WEIGHTING for r in rows for c in r.cells):
@@ -272,8 +285,14 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     kind = row["row_kind"]
     if kind == "base":
         return Cell(text=f"{row['count']:,}")
+    if kind == "balance":
+        if weighted and row.get("estimate") is not None:
+            interval = (f"{_balance_text(row['ci_low'])} to {_balance_text(row['ci_high'])}"
+                        if row["ci_low"] is not None else None)
+            return Cell(text=_balance_text(row["estimate"]), base_flag=flag, interval=interval, deff=_deff_text(row))
+        return Cell(text="–" if row["value"] is None else _balance_text(row["value"]), base_flag=flag)
     if weighted and row.get("estimate") is not None:
-        if kind == "missing":
+        if kind in ("missing", "not-asked", "excluded"):
             return Cell(text=_percent_text(row["estimate"]), detail=f"{row['count']:,}", base_flag=flag)
         if kind in PERCENT_KINDS and row.get("set_by_weighting"):
             text = _percent_text(row["estimate"])
@@ -294,6 +313,12 @@ def _cell(row: dict | None, *, weighted: bool) -> Cell:
     if row["percent"] is None:
         return Cell(text="–", detail=f"{row['count']:,}", base_flag=flag)
     return Cell(text=_percent_text(row["percent"]), detail=f"{row['count']:,}", base_flag=flag)
+
+
+def _balance_text(points: float) -> str:
+    """A balance score in points, rounded half up, with its sign ("+12", "-3", "0")."""
+    whole = _whole(points)
+    return f"{whole:+d}" if whole else "0"
 
 
 def _percent_interval(low: float, high: float) -> str:
@@ -378,6 +403,17 @@ MEDIAN_WEIGHTED = (
     "at or below it. Medians carry no design effect."
 )
 MEDIAN_UNWEIGHTED = "The median is the middle answer, or the midpoint of the two middle answers."
+
+
+def _status(study: Study, *, weighted: bool) -> str:
+    """The book's heading line: only a study with weighting steps is headed as weighted estimates."""
+    if not weighted:
+        return "Unweighted counts and percentages"
+    if study.weighting:
+        return "Weighted estimates with confidence intervals"
+    if study.design.base_weight or study.design.selection_probability:
+        return "Estimates with design weights (no weighting adjustments) and confidence intervals"
+    return "Estimates with equal weights and confidence intervals"
 
 
 def _methodology(*, weighted: bool) -> tuple[str, ...]:

@@ -173,25 +173,50 @@ def _margin_rows(study: Study, wave_ids: Sequence[str], reports: Mapping[str, We
     return tuple(rows)
 
 
-def variance_lines(options: VarianceOptions, study: Study, *, calibrated: bool) -> tuple[str, ...]:
-    """How standard errors, design effects and intervals were computed, in plain sentences."""
+def variance_lines(
+    options: VarianceOptions,
+    study: Study,
+    *,
+    calibrated: bool,
+    replicate_adjustments: Mapping[str, Mapping[str, int]] | None = None,
+    replicates: Mapping[str, int] | None = None,
+) -> tuple[str, ...]:
+    """How standard errors, design effects and intervals were computed, in plain sentences.
+
+    Says what the variance holds fixed (nonresponse-class and trimming factors; in Taylor, only the
+    last calibration step's auxiliaries enter the residuals), describes strata and PSUs only when
+    the design has them, and, for replicate methods, how many replicates of each wave needed a
+    per-replicate collapse of an empty margin category or stopped beyond the replicate tolerance
+    (`replicate_adjustments`: wave -> `FittedRecipe.replicate_adjustments()`; `replicates`: wave ->
+    number of replicates).
+    """
+    design = study.design
     level = f"{100 * options.level:g}%"
+    has_fpc = bool(design.population or design.sampling_fraction or design.psu_inclusion_probability)
+    steps = [str(w.get("step")) for w in study.weighting] if study.weighting else []
+    fixed = [name for step, name in (("nonresponse", "nonresponse-class"), ("trim", "trimming")) if step in steps]
+    held = (f" The {' and '.join(fixed)} factors are held fixed at their full-sample values." if fixed else "")
+    units = "primary sampling units" if design.psu else "respondents (each its own sampling unit)"
+    within = " within strata" if design.strata else ""
     if options.method == "taylor":
         first = (
-            "Standard errors: Taylor linearization of each estimate, with the first-stage "
-            "with-replacement (ultimate cluster) variance between primary sampling units within strata"
-            + (" and the declared finite population correction" if study.design.population or study.design.sampling_fraction else "")
+            f"Standard errors: Taylor linearization of each estimate, with the with-replacement variance between "
+            f"{units}{within}"
+            + (" and the declared finite population correction" if has_fpc else "")
             + (", plus the variance within the sampled units from the second stage"
-               if study.design.psu and (study.design.population or study.design.sampling_fraction)
-               and study.design.second_stage_fraction < 1 else "")
+               if design.psu and has_fpc and design.second_stage_fraction < 1 else "")
             + "."
         )
         if calibrated:
             first += (
                 " Because the weights were calibrated to population figures, the linearization uses the "
-                "residuals of the calibration (Deville and Särndal), so the gain from weighting is counted."
+                "residuals of the calibration (Deville and Särndal), so the gain from weighting is counted; "
+                "only the auxiliaries of the last calibration step enter the residuals."
             )
-        df = "Degrees of freedom: primary sampling units minus strata."
+        first += held
+        df = (f"Degrees of freedom: {units.split(' (')[0]} minus {'strata' if design.strata else 'one'}; for a "
+              f"subgroup, the {units.split(' (')[0]} with members of the subgroup minus the "
+              f"{'strata' if design.strata else 'one'} they lie in.")
     else:
         names = {
             "jackknife": "delete-one-unit jackknife",
@@ -200,18 +225,39 @@ def variance_lines(options: VarianceOptions, study: Study, *, calibrated: bool) 
             "fay": f"balanced repeated replication with Fay's coefficient {options.fay:g}",
             "bootstrap": f"Rao-Wu rescaling bootstrap ({options.replicates or 500} replicates, seed {options.seed or 0})",
         }
-        first = (
-            f"Standard errors: replicate weights ({names[options.method]}). Every replicate repeats the "
-            "whole weighting, so the variance includes the effect of weighting."
-        )
-        df = "Degrees of freedom: from the replicate design."
+        first = f"Standard errors: replicate weights ({names[options.method]})."
+        if calibrated:
+            first += (" Every replicate repeats the calibration steps (post-stratification, raking, "
+                      "calibration) on its own totals, so the variance includes their effect.")
+        first += held
+        first += _replicate_sentence(replicate_adjustments or {}, replicates or {}) if calibrated else ""
+        df = "Degrees of freedom: from the replicate design, and for a subgroup at most its own."
     return (
         first,
         df,
         f"Intervals: {level} confidence intervals. Percentages use the Korn-Graubard interval "
-        "(exact binomial limits on the effective sample size), which stays inside 0-100% and behaves "
-        "well near the ends; means use the t distribution; medians use the Woodruff interval.",
+        "(exact binomial limits on the effective sample size, capped at the actual base), which stays "
+        "inside 0-100% and behaves well near the ends; means use the t distribution; medians use the "
+        "Woodruff interval. Where the variance cannot be estimated (one respondent, or every respondent "
+        "in one sampling unit) no interval is shown.",
         "Design effect (deff): the variance of an estimate under this design and weighting divided by "
         "its variance under a simple random sample of the same size. Effective base: the unweighted "
-        "base divided by the design effect.",
+        "base divided by the design effect. Medians have no design effect.",
     )
+
+
+def _replicate_sentence(adjustments: Mapping[str, Mapping[str, int]], replicates: Mapping[str, int]) -> str:
+    """' In wave W1, 3 of 200 replicates ...' for the waves whose replicate re-weighting needed help."""
+    parts = []
+    for wave, counts in adjustments.items():
+        total = replicates.get(wave)
+        of = f" of {total:,}" if total else ""
+        if counts.get("collapsed"):
+            parts.append(f"in wave {wave}, {counts['collapsed']:,}{of} replicates had a margin category with no "
+                         "respondents, merged into its neighbour for that replicate only")
+        if counts.get("unconverged"):
+            parts.append(f"in wave {wave}, {counts['unconverged']:,}{of} replicates stopped beyond the replicate "
+                         "raking tolerance")
+    if not parts:
+        return " Every replicate met the weighting targets without merging categories."
+    return " Replicate re-weighting: " + "; ".join(parts) + "."

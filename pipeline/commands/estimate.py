@@ -102,14 +102,41 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         help="Taylor linearization (default) or a replicate method",
     )
     var.add_argument(
-        "--replicate-cols", metavar="PATTERN", help="regular expression matching whole replicate-weight column names"
+        "--replicate-cols",
+        metavar="PATTERN",
+        help="with --variance supplied: regular expression matching whole replicate-weight column names (it must "
+        "not match the --weight column)",
     )
     var.add_argument(
-        "--replicate-multiplier", type=float, metavar="X", help="variance multiplier of the replicate weights"
+        "--replicate-method",
+        choices=("sdr", "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap"),
+        metavar="METHOD",
+        help="with --variance supplied: how the replicate weights were made (default sdr): sdr, jackknife, "
+        "stratified-jackknife, brr, fay or bootstrap; sets the default multiplier (Wolter 2007): sdr 4/R, "
+        "jackknife (R-1)/R, brr 1/R, fay 1/(R (1-RHO)^2), bootstrap 1/R (stratified-jackknife: give "
+        "--replicate-multiplier)",
     )
-    var.add_argument("--fay", type=float, default=0.0, metavar="RHO", help="Fay coefficient for BRR (default 0)")
-    var.add_argument("--replicates", type=int, metavar="N", help="number of bootstrap replicates (default 500)")
-    var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed")
+    var.add_argument(
+        "--replicate-df",
+        type=int,
+        metavar="N",
+        help="with --variance supplied: degrees of freedom of the replicate weights (default R - 1; brr and fay "
+        "need it: the number of half-sample pairs)",
+    )
+    var.add_argument(
+        "--replicate-multiplier",
+        type=float,
+        metavar="X",
+        help="variance multiplier of the replicate weights (default: that of the method)",
+    )
+    var.add_argument(
+        "--fay", type=float, default=0.0, metavar="RHO",
+        help="Fay coefficient, for --variance fay or --replicate-method fay only (default 0: none)",
+    )
+    var.add_argument(
+        "--replicates", type=int, metavar="N", help="number of bootstrap replicates (--variance bootstrap only; default 500)"
+    )
+    var.add_argument("--seed", type=int, metavar="N", help="bootstrap random seed (--variance bootstrap only; default 0)")
     parser.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     parser.add_argument(
         "--interval",
@@ -176,6 +203,8 @@ def run(args: argparse.Namespace) -> int:
             by=args.by,
             variance=args.variance,
             replicate_cols=args.replicate_cols,
+            replicate_method=args.replicate_method,
+            replicate_df=args.replicate_df,
             replicate_multiplier=args.replicate_multiplier,
             fay=args.fay,
             replicates=args.replicates,
@@ -254,13 +283,17 @@ def _read(path: Path) -> pl.DataFrame:
         raise FileNotFoundError(f"no such data file: {path}")
     suffix = path.suffix.lower()
     if suffix == ".parquet":
-        return pl.read_parquet(path)
+        try:
+            return pl.read_parquet(path, glob=False)
+        except (pl.exceptions.PolarsError, OSError) as exc:
+            problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
+            raise DataError("cannot read the data file", [problem]) from None
     if suffix in (".csv", ".txt"):
         from pipeline.staging.readers import checked_csv_header
 
         header = checked_csv_header(path)
         try:
-            return pl.read_csv(path, infer_schema_length=None, new_columns=header)
+            return pl.read_csv(path, infer_schema_length=None, new_columns=header, glob=False)
         except pl.exceptions.PolarsError as exc:
             problem = Problem(rule="unreadable", message=str(exc).splitlines()[0], file=str(path))
             raise DataError("cannot read the data file", [problem]) from None

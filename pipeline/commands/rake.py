@@ -31,7 +31,7 @@ def read_data(path: str) -> object:
 
     import polars as pl
 
-    from pipeline.errors import WavebookError
+    from pipeline.errors import DataError, Problem, WavebookError
 
     file = Path(path)
     if not file.is_file():
@@ -40,9 +40,13 @@ def read_data(path: str) -> object:
     if suffix == ".csv":
         from pipeline.staging.readers import checked_csv_header
 
-        return pl.read_csv(file, infer_schema=False, new_columns=checked_csv_header(file))
+        return pl.read_csv(file, infer_schema=False, new_columns=checked_csv_header(file), glob=False)
     if suffix == ".parquet":
-        return pl.read_parquet(file)
+        try:
+            return pl.read_parquet(file, glob=False)
+        except (pl.exceptions.PolarsError, OSError) as exc:
+            raise DataError(f"cannot read {file}",
+                            [Problem("unreadable", str(exc).splitlines()[0], file=str(file))]) from None
     raise WavebookError(f"cannot read {file}: DATA must be a .csv or .parquet file")
 
 

@@ -197,7 +197,8 @@ def estimate_table(
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
     replicate_multiplier: float | None = None,
-    replicate_method: str = "sdr",
+    replicate_method: str | None = None,
+    replicate_df: int | None = None,
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -223,7 +224,8 @@ def estimate_table(
     )
     _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
-                   reweight=reweight, calibration_matrix=calibration_matrix, interval=interval)
+                   reweight=reweight, calibration_matrix=calibration_matrix, interval=interval,
+                   replicate_method=replicate_method, replicate_df=replicate_df, fay=fay, replicates=replicates, seed=seed)
     domains = _domains(frame, by)
     plan = _Plan()
     for dom, d in domains.items():
@@ -270,7 +272,8 @@ def estimate_table(
         theta = ratios.value(t)
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
-            replicate_multiplier=replicate_multiplier, replicate_method=replicate_method, fay=fay, replicates=replicates,
+            replicate_multiplier=replicate_multiplier, replicate_method=replicate_method or "sdr", fay=fay,
+            replicates=replicates, replicate_df=replicate_df, weight=weight,
             seed=seed, reweight=reweight, layout=layout, certainty=design.single_psu == "certainty", source=source,
         )
         has_fpc = layout is not None and layout.has_fpc
@@ -400,7 +403,8 @@ def estimate(
     variance: str = "taylor",
     replicate_cols: str | Sequence[str] | None = None,
     replicate_multiplier: float | None = None,
-    replicate_method: str = "sdr",
+    replicate_method: str | None = None,
+    replicate_df: int | None = None,
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -434,7 +438,11 @@ def estimate(
       quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
       variance: "taylor" (default) or a replicate method: "jackknife", "stratified-jackknife", "brr",
       "fay", "bootstrap", "supplied" (replicate_cols: a regular expression matched against whole
-      column names or a list of names; replicate_method: how they were made, default "sdr";
+      column names or a list of names, never matching the weight column; replicate_method: how they
+      were made ("sdr" default, "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap"), which
+      sets the default multiplier (Wolter 2007: SDR 4/R, jackknife (R-1)/R, BRR 1/R, Fay
+      1/(R (1-rho)^2), bootstrap 1/R); replicate_df: their degrees of freedom (required for "brr"
+      and "fay": the number of half-sample pairs; default R - 1 otherwise);
       replicate_multiplier: the variance multiplier, default that of the method); fay, replicates,
       seed for the replicate methods; level: interval level; interval: for proportions,
       "korn-graubard" (default), "logit" or "t" (means, totals and ratios: t intervals; quantiles:
@@ -458,6 +466,7 @@ def estimate(
         sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total,
         proportion=proportion, ratio=ratio, quantile=quantile, by=by, variance=variance,
         replicate_cols=replicate_cols, replicate_multiplier=replicate_multiplier, replicate_method=replicate_method,
+        replicate_df=replicate_df,
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
         reweight=reweight, source=source, second_stage_fraction=second_stage_fraction, interval=interval,
@@ -489,8 +498,23 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))
     if req["interval"] not in INTERVAL_KINDS:
         options.append((f"interval must be one of {', '.join(INTERVAL_KINDS)}", str(req["interval"])))
-    if req["variance"] == "supplied" and not req["replicate_cols"]:
+    supplied = req["variance"] == "supplied"
+    made_with = (req["replicate_method"] or "sdr") if supplied else req["variance"]
+    if supplied and not req["replicate_cols"]:
         options.append(("supplied replicate weights need replicate_cols (a pattern or a list)", None))
+    for key, given, applies, where in (
+        ("replicate_cols", req["replicate_cols"] is not None, supplied, 'variance = "supplied"'),
+        ("replicate_method", req["replicate_method"] is not None, supplied, 'variance = "supplied"'),
+        ("replicate_df", req["replicate_df"] is not None, supplied, 'variance = "supplied"'),
+        ("fay", bool(req["fay"]), made_with == "fay", "the fay method"),
+        ("replicates", req["replicates"] is not None, req["variance"] == "bootstrap", 'variance = "bootstrap"'),
+        ("seed", req["seed"] is not None, req["variance"] == "bootstrap", 'variance = "bootstrap"'),
+    ):
+        if given and not applies:
+            options.append((f"{key} applies to {where} only; it does not apply to {made_with}", None))
+    if supplied and made_with in ("brr", "fay") and req["replicate_df"] is None:
+        options.append(("supplied brr or fay replicate weights need replicate_df, the number of half-sample pairs "
+                        "(their degrees of freedom; Wolter 2007 section 3.5, from memory)", None))
     if req["variance"] != "taylor" and design.psu_inclusion is not None:
         options.append(("the (1 - pi) approximation of a pps first stage is for Taylor linearization; replicate "
                         "methods use the with-replacement form: drop the PSU inclusion probabilities", None))
@@ -500,6 +524,11 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         options.append(("a weighting replay or calibration matrix needs the weighting-class column (classes)", None))
     problems += [Problem(rule="bad-option", message=m, value=v) for m, v in options]
     weight = design.weight
+    if supplied and isinstance(req["replicate_cols"], str) and re.fullmatch(req["replicate_cols"], weight):
+        message = (f"the replicate-column pattern also matches the full-sample weight column '{weight}'; "
+                   "anchor it so only the replicate columns match")
+        problems.append(Problem(rule="bad-option", message=message, file=source, column=weight,
+                                value=str(req["replicate_cols"])))
     if weight in frame.columns and not frame.schema[weight].is_numeric():
         message = f"the weight column is not numeric ({frame.schema[weight]})"
         problems.append(Problem(rule="bad-weight", message=message, file=source, column=weight))
@@ -528,6 +557,8 @@ def _replicate_variance(
     fay: float,
     replicates: int | None,
     seed: int | None,
+    replicate_df: int | None,
+    weight: str,
     reweight: Callable[[np.ndarray], np.ndarray] | None,
     layout: PsuLayout | None,
     certainty: bool,
@@ -542,11 +573,17 @@ def _replicate_variance(
     `replicate_method`).
     """
     from pipeline.estimation import replicates as rep
-    from pipeline.estimation.replicate_variance import replicate_df, replicate_variance
+    from pipeline.estimation.replicate_variance import replicate_df as df_of
+    from pipeline.estimation.replicate_variance import replicate_variance
 
     if variance == "supplied":
         cols = _replicate_columns(frame, replicate_cols)
-        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, multiplier=replicate_multiplier)
+        if weight in cols:
+            problem = Problem(rule="bad-option", message="the replicate columns include the full-sample weight",
+                              column=weight)
+            raise SpecError("the replicate columns are invalid", [problem])
+        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, multiplier=replicate_multiplier,
+                                  df=replicate_df)
         rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, cols, source=source)
     else:
         if layout is None:
@@ -560,7 +597,7 @@ def _replicate_variance(
             rf = replace(rf, multiplier=float(replicate_multiplier))
         rep_totals = rep.replicate_totals(gt, rf, reweight=reweight, base=WEIGHT_QUANTITY if reweight else None)
     v = replicate_variance(theta, ratios.value(rep_totals), rf)
-    return np.where(np.isfinite(theta), v, np.nan), replicate_df(rf)
+    return np.where(np.isfinite(theta), v, np.nan), df_of(rf)
 
 
 def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] | None) -> list[str]:

@@ -61,6 +61,8 @@ def parse_variance(raw: Mapping[str, object]) -> tuple[VarianceOptions, list[Pro
     seed = raw.get("seed")
     if seed is not None and (isinstance(seed, bool) or not isinstance(seed, int) or seed < 0):
         bad("seed", "must be a whole number >= 0", seed)
+    elif seed is not None and method != "bootstrap":
+        bad("seed", "applies to method = \"bootstrap\" only (an option that does not apply is an error)", seed)
     fay = raw.get("fay", 0.0)
     if isinstance(fay, bool) or not isinstance(fay, int | float) or not 0.0 <= float(fay) < 1.0:
         bad("fay", "must be a number in [0, 1)", fay)

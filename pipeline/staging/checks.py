@@ -12,8 +12,11 @@ with one filtered pass per column, all in one query per rule.
 Rules (severity): missing-column (error), extra-column (warning), empty-file (error),
 missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
 out-of-bounds, missing-design-value, bad-design-weight, psu-in-several-strata,
-stratum-without-population, population-too-small (errors), and the drift rules against the
-earlier staged waves: code-gone, code-new, share-shift (warnings).
+stratum-without-population, population-too-small (errors), answered-not-asked (warning: an
+answer from a respondent the variable's `asked_if` routes past it, a routing error in the data;
+those answers are treated as not asked), derived-overlap (error: a respondent matching two `when`
+conditions of a derived variable), and the drift rules against the earlier staged waves:
+code-gone, code-new, share-shift (warnings).
 """
 
 from __future__ import annotations
@@ -27,6 +30,8 @@ import polars as pl
 
 from pipeline.errors import Problem
 from pipeline.sqlfiles import sql
+from pipeline.staging.conditions import to_duckdb
+from pipeline.staging.wave_columns import typed_raw
 from pipeline.staging.database import table_columns
 from pipeline.staging.spec import Study, Variable
 
@@ -67,8 +72,11 @@ class _Columns:
         return _unique([*self.codes, *self.items])
 
 
-def expected_columns(study: Study) -> dict[str, str]:
-    """Every column the spec requires in a wave file -> where the spec declares it."""
+def expected_columns(study: Study, wave_id: str) -> dict[str, str]:
+    """Every column (spec name) the spec requires in a wave's file -> where the spec declares it.
+
+    Columns of variables (and multi items) the wave did not ask (`waves`) are not required.
+    """
     out = {study.respondent_id: "respondent_id"}
     design = study.design
     for key in ("strata", "psu", "base_weight", "selection_probability"):
@@ -76,8 +84,10 @@ def expected_columns(study: Study) -> dict[str, str]:
         if column is not None:
             out.setdefault(column, f"design.{key}")
     for variable in study.variables.values():
-        for column in variable.columns:
+        for column in variable.wave_columns(wave_id):
             where = f"variables.{variable.name}" + (".items" if variable.type == "multi" else "")
+            if wave_id in variable.column:
+                where += f".column.{wave_id}"
             out.setdefault(column, where)
     return out
 
@@ -90,25 +100,32 @@ def run_checks(
     file_columns: list[str],
     file: str,
     previous: list[str],
+    wave: str,
+    sources: dict[str, str] | None = None,
+    ignored: tuple[str, ...] = (),
 ) -> list[Problem]:
     """Every problem of the raw table `raw` (read from `file`), errors and warnings together.
 
+    `raw` holds the wave's columns under their spec names (pipeline.staging.wave_columns);
+    sources: spec column -> its name in the file, for messages; ignored: file columns left out.
     previous: the earlier staged waves (spec order) the drift rules compare with, read from the
     `responses` table of `con`; empty to skip drift.
     """
-    expected = expected_columns(study)
+    expected = expected_columns(study, wave)
     present = set(file_columns)
+    named = sources or {}
     problems = [
         Problem(
             "missing-column",
-            f"column '{column}' (declared at {where}) is not in the file",
+            f"column '{named.get(column, column)}' (declared at {where}) is not in the file",
             file=file,
-            column=column,
+            column=named.get(column, column),
         )
         for column, where in expected.items()
         if column not in present
     ]
-    extra = [c for c in file_columns if c not in expected]
+    derived = {v.name for v in study.variables.values() if v.derived}
+    extra = [c for c in file_columns if c not in expected and c not in derived] + list(ignored)
     if extra:
         problems.append(
             Problem(
@@ -124,10 +141,12 @@ def run_checks(
         return [*problems, Problem("empty-file", "the file has no data rows", file=file, count=0)]
     if study.respondent_id not in present:
         return problems
+    present &= set(expected)
     columns = _present_columns(study, present)
     _setup_tables(con, study, raw, columns)
     context = _Context(con, study, file, raw, columns)
     problems += context.rule_problems()
+    problems += context.routing_problems(present)
     if previous:
         problems += context.drift_problems(previous)
     return problems
@@ -256,6 +275,70 @@ class _Context:
             count=int(n) if rule.counts_rows else None,
             examples=tuple(str(e) for e in examples or ()),
         )
+
+    def routing_problems(self, present: set[str]) -> list[Problem]:
+        """answered-not-asked: respondents outside a variable's `asked_if` who answered it anyway.
+
+        The condition is compiled to a DuckDB expression over the raw text columns read through the
+        typing macros (pipeline.staging.conditions.to_duckdb), never to SQL text.
+        """
+        import duckdb
+
+        typed = typed_raw(self.study)
+        problems: list[Problem] = []
+        raw = self.con.table(self.raw)
+        for variable in self.study.variables.values():
+            condition = variable.asked_if
+            columns = [c for c in variable.columns if c in present]
+            if condition is None or not columns or not set(condition.names) <= present:
+                continue
+            answered = [duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(c)).isnotnull() for c in columns]
+            any_answer = answered[0]
+            for more in answered[1:]:
+                any_answer = any_answer | more
+            routed_past = raw.filter(~to_duckdb(condition.tree, typed) & any_answer)
+            n = int(routed_past.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+            if not n:
+                continue
+            ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
+            examples = [str(r[0]) for r in routed_past.select(ids).order("id").limit(5).fetchall()]
+            problems.append(Problem(
+                "answered-not-asked",
+                f"{n} respondent{'s' if n != 1 else ''} answered '{variable.name}' although its asked_if "
+                f"\"{condition.text}\" routes them past it (a routing error in the data); "
+                "their answers are treated as not asked",
+                severity="warning", file=self.file, column=variable.name, count=n, examples=tuple(examples),
+            ))
+        return problems + self.overlap_problems(present)
+
+    def overlap_problems(self, present: set[str]) -> list[Problem]:
+        """derived-overlap: respondents matching two `when` conditions of one derived variable."""
+        import duckdb
+
+        typed = typed_raw(self.study)
+        problems: list[Problem] = []
+        raw = self.con.table(self.raw)
+        one, zero = duckdb.ConstantExpression(1), duckdb.ConstantExpression(0)
+        for variable in self.study.variables.values():
+            if not variable.derived or not all(set(c.names) <= present for c in variable.when.values()):
+                continue
+            matches = [duckdb.CaseExpression(to_duckdb(c.tree, typed), one).otherwise(zero) for c in variable.when.values()]
+            total = matches[0]
+            for more in matches[1:]:
+                total = total + more
+            twice = raw.filter(total >= duckdb.ConstantExpression(2))
+            n = int(twice.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+            if not n:
+                continue
+            ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
+            examples = [str(r[0]) for r in twice.select(ids).order("id").limit(5).fetchall()]
+            problems.append(Problem(
+                "derived-overlap",
+                f"{n} respondent{'s' if n != 1 else ''} match more than one `when` condition of derived.{variable.name}; "
+                "make the conditions exclusive",
+                file=self.file, column=variable.name, count=n, examples=tuple(examples),
+            ))
+        return problems
 
     def rule_problems(self) -> list[Problem]:
         """The error rules, each one query over all the columns it concerns."""

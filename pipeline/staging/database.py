@@ -15,6 +15,7 @@ import polars as pl
 from pipeline.errors import DataError, Problem
 from pipeline.sqlfiles import sql
 from pipeline.staging.readers import prepare_connection
+from pipeline.staging.routing import route_frame
 from pipeline.staging.spec import Study
 
 DESIGN_TEXT = "VARCHAR"
@@ -127,6 +128,7 @@ def create_tables(con: duckdb.DuckDBPyConnection, study: Study) -> None:
     """Create the staging tables when absent (a new `responses` gets every column of the spec)."""
     columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items()]
     con.execute(sql("schema_waves.sql"))
+    con.execute(sql("schema_waves_signature.sql"))
     con.execute(sql("schema_responses.sql", columns=columns))
     con.execute(sql("schema_problems.sql"))
 
@@ -163,8 +165,10 @@ def add_new_columns(con: duckdb.DuckDBPyConnection, study: Study) -> list[str]:
 
 
 def staged_waves(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
-    """The `waves` table in spec order (wave, position, label, fieldwork dates, file, sha256, rows, time)."""
-    return con.sql(sql("load_staged_waves.sql")).pl()
+    """The `waves` table in spec order (wave, position, label, fieldwork dates, file, sha256, rows, time,
+    spec signature)."""
+    signed = "spec_signature" in table_columns(con, "waves")
+    return con.sql(sql("load_staged_waves.sql", signed=signed)).pl()
 
 
 def load_responses(
@@ -173,7 +177,8 @@ def load_responses(
     """Staged rows as a polars DataFrame: wave, respondent_id, then the design and codebook columns.
 
     wave_ids: the waves to read (default: every wave of the spec that is staged). Rows come in
-    spec wave order, then respondent id. DataError naming the waves when a requested wave is not
+    spec wave order, then respondent id. Routed variables come with their asked flags and the
+    answers of respondents not asked masked (pipeline.staging.routing.route_frame). DataError naming the waves when a requested wave is not
     staged, or naming the columns when the spec has columns no staged wave has yet.
     """
     staged = set(staged_waves(con)["wave"].to_list())
@@ -199,4 +204,5 @@ def load_responses(
     ]
     if problems:
         raise DataError(f"cannot read the staged responses from {study.database_path}", problems)
-    return con.sql(sql("load_responses.sql", columns=list(column_types(study))), params={"waves": wanted}).pl()
+    frame = con.sql(sql("load_responses.sql", columns=list(column_types(study))), params={"waves": wanted}).pl()
+    return route_frame(frame, study)

@@ -64,6 +64,8 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
     and the field counts), unreadable-file (the reader's own message) for anything else.
     """
     path = Path(path)
+    if path.is_dir():
+        raise DataError(f"cannot read {path}", [Problem("not-a-file", "this is a folder; name a .csv or .parquet file", file=str(path))])
     if not path.is_file():
         raise DataError(
             f"cannot read {path}",
@@ -126,7 +128,7 @@ def csv_header(path: Path) -> list[str]:
     if not any(name.strip() for name in header):
         raise DataError(
             f"cannot read {path}",
-            [Problem("empty-file", "the file is empty: a CSV wave file starts with a header line of column names", file=str(path))],
+            [Problem("empty-file", "the file is empty: a CSV file starts with a header line of column names", file=str(path))],
         )
     positions: dict[str, list[int]] = {}
     for position, name in enumerate(header, start=1):

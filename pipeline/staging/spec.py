@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Literal
 
 from pipeline.errors import Problem, SpecError
+from pipeline.staging.conditions import NAME_PATTERN, ColumnInfo, Condition, ConditionError, bind, name_positions, parse
 from pipeline.renamed import renamed_key, renamed_value
 
 if TYPE_CHECKING:
@@ -106,6 +107,18 @@ class Variable:
     such as "don't know" that are shown in distributions but left out of the mean, median, minimum,
     maximum and number of answers.
     nets: label -> list of codes (e.g. "Top two box" -> [9, 10]), for "single" and "rating".
+    exclude_from_base: codes (e.g. 99 "don't know") shown as their own rows but outside the base
+    of the percentages (and of the statistics), for "single" and "rating".
+    For "multi", nets: label -> items (a net of respondents choosing any of them).
+    balance: label -> (plus codes, minus codes): the percentage giving a plus code minus the
+    percentage giving a minus code, for "single" and "rating".
+    asked_if: who was asked (pipeline.staging.conditions); the others are "Not asked", out of
+    every base of the variable. waves: the waves that asked it (None: every wave); in other
+    waves its columns need not exist. item_waves: for a multi set, item -> the waves that
+    asked that item.
+    column: wave -> the column's name in that wave's file (default: the variable's name).
+    recode: wave -> {code in that wave's file: codebook code}, applied before checking and
+    staging (so drift checks compare recoded values).
     """
 
     name: str
@@ -115,8 +128,44 @@ class Variable:
     items: dict[str, str] = field(default_factory=dict)
     nets: dict[str, tuple[Code, ...]] = field(default_factory=dict)
     exclude_from_statistics: tuple[Code, ...] = ()
+    exclude_from_base: tuple[Code, ...] = ()
+    balance: dict[str, tuple[tuple[Code, ...], tuple[Code, ...]]] = field(default_factory=dict)
     minimum: float | None = None
     maximum: float | None = None
+    asked_if: Condition | None = None
+    waves: tuple[str, ...] | None = None
+    item_waves: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    column: dict[str, str] = field(default_factory=dict)
+    recode: dict[str, dict[Code, Code]] = field(default_factory=dict)
+    when: dict[Code, Condition] = field(default_factory=dict)
+
+    @property
+    def derived(self) -> bool:
+        """Whether the variable is derived (`[derived.<name>]`): computed at staging, in no file."""
+        return bool(self.when)
+
+    def asked_in(self, wave_id: str, item: str | None = None) -> bool:
+        """Whether the wave asked the variable (and, for a multi set, the item)."""
+        if self.waves is not None and wave_id not in self.waves:
+            return False
+        return item is None or item not in self.item_waves or wave_id in self.item_waves[item]
+
+    def wave_columns(self, wave_id: str) -> tuple[str, ...]:
+        """The columns this variable reads in a wave's file (none in a wave that did not ask it,
+        none for a derived variable)."""
+        if self.derived or (self.waves is not None and wave_id not in self.waves):
+            return ()
+        return tuple(c for c in self.columns if self.asked_in(wave_id, c if self.type == "multi" else None))
+
+    @property
+    def unscored(self) -> tuple[Code, ...]:
+        """Codes left out of the statistics: those excluded from the statistics or from the base."""
+        return tuple(dict.fromkeys((*self.exclude_from_statistics, *self.exclude_from_base)))
+
+    @property
+    def routed(self) -> bool:
+        """Whether some respondents may not have been asked (a filter or a wave list)."""
+        return self.asked_if is not None or self.waves is not None or bool(self.item_waves)
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -140,7 +189,7 @@ class Variable:
             return tuple(self.values)
         if self.type != "rating" or not self.values:
             return ()
-        on_scale = [c for c in self.values if c not in self.exclude_from_statistics]
+        on_scale = [c for c in self.values if c not in self.unscored]
         filled = set(range(min(on_scale), max(on_scale) + 1)) if on_scale else set()
         return tuple(sorted(filled | set(self.values)))
 
@@ -193,9 +242,11 @@ class Study:
 # ---------------------------------------------------------------------------------------------
 
 _TOP_KEYS = (
-    "title", "notes", "respondent_id", "database", "waves", "design", "variables", "weighting", "variance", "tables",
-    "banners",
+    "title", "notes", "respondent_id", "database", "waves", "design", "variables", "derived", "weighting", "variance",
+    "tables", "banners",
 )
+_DERIVED_KEYS = ("label", "type", "values", "nets", "when")
+ANY_ITEM_LABEL = "Any of these"  # the multi set's own net of every item (pipeline.topline)
 _WAVE_KEYS = ("label", "file", "fieldwork")
 _DESIGN_KEYS = (
     "kind",
@@ -214,12 +265,15 @@ _DESIGN_KEYS = (
     "extreme_weight_ratio",
     "same_psus_across_waves",
 )
+_ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
-    "single": ("label", "type", "values", "nets"),
-    "rating": ("label", "type", "values", "exclude_from_statistics", "nets"),
-    "multi": ("label", "type", "items"),
-    "numeric": ("label", "type", "minimum", "maximum"),
+    "single": ("label", "type", "values", "nets", "balance", "exclude_from_base", *_ROUTING_KEYS, "column", "recode"),
+    "rating": ("label", "type", "values", "exclude_from_statistics", "exclude_from_base", "nets", "balance",
+               *_ROUTING_KEYS, "column", "recode"),
+    "multi": ("label", "type", "items", "nets", *_ROUTING_KEYS),
+    "numeric": ("label", "type", "minimum", "maximum", *_ROUTING_KEYS, "column"),
 }
+_ITEM_KEYS = ("label", "waves")
 _ANY_VARIABLE_KEY = frozenset(k for keys in _VARIABLE_KEYS.values() for k in keys)
 _VARIABLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "single": ("label", "values"),
@@ -408,6 +462,8 @@ class _Checker:
         database = self.typed(data, "", "database", str)
         waves = self.waves(data.get("waves"), spec_path.parent) if "waves" in data else ()
         variables = self.variables(data.get("variables", {}))
+        variables = self.routing(data.get("variables", {}), variables, tuple(w.id for w in waves))
+        variables = {**variables, **self.derived(data.get("derived", {}), variables)}
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
@@ -523,10 +579,10 @@ class _Checker:
         if vtype == "numeric":
             return self.numeric(name, table, key, label)
         if vtype == "multi":
-            items = self.labels(table, key, "items")
+            items, item_waves = self.items(table, key)
             if label is None or items is None:
                 return None
-            return Variable(name, "multi", label, items=dict(items))
+            return Variable(name, "multi", label, items=items, item_waves=item_waves, nets=self.item_nets(table, key, items))
         labels = self.labels(table, key, "values")
         if labels is None or label is None:
             return None
@@ -541,9 +597,17 @@ class _Checker:
             exclude = self.code_list(
                 table["exclude_from_statistics"], f"{key}.exclude_from_statistics", base, tuple(values)
             )
-        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        outside = self.code_list(table["exclude_from_base"], f"{key}.exclude_from_base", base, tuple(values)) if (
+            "exclude_from_base" in table) else ()
+        rated = Variable(name, vtype, label, values=values, exclude_from_statistics=exclude,  # type: ignore[arg-type]
+                         exclude_from_base=outside)
         nets = self.nets(table, key, rated)
-        return Variable(name, vtype, label, values=values, nets=nets, exclude_from_statistics=exclude)  # type: ignore[arg-type]
+        for net, members in nets.items():
+            inside = [c for c in members if c in outside]
+            if inside:
+                self.add("conflicting-keys", f"{key}.nets.{net}",
+                         f"code {inside[0]!r} is excluded from the base (exclude_from_base); a net cannot count it")
+        return replace(rated, nets=nets, balance=self.balance(table, key, rated))
 
     def numeric(self, name: str, table: dict, key: str, label: object) -> Variable | None:
         low = self.typed(table, key, "minimum", float)
@@ -559,6 +623,147 @@ class _Checker:
             minimum=None if low is None else float(low),
             maximum=None if high is None else float(high),
         )
+
+    def items(self, table: dict, key: str) -> tuple[dict[str, str] | None, dict[str, tuple[str, ...]]]:
+        """A multi set's items: column -> label, or column -> { label, waves } (the waves that asked it)."""
+        value = self.typed(table, key, "items", dict)
+        if value is None:
+            return None, {}
+        if not value:
+            self.add("bad-value", f"{key}.items", "is empty; list at least one entry")
+            return None, {}
+        items: dict[str, str] = {}
+        item_waves: dict[str, tuple[str, ...]] = {}
+        for column, entry in value.items():
+            where = f"{key}.items.{column}"
+            if isinstance(entry, str):
+                items[column] = entry
+            elif isinstance(entry, dict):
+                self.keys(entry, where, _ITEM_KEYS, ("label",))
+                label = self.typed(entry, where, "label", str)
+                if label is not None:
+                    items[column] = label
+                if "waves" in entry:
+                    item_waves[column] = self.string_list(entry, where, "waves")
+            else:
+                self.add("wrong-type", where, f"must be a label or a table {{ label, waves }}, not {entry!r}", value=entry)
+        return (items if len(items) == len(value) else None), item_waves
+
+    def routing(self, raw: object, variables: dict[str, Variable], wave_ids: tuple[str, ...]) -> dict[str, Variable]:
+        """Read `asked_if` and `waves` once every variable is known (a condition may name a later one)."""
+        if not isinstance(raw, dict):
+            return variables
+        columns = _condition_columns(variables)
+        out = dict(variables)
+        for name, variable in variables.items():
+            table = raw[name]
+            key = f"variables.{name}"
+            waves = self.wave_list(table, key, wave_ids) if "waves" in table else None
+            item_waves = {
+                item: self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids)
+                for item, waves_of_item in variable.item_waves.items()
+            }
+            condition = self.condition(table, key, columns, variable) if "asked_if" in table else None
+            column = self.wave_columns(table, key, wave_ids) if "column" in table else {}
+            recode = self.recodes(table, key, wave_ids, variable) if "recode" in table else {}
+            out[name] = replace(
+                variable, asked_if=condition, waves=waves, item_waves=item_waves, column=column, recode=recode
+            )
+        return out
+
+    def derived(self, raw: object, variables: dict[str, Variable]) -> dict[str, Variable]:
+        """`[derived.<name>]`: single-choice variables whose code is the first `when` condition that holds."""
+        if not isinstance(raw, dict):
+            self.add("wrong-type", "derived", "must be a table of derived variables ([derived.<name>] blocks)")
+            return {}
+        columns = _condition_columns(variables)
+        out: dict[str, Variable] = {}
+        for name, table in raw.items():
+            key = f"derived.{name}"
+            if not isinstance(table, dict):
+                self.add("wrong-type", key, "must be a table with label, type, values and when")
+                continue
+            if name in variables:
+                self.add("duplicate-column", key, f"'{name}' is already a codebook variable (variables.{name})")
+                continue
+            self.keys(table, key, _DERIVED_KEYS, ("label", "type", "values", "when"))
+            if table.get("type", "single") != "single":
+                self.add("bad-value", f"{key}.type", "a derived variable is single-choice (type = \"single\")",
+                         value=table.get("type"))
+                continue
+            variable = self.variable(name, {k: v for k, v in table.items() if k in _DERIVED_KEYS[:4]}, key)
+            when = self.typed(table, key, "when", dict)
+            if variable is None or when is None:
+                continue
+            conditions: dict[Code, Condition] = {}
+            for code_key, text in when.items():
+                code = self.code_list([code_key], f"{key}.when.{code_key}", variable, variable.valid_codes)
+                condition = self.condition(when, f"{key}.when", columns, variable, name=code_key)
+                if code and condition is not None:
+                    conditions[code[0]] = condition
+            if not when:
+                self.add("bad-value", f"{key}.when", "give a condition for at least one code")
+            if conditions:
+                out[name] = replace(variable, when=conditions)
+        return out
+
+    def wave_columns(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> dict[str, str]:
+        raw = self.typed(table, key, "column", dict)
+        out: dict[str, str] = {}
+        for wave_id, column in (raw or {}).items():
+            where = f"{key}.column.{wave_id}"
+            if wave_id not in wave_ids:
+                self.add("bad-value", where, f"'{wave_id}' is not a wave of the spec ({', '.join(wave_ids)})", value=wave_id)
+            elif not isinstance(column, str) or not column:
+                self.add("wrong-type", where, f"must be the column's name in that wave's file, not {column!r}", value=column)
+            else:
+                out[wave_id] = column
+        return out
+
+    def recodes(self, table: dict, key: str, wave_ids: tuple[str, ...], variable: Variable) -> dict[str, dict[Code, Code]]:
+        raw = self.typed(table, key, "recode", dict)
+        out: dict[str, dict[Code, Code]] = {}
+        for wave_id, mapping in (raw or {}).items():
+            where = f"{key}.recode.{wave_id}"
+            if wave_id not in wave_ids:
+                self.add("bad-value", where, f"'{wave_id}' is not a wave of the spec ({', '.join(wave_ids)})", value=wave_id)
+                continue
+            if not isinstance(mapping, dict) or not mapping:
+                self.add("wrong-type", where, "must be a table {code in the file = codebook code}, e.g. { 6 = 5, 7 = 5 }")
+                continue
+            codes: dict[Code, Code] = {}
+            for source, target in mapping.items():
+                old = self.code(source, f"{where}.{source}", variable)
+                new = self.code_list([target], f"{where}.{source}", variable, variable.valid_codes)
+                if old is not None and new:
+                    codes[old] = new[0]
+            out[wave_id] = codes
+        return out
+
+    def wave_list(self, table: dict, key: str, wave_ids: tuple[str, ...]) -> tuple[str, ...] | None:
+        listed = self.string_list(table, key, "waves")
+        unknown = [w for w in listed if w not in wave_ids]
+        for w in unknown:
+            self.add("bad-value", f"{key}.waves", f"'{w}' is not a wave of the spec ({', '.join(wave_ids)})", value=w)
+        if "waves" in table and isinstance(table["waves"], list) and not table["waves"]:
+            self.add("bad-value", f"{key}.waves", "lists no wave; list the waves that asked it, or drop the key")
+        return tuple(w for w in listed if w in wave_ids) or None
+
+    def condition(
+        self, table: dict, key: str, columns: dict[str, ColumnInfo], variable: Variable, *, name: str = "asked_if"
+    ) -> Condition | None:
+        text = self.typed(table, key, name, str)
+        if text is None:
+            return None
+        try:
+            parsed = parse(text)
+            for column, position in name_positions(parsed.tree):
+                if column in variable.columns:
+                    raise ConditionError(f"'{variable.name}' cannot be filtered on its own answers", text, position)
+            return bind(parsed, columns)
+        except ConditionError as exc:
+            self.add("bad-condition", f"{key}.{name}", exc.render(), value=text)
+            return None
 
     def labels(self, table: dict, key: str, name: str) -> dict[str, str] | None:
         value = self.typed(table, key, name, dict)
@@ -606,6 +811,45 @@ class _Checker:
             return str(item)
         self.add("wrong-type", key, f"codes of '{variable.name}' are strings; got {item!r}", value=item)
         return None
+
+    def item_nets(self, table: dict, key: str, items: dict[str, str]) -> dict[str, tuple[Code, ...]]:
+        """A multi set's nets: label -> its items."""
+        raw = self.typed(table, key, "nets", dict)
+        nets: dict[str, tuple[Code, ...]] = {}
+        for label, members in (raw or {}).items():
+            where = f"{key}.nets.{label}"
+            if label == ANY_ITEM_LABEL:
+                self.add("bad-value", where, f"'{ANY_ITEM_LABEL}' is the set's own net of every item; choose another label")
+            if not isinstance(members, list) or not members or not all(isinstance(m, str) for m in members):
+                self.add("wrong-type", where, f"must list item columns of the set, e.g. [\"{next(iter(items))}\"]")
+                continue
+            unknown = [m for m in members if m not in items]
+            for m in unknown:
+                self.add("bad-value", where, f"'{m}' is not an item of the set ({', '.join(items)})", value=m)
+            if not unknown:
+                nets[label] = tuple(dict.fromkeys(members))
+        return nets
+
+    def balance(self, table: dict, key: str, variable: Variable) -> dict[str, tuple[tuple[Code, ...], tuple[Code, ...]]]:
+        """Balance scores: label -> { plus = [codes], minus = [codes] } (disjoint, inside the base)."""
+        raw = self.typed(table, key, "balance", dict)
+        out: dict[str, tuple[tuple[Code, ...], tuple[Code, ...]]] = {}
+        allowed = tuple(c for c in variable.valid_codes if c not in variable.exclude_from_base)
+        for label, sides in (raw or {}).items():
+            where = f"{key}.balance.{label}"
+            if not isinstance(sides, dict) or set(sides) != {"plus", "minus"}:
+                self.add("wrong-type", where, "must be a table { plus = [codes], minus = [codes] }")
+                continue
+            plus = self.code_list(sides["plus"], f"{where}.plus", variable, allowed)
+            minus = self.code_list(sides["minus"], f"{where}.minus", variable, allowed)
+            both = [c for c in plus if c in minus]
+            if both:
+                self.add("conflicting-keys", where, f"code {both[0]!r} is both plus and minus")
+            elif plus and minus:
+                out[label] = (plus, minus)
+            else:
+                self.add("bad-value", where, "plus and minus each need at least one code")
+        return out
 
     def nets(self, table: dict, key: str, variable: Variable) -> dict[str, tuple[Code, ...]]:
         raw = self.typed(table, key, "nets", dict)
@@ -797,6 +1041,19 @@ class _Checker:
             column = getattr(design, name)
             if column in owner and variables[owner[column]].type == "multi":
                 self.add("duplicate-column", f"design.{name}", f"'{column}' is an item of a multi-response set")
+
+
+def _condition_columns(variables: dict[str, Variable]) -> dict[str, ColumnInfo]:
+    """What a condition may read: coded variables with their codes, numeric variables, 0/1 items."""
+    columns: dict[str, ColumnInfo] = {}
+    for name, variable in variables.items():
+        if variable.type == "multi":
+            columns.update({item: ColumnInfo("int", frozenset({0, 1})) for item in variable.items})
+        elif variable.type == "numeric":
+            columns[name] = ColumnInfo("number")
+        else:
+            columns[name] = ColumnInfo("int" if variable.int_coded else "text", frozenset(variable.valid_codes))
+    return {c: info for c, info in columns.items() if NAME_PATTERN.match(c)}
 
 
 def _ranges(codes: tuple[Code, ...]) -> list[str]:

@@ -32,6 +32,7 @@ from pipeline.staging.database import (
 )
 from pipeline.staging.readers import prepare_connection, read_raw
 from pipeline.staging.spec import Study, Wave
+from pipeline.staging.wave_columns import wave_signature, wave_sources, wave_view
 
 RAW_TABLE = "__wavebook_raw"
 
@@ -79,29 +80,9 @@ def check_wave(study: Study, wave_id: str) -> list[Problem]:
         con.close()
     if any(p.severity == "error" for p in problems):
         return problems
+    from pipeline.staging.rehearsal import weighting_rehearsal
+
     return problems + weighting_rehearsal(study, wave)
-
-
-def weighting_rehearsal(study: Study, wave: Wave) -> list[Problem]:
-    """What weighting `wave` would meet in `wavebook run`, found without writing anything: the wave
-    is staged into a private in-memory database and the study's weighting fitted on it, exactly as
-    `run` does, so `check` sees what only the data can tell (targets naming margins or categories
-    the data lack, a target category without respondents, infeasible trimming bounds...). Returns
-    the fit's errors (or its warnings when it succeeds)."""
-    from pipeline.errors import WavebookError
-    from pipeline.weighting.store import fit_wave
-
-    con = duckdb.connect()
-    try:
-        prepare_connection(con)
-        read_raw(con, wave.file, RAW_TABLE)
-        _write(con, study, wave, digest="", warnings=[])
-        recipe, _ = fit_wave(study, wave.id, con=con)
-    except WavebookError as exc:
-        return exc.problems or [Problem("weighting", exc.summary, file=str(wave.file))]
-    finally:
-        con.close()
-    return list(recipe.warnings)
 
 
 def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageReport:
@@ -191,14 +172,18 @@ def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet:
             file_columns = read_raw(con, wave.file, RAW_TABLE)
     except DataError as exc:
         return shared + exc.problems
+    view, columns, ignored = wave_view(con, study, wave.id, RAW_TABLE, file_columns)
     with step(f"{wave.id}: checking", quiet=quiet):
         return shared + run_checks(
             con,
             study,
-            raw=RAW_TABLE,
-            file_columns=file_columns,
+            raw=view,
+            file_columns=columns,
             file=str(wave.file),
             previous=_earlier_staged(con, study, wave),
+            wave=wave.id,
+            sources=wave_sources(study, wave.id),
+            ignored=tuple(ignored),
         )
 
 
@@ -241,6 +226,7 @@ def _write(
                 "sha256": digest,
                 "row_count": rows,
                 "staged_at": now,
+                "spec_signature": wave_signature(study, wave.id, column_types(study)),
             },
         )
         con.execute(sql("stage_delete_problems.sql"), params)
@@ -267,9 +253,15 @@ def _write(
 
 
 def _insert_rows(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> None:
-    """Insert the raw table's rows, typed per the codebook, as the wave's rows of `responses`."""
-    columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items()]
+    """Insert the wave view's rows, typed per the codebook, as the wave's rows of `responses`.
+
+    Columns of variables the wave did not ask are left NULL (not in the file).
+    """
+    view, file_columns, _ = wave_view(con, study, wave.id, RAW_TABLE, list(con.table(RAW_TABLE).columns))
+    derived = {v.name for v in study.variables.values() if v.derived}
+    present = set(file_columns) & (set(study.design.columns) | set(wave_sources(study, wave.id)) | derived)
+    columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items() if name in present]
     con.execute(
-        sql("stage_insert_responses.sql", raw=RAW_TABLE, id=study.respondent_id, columns=columns),
+        sql("stage_insert_responses.sql", raw=view, id=study.respondent_id, columns=columns),
         {"wave": wave.id},
     )

@@ -57,7 +57,7 @@ def _cell(c: dict | None) -> BannerCell:
         return BannerCell("", "", "")
     if "suppressed" in c["flags"] or "empty_column" in c["flags"]:
         return BannerCell(SUPPRESSED_SYMBOL, "", "suppressed")
-    text = "" if c["estimate"] is None else (f"{c['estimate']:.1f}" if c["statistic"] == "percent"
+    text = "" if c["estimate"] is None else (f"{c['estimate']:.1f}" if c["statistic"] in ("percent", "balance")
                                              else f"{c['estimate']:,.2f}")
     marks = c["sig_higher_than"] + c["sig_higher_than_lighter"].lower()
     return BannerCell(text, marks, "low-base" if "low_base" in c["flags"] else "")

@@ -5,6 +5,7 @@ numeric or rating variable) and banner column d (a domain indicator, `pipeline.t
 
     percentage  p_rd = sum_i w_i y_ri a_i d_i / sum_i w_i a_i d_i         (y_ri the row's 0/1 indicator,
     mean        m_rd = sum_i w_i x_i a_i d_i / sum_i w_i a_i d_i           a_i the stub's base indicator)
+    balance     100 x the mean of z_i = 1[plus] - 1[minus] (a rating's balance score), with the t interval
     median      the weighted median of x among a_i d_i = 1, with its Woodruff (1952) interval
 
 with standard errors from the design (`pipeline.tables.fit`), the Korn and Graubard (1998) interval
@@ -76,7 +77,7 @@ class CellRef:
     row_label: str
     banner: str
     column: Column
-    statistic: str  # "percent", "mean" or "median"
+    statistic: str  # "percent", "balance" (100 x mean of 1[plus] - 1[minus]), "mean" or "median"
     estimator: int  # index of the estimator in the plan (joint proportions sit between stubs)
 
 
@@ -153,6 +154,13 @@ def plan_wave(study: Study, spec: TablesSpec, banners: dict[str, Banner], layout
                     sq = plan.q(f"x2|{name}|{column.key}", value * value * (base & d).cast(pl.Float64))
                     k = plan.add(api._Cell("mean", name, "", column.key, num, base_q, base_q, sq, num, base_q))
                     statistic = "mean"
+                elif kind == "balance":
+                    inside = (base & d).cast(pl.Float64)
+                    num = plan.q(f"z|{name}|{order}|{column.key}", y * inside)
+                    sq = plan.q(f"z2|{name}|{order}|{column.key}", y * y * inside)
+                    k = plan.add(api._Cell("mean", name, str(order), column.key, num, base_q, base_q, sq, num,
+                                           base_q))
+                    statistic = "balance"
                 else:
                     num = plan.q(f"y|{name}|{order}|{column.key}", y & base & d)
                     k = plan.add(api._Cell("proportion", name, str(order), column.key, num, base_q, base_q,
@@ -195,6 +203,9 @@ def _cross_pairs(wp: WavePlan, name: str, order: int, kind: str, y: pl.Expr | No
         if kind == "mean":
             num = plan.q(f"x|{name}|{tag}", value * (base & d).cast(pl.Float64))
             return (plan.q(f"x2|{name}|{tag}", value * value * (base & d).cast(pl.Float64)), num, num, base_q)
+        if kind == "balance":
+            num = plan.q(f"z|{name}|{order}|{tag}", y * (base & d).cast(pl.Float64))
+            return (plan.q(f"z2|{name}|{order}|{tag}", y * y * (base & d).cast(pl.Float64)), num, num, base_q)
         num = plan.q(f"y|{name}|{order}|{tag}", y & base & d)
         return (num, num, num, base_q)
 
@@ -254,7 +265,7 @@ def cell_frame(wave: str, wp: WavePlan, state: object, spec: TablesSpec, *, leve
     df = state.domain_df[at]  # type: ignore[attr-defined]
     statistic = np.array([r.statistic for r in wp.refs])
     percent = statistic == "percent"
-    mean = statistic == "mean"
+    mean = (statistic == "mean") | (statistic == "balance")
     if percent.any():
         low[percent], high[percent] = korn_graubard_interval(est[percent], se[percent], n[percent], df[percent],
                                                              level=level)
@@ -266,7 +277,7 @@ def cell_frame(wave: str, wp: WavePlan, state: object, spec: TablesSpec, *, leve
     se[fixed], low[fixed], high[fixed], deff[fixed] = 0.0, est[fixed], est[fixed], np.nan
     with np.errstate(divide="ignore", invalid="ignore"):
         n_eff = np.where(deff > 0, n / deff, np.nan)
-    scale = np.where(percent, 100.0, 1.0)
+    scale = np.where(percent | (statistic == "balance"), 100.0, 1.0)
     flags = []
     for i in range(m):
         f = []

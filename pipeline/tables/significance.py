@@ -51,7 +51,7 @@ TEST_COLUMNS: dict[str, pl.DataType] = {
     "significant": pl.Boolean(),
     "significant_lighter": pl.Boolean(),
 }
-TESTED = ("percent", "mean")
+TESTED = ("percent", "balance", "mean")
 KEY = ["wave", "table", "row", "banner"]
 
 
@@ -107,7 +107,7 @@ def column_tests(cells: pl.DataFrame, state: object, spec: TablesSpec, wave_plan
         return pl.DataFrame(schema=TEST_COLUMNS)
     a = pairs["estimator"].to_numpy()
     b = pairs["estimator_b"].to_numpy()
-    scale = np.where(pairs["statistic"].to_numpy() == "percent", 100.0, 1.0)
+    scale = np.where(np.isin(pairs["statistic"].to_numpy(), ["percent", "balance"]), 100.0, 1.0)
     cross = None
     if state.within is not None:  # type: ignore[attr-defined]
         cross = state.cross(wave_plan.pair_cross(a, b))  # type: ignore[attr-defined]

@@ -94,11 +94,11 @@ def stacked_change_variance(study: Study, spec: TablesSpec, banners: dict[str, B
         refs[(wave, ref.table, ref.row, ref.banner, key)] = ref
     pairs = [(ref, refs.get((earlier.wave, ref.table, ref.row, ref.banner, key)))
              for (wave, _, _, _, key), ref in refs.items() if wave == later.wave]
-    pairs = [(a, b) for a, b in pairs if b is not None and a.statistic in ("percent", "mean")]
+    pairs = [(a, b) for a, b in pairs if b is not None and a.statistic in ("percent", "balance", "mean")]
     a = np.array([p[0].estimator for p in pairs], dtype=np.int64)
     b = np.array([p[1].estimator for p in pairs], dtype=np.int64)
     cross = state.cross([(None, None, None, None)] * len(pairs)) if state.within is not None else None
-    scale = np.array([100.0 if p[0].statistic == "percent" else 1.0 for p in pairs])
+    scale = np.array([100.0 if p[0].statistic in ("percent", "balance") else 1.0 for p in pairs])
     variance = state.difference_variance(a, b, cross) * scale**2
     return pl.DataFrame({
         "table": [p[0].table for p in pairs], "row": [p[0].row for p in pairs],

@@ -96,7 +96,7 @@ def _write(xlsxwriter, tables: BannerTables, study: Study, tmp: Path) -> None:  
                         if "suppressed" in c["flags"] or "empty_column" in c["flags"]:
                             sheet.write(r, j, SUPPRESSED, letter)
                         elif c["estimate"] is not None:
-                            fmt = pct if c["statistic"] == "percent" else num
+                            fmt = pct if c["statistic"] in ("percent", "balance") else num
                             sheet.write_number(r, j, c["estimate"], fmt)
                         marks = c["sig_higher_than"] + c["sig_higher_than_lighter"].lower()
                         if "low_base" in c["flags"]:

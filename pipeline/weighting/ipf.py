@@ -26,6 +26,8 @@ class RakeFit:
 
     discrepancy[m] = max over categories and replicates of |achieved / target - 1| after the last cycle.
     empty[m] = number of (category, replicate) pairs with no weight (left unadjusted).
+    collapsed: (R,) whether a replicate had an empty category merged into a neighbour
+    (`collapse_empty`); unconverged: (R,) whether a replicate is still beyond the tolerance.
     """
 
     factors: np.ndarray
@@ -33,6 +35,29 @@ class RakeFit:
     discrepancy: np.ndarray
     converged: bool
     empty: np.ndarray
+    collapsed: np.ndarray
+    unconverged: np.ndarray
+
+
+def merge_empty_targets(sums: np.ndarray, targets: np.ndarray) -> np.ndarray:
+    """(K, R) targets with each category that has no weight (sums 0, target > 0) merged into a neighbour.
+
+    Per replicate: the target of an empty category moves to the nearest category in code order that
+    has weight, the heavier of the two at equal distance, so the margin can still be met and its
+    total is kept (a per-replicate collapse of the category into its neighbour; our rule, common
+    practice for sparse cells, no source). Categories are left as they are when none has weight.
+    """
+    out = targets.copy()
+    for k, r in zip(*np.nonzero((sums <= 0) & (targets > 0)), strict=True):
+        live = np.flatnonzero(sums[:, r] > 0)
+        if not len(live):
+            continue
+        distance = np.abs(live - k)
+        near = live[distance == distance.min()]
+        partner = near[np.argmax(sums[near, r])]
+        out[partner, r] += out[k, r]
+        out[k, r] = 0.0
+    return out
 
 
 def _indicator(margin: Margin) -> sparse.csr_array:
@@ -57,6 +82,7 @@ def rake(
     tolerance: float,
     max_iterations: int,
     start: np.ndarray | None = None,
+    collapse_empty: bool = False,
 ) -> RakeFit:
     """Rake (C, R) class totals to the margins; `population` (R,) scales proportion targets.
 
@@ -67,36 +93,51 @@ def rake(
     `start` (C,) optional class factors to begin from: any product of per-category factors of the
     same margins leaves the fixed point unchanged (it is a reparametrisation of lambda), so the
     full-sample factors are a valid warm start for replicates.
+    `collapse_empty` (replicates): a category with no weight in a replicate has its target merged
+    into a neighbour for that replicate (`merge_empty_targets`), so the others can still be met.
     """
     current = totals.copy() if start is None else totals * start[:, None]
     indicators = [_indicator(m) for m in margins]
     targets = [absolute_targets(m, population) for m in margins]
+    collapsed = np.zeros(totals.shape[1], dtype=bool)
+    if collapse_empty:
+        merged = [merge_empty_targets(g @ current, t) for g, t in zip(indicators, targets)]
+        for t, t_new in zip(targets, merged):
+            collapsed |= np.any(t != t_new, axis=0)
+        targets = merged
     per_column = np.zeros((len(margins), totals.shape[1]))
     empty = np.zeros(len(margins), dtype=np.int64)
     iterations = 0
 
-    def check() -> np.ndarray:
+    def check(cols: np.ndarray) -> np.ndarray:
+        """Update per_column (and empty) for the replicate columns `cols`; which are beyond the tolerance."""
+        block = current[:, cols]
         for k, (g, t) in enumerate(zip(indicators, targets)):
-            sums = g @ current
+            sums = g @ block
+            tk = t[:, cols]
             live = sums > 0
-            empty[k] = int((~live & (t > 0)).sum())
-            rel = np.abs(np.divide(sums, t, out=np.ones_like(sums), where=live & (t > 0)) - 1.0)
-            per_column[k] = rel.max(axis=0) if rel.size else 0.0
-        return per_column.max(axis=0, initial=0.0) > tolerance
+            empty[k] = int((~live & (tk > 0)).sum())
+            rel = np.abs(np.divide(sums, tk, out=np.ones_like(sums), where=live & (tk > 0)) - 1.0)
+            per_column[k, cols] = rel.max(axis=0) if rel.size else 0.0
+        return per_column[:, cols].max(axis=0, initial=0.0) > tolerance
 
-    active = check()
-    step = np.empty_like(current)
+    everything = np.arange(totals.shape[1])
+    active = check(everything)
     while iterations < max_iterations and active.any():
         iterations += 1
+        cols = np.flatnonzero(active)  # converged replicates are left as they are
+        block = current[:, cols]
         for m, g, t in zip(margins, indicators, targets):
-            sums = g @ current
-            ratio = np.divide(t, sums, out=np.ones_like(sums), where=(sums > 0) & active[None, :])
-            np.take(ratio, m.of_class, axis=0, out=step)
-            current *= step
-        active = check()
+            sums = g @ block
+            block *= np.divide(t[:, cols], sums, out=np.ones_like(sums), where=sums > 0)[m.of_class]
+        current[:, cols] = block
+        active[cols] = check(cols)
+    check(everything)
     discrepancy = per_column.max(axis=1, initial=0.0)
     # factor of each class = raked / incoming total; a class with no incoming weight keeps its
     # starting factor (it carries no weight, so any finite factor gives the same replicate weights)
     first = np.ones_like(totals) if start is None else np.repeat(start[:, None], totals.shape[1], axis=1)
     factors = np.divide(current, totals, out=first, where=totals > 0)
-    return RakeFit(factors, iterations, discrepancy, bool(discrepancy.max(initial=0.0) <= tolerance), empty.copy())
+    unconverged = per_column.max(axis=0, initial=0.0) > tolerance
+    return RakeFit(factors, iterations, discrepancy, bool(discrepancy.max(initial=0.0) <= tolerance), empty.copy(),
+                   collapsed, unconverged)

@@ -84,9 +84,20 @@ class _RakeOp:
     last: dict = field(default_factory=dict)
     estimated: float | None = None
     reference: float | None = None
+    replicate_tolerance: float | None = None
+    replicate_max_iterations: int | None = None
+    collapsed_replicates: int = 0  # replicates in which an empty margin category was merged into a neighbour
+    unconverged_replicates: int = 0  # replicates accepted beyond replicate_tolerance
+    worst_replicate_discrepancy: float = 0.0
 
     def apply(self, current: np.ndarray) -> np.ndarray:
+        """(C, R) class totals -> (C, R) factors. Once frozen (`reference` set), columns are replicates:
+        empty categories are merged per replicate, the replicate tolerance and cycle budget apply, and a
+        replicate still beyond the tolerance is accepted and counted (replicate re-weighting always
+        finishes); the full-sample fit is never relaxed."""
         pop = _population_now(self, current)
+        if self.reference is not None:
+            return self._apply_replicates(current, pop)
         fit = rake(current, self.margins, pop, tolerance=self.tolerance, max_iterations=self.max_iterations, start=self.start)
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
@@ -105,6 +116,21 @@ class _RakeOp:
             )
         if self.start is None:
             self.start = fit.factors[:, 0].copy()
+        return fit.factors
+
+    def _apply_replicates(self, current: np.ndarray, pop: np.ndarray) -> np.ndarray:
+        tolerance = max(self.tolerance, self.replicate_tolerance or self.tolerance)
+        cycles = self.replicate_max_iterations or 20 * self.max_iterations
+        fit = rake(current, self.margins, pop, tolerance=tolerance, max_iterations=cycles, start=self.start,
+                   collapse_empty=True)
+        self.last = {"iterations": fit.iterations, "converged": fit.converged,
+                     "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
+                     "population": float(pop[0]) if pop.size else 0.0,
+                     "empty": {m.name: int(e) for m, e in zip(self.margins, fit.empty) if e}}
+        self.collapsed_replicates += int(fit.collapsed.sum())
+        self.unconverged_replicates += int(fit.unconverged.sum())
+        if fit.unconverged.any():
+            self.worst_replicate_discrepancy = max(self.worst_replicate_discrepancy, float(fit.discrepancy.max()))
         return fit.factors
 
     def aux(self) -> np.ndarray:
@@ -215,14 +241,30 @@ class FittedRecipe:
         return out
 
     def _note_empty(self) -> None:
-        """Record (once per margin) a warning when a replicate left a margin category without weight."""
+        """Record (once per step) a warning when replicates needed a per-replicate collapse or were
+        accepted beyond the replicate tolerance (`replicate_adjustments` has the counts)."""
         for op in self.ops:
-            for name, count in op.last.get("empty", {}).items():
-                message = (f"weighting step {op.index + 1}: in some replicates category(ies) of margin '{name}' had no weight "
-                           "and were left unadjusted; collapse categories so each spans several PSUs")
+            if not isinstance(op, _RakeOp) or op.reference is None:
+                continue
+            if op.collapsed_replicates:
+                message = (f"weighting step {op.index + 1}: in some replicates a margin category had no respondents and was "
+                           "merged into its neighbour for that replicate; collapse categories so each spans several PSUs")
                 if all(p.message != message for p in self.warnings):
-                    self.warnings.append(Problem("replicate-empty-category", message, severity="warning", column=name,
-                                                 count=count))
+                    self.warnings.append(Problem("replicate-empty-category", message, severity="warning"))
+            if op.unconverged_replicates:
+                message = (f"weighting step {op.index + 1}: some replicates stopped beyond the replicate tolerance "
+                           f"({max(op.tolerance, op.replicate_tolerance or op.tolerance):g}); raise "
+                           "replicate_max_iterations or loosen replicate_tolerance")
+                if all(p.message != message for p in self.warnings):
+                    self.warnings.append(Problem("replicate-nonconvergence", message, severity="warning"))
+
+    def replicate_adjustments(self) -> dict[str, int]:
+        """Replicate columns re-weighted so far that needed a per-replicate collapse of an empty margin
+        category ("collapsed") or were accepted beyond the replicate tolerance ("unconverged"), summed
+        over the raking steps."""
+        ops = [op for op in self.ops if isinstance(op, _RakeOp)]
+        return {"collapsed": sum(op.collapsed_replicates for op in ops),
+                "unconverged": sum(op.unconverged_replicates for op in ops)}
 
     def calibration_matrix(self) -> np.ndarray:
         """(C, p) auxiliary vector x of each class for the last class-level step (full column rank:
@@ -263,7 +305,9 @@ def _build_ops(steps: Sequence[Step], classes: ClassIndex, data: pl.DataFrame, c
         elif isinstance(s, RakeStep):
             margins, note, probs = build_margins(classes, list(s.margins), s.targets, code_order=code_order, collapse=s.collapse, where=where)
             ops[s.index] = _RakeOp(s.index, "rake", margins, _population(margins, s.total), s.tolerance,
-                                   s.max_iterations, s.allow_nonconvergence)
+                                   s.max_iterations, s.allow_nonconvergence,
+                                   replicate_tolerance=s.replicate_tolerance,
+                                   replicate_max_iterations=s.replicate_max_iterations)
         elif isinstance(s, CalibrateStep):
             margins, note, probs = (build_margins(classes, list(s.margins), s.targets, code_order=code_order,
                                                   collapse=s.collapse, where=where) if s.margins else ([], [], []))

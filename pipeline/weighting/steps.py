@@ -7,7 +7,9 @@ Each table of the array is one step, applied in the declared order; `step` names
   step = "poststratify"  cells = "age_band x sex", targets = "cells.csv" | totals = {...},
                          total = 1200000 (optional), collapse = {...} (optional)
   step = "rake"          margins = ["age_band x sex", "region"], targets = "margins.csv" | totals = {...},
-                         total, tolerance = 1e-6, max_iterations = 100, allow_nonconvergence = false, collapse
+                         total, tolerance = 1e-6, max_iterations = 100, allow_nonconvergence = false, collapse,
+                         replicate_tolerance (default tolerance; looser only), replicate_max_iterations (default
+                         20 x max_iterations): replicate re-weighting only, which always finishes
   step = "trim"          upper = 5.0, lower = 0.2 (at least one), relative_to = "mean" | "median" | "absolute",
                          max_rounds = 100
   step = "calibrate"     distance = "linear" | "logit", bounds = [0.4, 3.0] (logit), margins = [...],
@@ -92,6 +94,8 @@ class RakeStep:
     allow_nonconvergence: bool = False
     collapse: Collapse | None = None
     kind: str = "rake"
+    replicate_tolerance: float | None = None  # re-weighting a replicate: this tolerance (default `tolerance`)
+    replicate_max_iterations: int | None = None  # and this many cycles (default 20 x max_iterations)
 
 
 @dataclass(frozen=True)
@@ -128,7 +132,8 @@ Step = NonresponseStep | PoststratifyStep | RakeStep | TrimStep | CalibrateStep
 _KEYS = {
     "nonresponse": {"step", "status", "responded", "nonrespondent", "ineligible", "classes"},
     "poststratify": {"step", "cells", "targets", "totals", "total", "collapse"},
-    "rake": {"step", "margins", "targets", "totals", "total", "tolerance", "max_iterations", "allow_nonconvergence", "collapse"},
+    "rake": {"step", "margins", "targets", "totals", "total", "tolerance", "max_iterations", "allow_nonconvergence", "collapse",
+             "replicate_tolerance", "replicate_max_iterations"},
     "trim": {"step", "upper", "lower", "relative_to", "max_rounds"},
     "calibrate": {"step", "distance", "bounds", "margins", "numeric", "targets", "totals", "total", "tolerance",
                   "max_iterations", "collapse"},
@@ -319,9 +324,17 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
         cells = _variables(r, "cells", raw.get("cells", ()), known) if "cells" in raw else ()
         return PoststratifyStep(i, cells, targets, total, collapse)
     if kind == "rake":
+        tolerance = float(r.number("tolerance", 1e-6) or 1e-6)
+        replicate_tolerance = r.number("replicate_tolerance", None)
+        if replicate_tolerance is not None and replicate_tolerance < tolerance:
+            r.bad("replicate_tolerance", f"may be looser than tolerance ({tolerance:g}), never tighter; "
+                  f"got {replicate_tolerance!r}")
+        iterations = r.integer("max_iterations", 100)
         return RakeStep(
-            i, _margins(r, "margins", known, required=True), targets, total, float(r.number("tolerance", 1e-6) or 1e-6),
-            r.integer("max_iterations", 100), r.flag("allow_nonconvergence", False), collapse,
+            i, _margins(r, "margins", known, required=True), targets, total, tolerance,
+            iterations, r.flag("allow_nonconvergence", False), collapse,
+            replicate_tolerance=replicate_tolerance,
+            replicate_max_iterations=r.integer("replicate_max_iterations", 20 * iterations),
         )
     distance = r.choice("distance", "linear", ("linear", "logit"))
     bounds = None

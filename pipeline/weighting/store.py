@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 import polars as pl
 
-from pipeline.errors import WavebookError
+from pipeline.errors import SpecError, WavebookError
 from pipeline.sqlfiles import sql
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
@@ -135,6 +135,43 @@ def export_weights(con: duckdb.DuckDBPyConnection, wave_ids: list[str], path: Pa
     frame = con.sql(sql("weighting_export.sql"), params={"waves": wave_ids}).pl()
     write_frame(frame, path)
     return frame.height
+
+
+def export_replicates(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection, path: Path) -> int:
+    """Write respondent_id, wave, weight and replicate_1..replicate_R of one wave to `path`, and the
+    variance recipe to `<path>.replicates.json` (`pipeline.estimation.replicate_export`); returns R."""
+    import json
+
+    from pipeline.estimation.replicate_export import replicate_weights
+    from pipeline.estimation.design import SampleDesign
+    from pipeline.estimation.options import parse_variance
+    from pipeline.staging.database import load_responses
+
+    options, problems = parse_variance(study.variance)
+    if problems:
+        raise SpecError(f"{study.path}: the [variance] table has {len(problems)} problem(s)", problems)
+    recipe, _ = fit_wave(study, wave_id, con=con)
+    d = study.design
+    design = SampleDesign(weight="__unused", strata=d.strata, psu=d.psu, psu_ids=d.psu_ids,
+                          population_size=_stratum_values(d.population), sampling_fraction=_stratum_values(d.sampling_fraction),
+                          single_psu=d.single_psu, collapse_with={str(k): str(v) for k, v in d.collapse_with.items()},
+                          second_stage_fraction=d.second_stage_fraction, first_stage=d.first_stage)
+    responses = load_responses(con, study, [wave_id])
+    export = replicate_weights(responses, design, recipe, method=options.method, fay=options.fay,
+                               replicates=options.replicates, seed=options.seed, fpc_values=design.fpc_values(responses))
+    frame = pl.DataFrame({"respondent_id": export.ids, "wave": [wave_id] * len(export.ids),
+                          "weight": recipe.weights}).with_columns(
+        pl.Series(f"replicate_{r + 1}", export.weights[:, r]) for r in range(export.weights.shape[1]))
+    sidecar = path.with_name(f"{path.name}.replicates.json")
+    write_frame(frame, path)
+    tmp = sidecar.with_name(f".{sidecar.name}.tmp")
+    tmp.write_text(json.dumps({"wave": wave_id, **export.metadata()}, indent=1), encoding="utf-8")
+    tmp.replace(sidecar)
+    return int(export.weights.shape[1])
+
+
+def _stratum_values(values: dict) -> dict[str, float] | None:
+    return {str(k): float(v) for k, v in values.items()} if values else None
 
 
 def write_frame(frame: pl.DataFrame, path: Path) -> None:
