@@ -84,7 +84,7 @@ def is_own_output(path: Path) -> bool:
 
 def output_problems(path: Path, inputs: Iterable[Input], *, force: bool, option: str) -> list[Problem]:
     """Every reason not to write `path` (empty when it may be written); `option` names the flag."""
-    for item in inputs:
+    for item in [*inputs, Input(path.parent / MARKER, "wavebook's record of the files it wrote")]:
         if same_file(path, item.path):
             return [
                 Problem(
@@ -173,9 +173,13 @@ def _record(path: Path, digest: str) -> None:
     marker = path.parent / MARKER
     entries = _read_marker(path.parent)
     entries[path.name] = digest
-    temp = marker.with_name(f"{MARKER}.tmp")
-    temp.write_text(json.dumps(entries, indent=1, sort_keys=True) + "\n", encoding="utf-8")
-    os.replace(temp, marker)
+    handle, temp = tempfile.mkstemp(dir=path.parent, prefix=f"{MARKER}.", suffix=".tmp")
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8") as out:
+            out.write(json.dumps(entries, indent=1, sort_keys=True) + "\n")
+        os.replace(temp, marker)
+    finally:
+        Path(temp).unlink(missing_ok=True)
 
 
 def _umask() -> int:

@@ -40,7 +40,8 @@ def _quoted_file(tmp_path: Path) -> Path:
 
 def test_estimate_reads_a_column_name_with_a_quote(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     data = _quoted_file(tmp_path)
-    code, out, err = wavebook(["estimate", str(data), "--weight", "area", "--mean", QUOTED, "--quiet"], capsys)
+    code, out, err = wavebook(["estimate", str(data), "--weight", "area", "--mean", QUOTED, "--quiet",
+                                  "--digits", "all"], capsys)  # full precision, compared at 1e-12
     assert code == 0, err
     (row,) = list(csv.DictReader(io.StringIO(out)))
     assert row["variable"] == QUOTED

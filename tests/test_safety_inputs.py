@@ -45,6 +45,14 @@ def test_database_naming_an_existing_csv_is_refused(tracker: Tracker, capsys: py
     assert fingerprint(tracker.folder) == before
 
 
+def test_database_naming_a_folder_is_refused_by_check_too(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    (tracker.folder / "archive").mkdir()
+    tracker.write_spec('database = "archive"\n' + TRACKER_SPEC)
+    for command in ("check", "stage", "run"):
+        code, _, err = wavebook([command, str(tracker.spec_path), "--quiet"], capsys)
+        assert (command, code, "[not-a-database]" in err) == (command, 1, True)
+
+
 def test_database_naming_the_spec_is_refused(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
     tracker.write_spec('database = "study.toml"\n' + TRACKER_SPEC)
     before = fingerprint(tracker.folder)

@@ -60,7 +60,7 @@ def open_database(study: Study, *, read_only: bool = False) -> duckdb.DuckDBPyCo
     (stage a wave first). The connection has the `wb_number`/`wb_code` text macros installed.
     """
     path = study.database_path
-    if read_only and not path.is_file():
+    if read_only and not path.exists():
         raise FileNotFoundError(f"no study database at {path}; stage a wave first (wavebook stage {study.path})")
     con = connect(path, read_only=read_only)
     prepare_connection(con)

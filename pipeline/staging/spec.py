@@ -227,6 +227,7 @@ class Study:
             variable_types={name: v.type for name, v in self.variables.items()},
             coded=frozenset(coded | ({self.design.strata} if self.design.strata else set())),
             codes={name: tuple(str(c) for c in v.valid_codes) for name, v in self.variables.items() if v.valid_codes},
+            waves=tuple(w.id for w in self.waves),
         )
 
     def wave(self, wave_id: str) -> Wave:

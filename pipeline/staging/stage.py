@@ -69,7 +69,7 @@ def check_wave(study: Study, wave_id: str) -> list[Problem]:
     which is opened read-only when it exists.
     """
     wave = study.wave(wave_id)
-    if study.database_path.is_file():
+    if study.database_path.exists():  # a folder or another file there is refused (not-a-database)
         con = open_database(study, read_only=True)
     else:
         con = duckdb.connect()
