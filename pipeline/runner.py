@@ -12,11 +12,14 @@ order, are small functions so later stages slot in between staging and rendering
   5b. `pipeline.tables.Tabulation`       with `[tables]`: banner cells and tests of each wave from
                                          the same weighted rows; `<stem>_cells` / `<stem>_tests`
                                          exports beside the book
-  6. `render_book`                       the HTML book, written atomically
+  6. `save_results`                      the cells and the book's other inputs stored
+                                         (`wavebook book` re-renders from them)
+  7. `render_book`                       the HTML book and its manifest.json, written atomically
 """
 
 from __future__ import annotations
 
+import datetime as dt
 import sys
 from pathlib import Path
 
@@ -24,6 +27,8 @@ import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
+from pipeline.book.manifest import run_manifest
+from pipeline.book.store import load_results, save_results
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.outputs import check_output, file_sha256, study_inputs
@@ -32,7 +37,6 @@ from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.staging.wave_columns import wave_signature
 from pipeline.tables import Tabulation, tables_spec
-from pipeline.tables.book_view import banner_views, legend
 from pipeline.tables.exports import export_paths, write_exports
 from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
@@ -160,6 +164,7 @@ def run_study(
     restage: bool = False,
     quiet: bool = False,
     force: bool = False,
+    single_file: bool | None = None,
     xlsx: bool = False,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
@@ -167,11 +172,13 @@ def run_study(
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), and renders the book to `book_path(study, out, force=force)`, which is
-    checked first. With `[tables]`, the banner exports `<book stem>_cells` / `_tests` are written
-    beside the book (checked first too), and with `xlsx` the workbook `<book stem>_tables.xlsx`
-    (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
+    (`weigh_and_estimate`), stores the book's inputs (`save_results`) and renders the book to
+    `book_path(study, out, force=force)`, which is checked first (`single_file` as in
+    `render_book`), with the run manifest. With `[tables]`, the banner exports `<book stem>_cells` / `_tests`
+    are written beside the book (checked first too), and with `xlsx` the workbook
+    `<book stem>_tables.xlsx` (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
     """
+    started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
     options = variance_options(study)
@@ -201,11 +208,11 @@ def run_study(
     tabulation = Tabulation(study, spec, options) if spec is not None else None
     cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
-    variance = variance_lines(options, study, calibrated=calibrated, replicate_adjustments=adjustments,
-                              replicates={w: options.replicates or 500 for w in adjustments}
-                              if options.method == "bootstrap" else None)
-    banners: tuple = ()
-    banner_legend: tuple[str, ...] = ()
+    weighting = weighting_section(study, reports)
+    variance = variance_lines(
+        options, study, calibrated=calibrated, replicate_adjustments=adjustments,
+        replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
+    )
     if tabulation is not None:
         tables = tabulation.finish()
         with progress.step("writing the banner exports", quiet=quiet):
@@ -213,15 +220,42 @@ def run_study(
             if xlsx:
                 write_workbook(tables, study, exports[4])
         variance = (*variance, tables.chance.sentence(), *tables.notes)
-        banners, banner_legend = banner_views(tables, study), legend(tables)
+    manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
+    save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
             cells,
             out_path=out_path,
-            weighting=weighting_section(study, reports),
+            weighting=weighting,
             variance=variance,
             level=options.level,
-            banners=banners,
-            banner_legend=banner_legend,
+            single_file=single_file,
+            manifest=manifest,
+        )
+
+
+def rebuild_book(
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    single_file: bool | None = None,
+    quiet: bool = False,
+    force: bool = False,
+) -> Path:
+    """Render the book again from the results the last `run_study` stored, without staging,
+    weighting or estimating; the output is checked as in `run_study`. Returns the book's path."""
+    study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
+    stored = load_results(study)
+    with progress.step("writing the book", quiet=quiet):
+        return render_book(
+            study,
+            stored.cells,
+            out_path=out_path,
+            weighting=stored.weighting,
+            variance=stored.variance,
+            level=stored.level,
+            single_file=single_file,
+            manifest=stored.manifest,
         )

@@ -4,12 +4,14 @@ from __future__ import annotations
 
 import argparse
 
+from pipeline.commands.book import add_single_file
+
 HELP = "stage changed waves, compute the tables and write the HTML result book"
 EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --force, --xlsx, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --force, --single-file / --folder, --xlsx, --restage (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
@@ -22,6 +24,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         action="store_true",
         help="replace an existing --out file that wavebook did not write (never an input of the study)",
     )
+    add_single_file(parser)
     parser.add_argument(
         "--xlsx",
         action="store_true",
@@ -39,7 +42,9 @@ def run(args: argparse.Namespace) -> int:
     """Run the study and print the book's path."""
     from pipeline.runner import run_study
 
-    path = run_study(args.spec, out=args.out, restage=args.restage, quiet=args.quiet, force=args.force,
-                     xlsx=args.xlsx)
+    path = run_study(
+        args.spec, out=args.out, restage=args.restage, quiet=args.quiet, force=args.force, single_file=args.single_file,
+        xlsx=args.xlsx,
+    )
     print(path)
     return 0

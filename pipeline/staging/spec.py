@@ -163,11 +163,6 @@ class Variable:
         return tuple(dict.fromkeys((*self.exclude_from_statistics, *self.exclude_from_base)))
 
     @property
-    def routed(self) -> bool:
-        """Whether some respondents may not have been asked (a filter or a wave list)."""
-        return self.asked_if is not None or self.waves is not None or bool(self.item_waves)
-
-    @property
     def columns(self) -> tuple[str, ...]:
         """The data columns this variable reads (the items of a multi set, else its own name)."""
         return tuple(self.items) if self.type == "multi" else (self.name,)
@@ -661,8 +656,9 @@ class _Checker:
             key = f"variables.{name}"
             waves = self.wave_list(table, key, wave_ids) if "waves" in table else None
             item_waves = {
-                item: self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids)
+                item: listed
                 for item, waves_of_item in variable.item_waves.items()
+                if (listed := self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids))
             }
             condition = self.condition(table, key, columns, variable) if "asked_if" in table else None
             column = self.wave_columns(table, key, wave_ids) if "column" in table else {}
@@ -670,6 +666,13 @@ class _Checker:
             out[name] = replace(
                 variable, asked_if=condition, waves=waves, item_waves=item_waves, column=column, recode=recode
             )
+        for wave_id in wave_ids:  # a renamed column may not be another variable's column in that wave
+            owner = {c: v.name for v in out.values() for c in v.wave_columns(wave_id) if wave_id not in v.column}
+            for variable in out.values():
+                source = variable.column.get(wave_id)
+                if source is not None and variable.asked_in(wave_id) and source in owner:
+                    self.add("duplicate-column", f"variables.{variable.name}.column.{wave_id}",
+                             f"wave {wave_id}'s column '{source}' is already read by variables.{owner[source]}")
         return out
 
     def derived(self, raw: object, variables: dict[str, Variable]) -> dict[str, Variable]:
