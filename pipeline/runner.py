@@ -9,6 +9,9 @@ order, are small functions so later stages slot in between staging and rendering
   4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
   5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
                                          effects joined onto the same cells
+  5b. `pipeline.tables.Tabulation`       with `[tables]`: banner cells and tests of each wave from
+                                         the same weighted rows; `<stem>_cells` / `<stem>_tests`
+                                         exports beside the book
   6. `save_results`                      the cells and the book's other inputs stored
                                          (`wavebook book` re-renders from them)
   7. `render_book`                       the HTML book and its manifest.json, written atomically
@@ -33,6 +36,9 @@ from pipeline.staging.database import column_types, load_responses, open_databas
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.staging.wave_columns import wave_signature
+from pipeline.tables import Tabulation, tables_spec
+from pipeline.tables.exports import export_paths, write_exports
+from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -109,9 +115,12 @@ def variance_options(study: Study) -> VarianceOptions:
 
 
 def weigh_and_estimate(
-    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False
+    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False,
+    tabulation: Tabulation | None = None,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
+
+    With `tabulation`, each weighted wave is also given to it (banner tables, `pipeline.tables`).
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
     (wave, variable, row_order), the weighting report of each wave, and for replicate methods
@@ -135,6 +144,9 @@ def weigh_and_estimate(
                 responses = load_responses(con, study, [wave_id])
                 layout = cells.filter(pl.col("wave") == wave_id)
                 estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
+            if tabulation is not None:
+                with progress.step(f"banner tables of wave {wave_id}", quiet=quiet):
+                    tabulation.add_wave(wave_id, responses, recipe, layout)
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
             if options.method != "taylor":
@@ -153,6 +165,7 @@ def run_study(
     quiet: bool = False,
     force: bool = False,
     single_file: bool | None = None,
+    xlsx: bool = False,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
@@ -161,12 +174,22 @@ def run_study(
     wave and estimates every cell with its standard error, interval and design effect
     (`weigh_and_estimate`), stores the book's inputs (`save_results`) and renders the book to
     `book_path(study, out, force=force)`, which is checked first (`single_file` as in
-    `render_book`), with the run manifest. Raises SpecError / DataError with every problem found.
+    `render_book`), with the run manifest. With `[tables]`, the banner exports `<book stem>_cells` / `_tests`
+    are written beside the book (checked first too), and with `xlsx` the workbook
+    `<book stem>_tables.xlsx` (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
     """
     started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
     options = variance_options(study)
+    spec = tables_spec(study)
+    if xlsx and spec is None:
+        problem = Problem("no-tables", "--xlsx writes the banner tables, but the spec has no [tables] table",
+                          file=str(study.path))
+        raise SpecError(f"{study.path}: nothing to write to a workbook", [problem])
+    exports = export_paths(out_path, xlsx=xlsx) if spec is not None else []
+    for path in exports:
+        check_output(path, study_inputs(study), force=force, option="--out")
     for wave_id, reason in stage_reasons(study, restage=restage).items():
         if reason.startswith("the spec changed"):
             print(f"wave {wave_id}: {reason} since it was staged; restaging it from {study.wave(wave_id).file}",
@@ -182,13 +205,21 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet)
+    tabulation = Tabulation(study, spec, options) if spec is not None else None
+    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     weighting = weighting_section(study, reports)
     variance = variance_lines(
         options, study, calibrated=calibrated, replicate_adjustments=adjustments,
         replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
     )
+    if tabulation is not None:
+        tables = tabulation.finish()
+        with progress.step("writing the banner exports", quiet=quiet):
+            write_exports(tables, exports[:4])
+            if xlsx:
+                write_workbook(tables, study, exports[4])
+        variance = (*variance, tables.chance.sentence(), *tables.notes)
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
     save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):

@@ -11,7 +11,7 @@ EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --force, --single-file / --folder, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --force, --single-file / --folder, --xlsx, --restage (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
@@ -26,6 +26,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     add_single_file(parser)
     parser.add_argument(
+        "--xlsx",
+        action="store_true",
+        help="also write the banner tables as a spreadsheet workbook (<book>_tables.xlsx; needs [tables] "
+        "and the xlsx extra: pip install 'wavebook[xlsx]')",
+    )
+    parser.add_argument(
         "--restage",
         action="store_true",
         help="stage every wave again, even those whose raw file has not changed",
@@ -37,7 +43,8 @@ def run(args: argparse.Namespace) -> int:
     from pipeline.runner import run_study
 
     path = run_study(
-        args.spec, out=args.out, restage=args.restage, quiet=args.quiet, force=args.force, single_file=args.single_file
+        args.spec, out=args.out, restage=args.restage, quiet=args.quiet, force=args.force, single_file=args.single_file,
+        xlsx=args.xlsx,
     )
     print(path)
     return 0

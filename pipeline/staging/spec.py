@@ -64,6 +64,8 @@ class Design:
     probability, which gives the (1 - pi) approximation of pipeline.estimation.design).
     extreme_weight_ratio: staging warns (extreme-weight, naming the ids) about a design weight above
     this multiple of the wave's median weight (default 1,000: common practice, no source).
+    same_psus_across_waves: the waves re-interview the same PSUs (a panel of areas), so wave-over-wave
+    changes are estimated on the waves stacked into one design (pipeline.tables.wave_change).
     """
 
     kind: Literal["probability", "nonprobability"] = "probability"
@@ -80,6 +82,7 @@ class Design:
     first_stage: Literal["equal", "pps"] = "equal"
     psu_inclusion_probability: str | None = None
     extreme_weight_ratio: float = 1000.0
+    same_psus_across_waves: bool = False
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -200,6 +203,8 @@ class Study:
     database: Path | None = None  # default: <spec stem>.duckdb beside the spec
     weighting: tuple[dict, ...] = ()  # raw [[weighting]] steps, parsed by pipeline.weighting
     variance: dict = field(default_factory=dict)  # raw [variance] table, parsed by pipeline.estimation
+    tables: dict = field(default_factory=dict)  # raw [tables] table, parsed by pipeline.tables.spec
+    banners: tuple[dict, ...] = ()  # raw [[banners]] tables, parsed by pipeline.tables.spec
 
     @property
     def database_path(self) -> Path:
@@ -234,6 +239,7 @@ class Study:
 
 _TOP_KEYS = (
     "title", "notes", "respondent_id", "database", "waves", "design", "variables", "derived", "weighting", "variance",
+    "tables", "banners",
 )
 _DERIVED_KEYS = ("label", "type", "values", "nets", "when")
 ANY_ITEM_LABEL = "Any of these"  # the multi set's own net of every item (pipeline.topline)
@@ -253,6 +259,7 @@ _DESIGN_KEYS = (
     "first_stage",
     "psu_inclusion_probability",
     "extreme_weight_ratio",
+    "same_psus_across_waves",
 )
 _ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
@@ -276,6 +283,7 @@ _INT_LITERAL = re.compile(r"^[+-]?[0-9]+$")
 _TOML_POSITION = re.compile(r"\(at line (\d+), column (\d+)\)")
 
 _TYPE_NAMES = {
+    bool: "true or false",
     str: "a string",
     list: "an array",
     dict: "a table",
@@ -341,6 +349,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
     the spec is valid.
     """
     from pipeline.estimation.options import parse_variance
+    from pipeline.tables.spec import parse_tables
     from pipeline.weighting.steps import parse_steps
 
     problems: list[Problem] = []
@@ -352,6 +361,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
             parse_steps(study.weighting, study.step_context())
         except SpecError as exc:
             problems += exc.problems
+        problems += parse_tables(study)[1]
     return problems
 
 
@@ -407,6 +417,8 @@ class _Checker:
         ok = type(value) is dt.date if kind is dt.date else isinstance(value, kind) and not isinstance(value, bool)
         if kind is float:
             ok = _is_number(value)
+        if kind is bool:
+            ok = isinstance(value, bool)
         if not ok:
             wanted = "a number" if kind is float else _TYPE_NAMES.get(kind, kind.__name__)
             full = f"{key}.{name}" if key else name
@@ -451,6 +463,11 @@ class _Checker:
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
+        tables = self.typed(data, "", "tables", dict)
+        banners = data.get("banners", [])
+        if not isinstance(banners, list) or not all(isinstance(b, dict) for b in banners):
+            self.add("wrong-type", "banners", "must be an array of tables ([[banners]] blocks)")
+            banners = []
         self.columns(respondent_id, design, variables)
         if self.problems:
             return None
@@ -465,6 +482,8 @@ class _Checker:
             database=(spec_path.parent / database) if database else None,
             weighting=weighting,
             variance=dict(variance or {}),
+            tables=dict(tables or {}),
+            banners=tuple(banners),
         )
 
     def weighting(self, data: dict) -> tuple[dict, ...]:
@@ -909,6 +928,7 @@ class _Checker:
         if ratio is not None and not ratio > 1:
             self.add("bad-value", "design.extreme_weight_ratio", f"must be above 1, not {ratio}", value=ratio)
             ratio = None
+        same_psus = self.typed(raw, "design", "same_psus_across_waves", bool)
         return Design(
             kind=kind,  # type: ignore[arg-type]
             strata=strata,
@@ -924,6 +944,7 @@ class _Checker:
             first_stage=first_stage,  # type: ignore[arg-type]
             psu_inclusion_probability=inclusion,
             extreme_weight_ratio=float(ratio) if ratio is not None else 1000.0,
+            same_psus_across_waves=bool(same_psus),
         )
 
     def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:
