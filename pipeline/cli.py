@@ -40,6 +40,7 @@ COMMANDS: dict[str, str] = {
     "stage": "stage",
     "weigh": "weigh",
     "run": "run",
+    "book": "book",
     "demo": "demo",
     "rake": "rake",
     "estimate": "estimate",

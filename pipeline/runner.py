@@ -9,13 +9,19 @@ order, are small functions so later stages slot in between staging and rendering
   4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
   5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
                                          effects joined onto the same cells
+  5b. `pipeline.tables.Tabulation`       with `[tables]`: banner cells and tests of each wave from
+                                         the same weighted rows; `<stem>_banner_cells` / `<stem>_tests`
+                                         exports beside the book
   6. `tidy_cells` + `write_cells`        the tidy export, `<spec stem>_cells.parquet` / `.csv`
                                          beside the book (`pipeline.cells_export`)
-  7. `render_book`                       the HTML book, written atomically
+  7. `save_results`                      the cells and the book's other inputs stored
+                                         (`wavebook book` re-renders from them)
+  8. `render_book`                       the HTML book and its manifest.json, written atomically
 """
 
 from __future__ import annotations
 
+import datetime as dt
 import sys
 import time
 from pathlib import Path
@@ -25,7 +31,10 @@ import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
-from pipeline.cells_export import export_paths, tidy_cells, write_cells
+from pipeline.book.manifest import run_manifest
+from pipeline.book.store import load_results, save_results
+from pipeline.cells_export import export_paths as cells_export_paths
+from pipeline.cells_export import tidy_cells, write_cells
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.memory import DEFAULT_BUDGET, variable_batches
@@ -34,6 +43,9 @@ from pipeline.staging.database import column_types, load_responses, open_databas
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.staging.wave_columns import wave_signature
+from pipeline.tables import Tabulation, tables_spec
+from pipeline.tables.exports import export_paths, write_exports
+from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
 from pipeline.weighted_cells import ESTIMATE_SCHEMA, RememberedReplay, wave_estimates
 from pipeline.weighting import WeightingReport
@@ -117,8 +129,11 @@ def weigh_and_estimate(
     quiet: bool = False,
     timings: dict[str, float] | None = None,
     memory_budget: int = DEFAULT_BUDGET,
+    tabulation: Tabulation | None = None,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
+
+    With `tabulation`, each weighted wave is also given to it (banner tables, `pipeline.tables`).
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
     (wave, variable, row_order), the weighting report of each wave, and for replicate methods
@@ -163,6 +178,11 @@ def weigh_and_estimate(
                     del part
             del held
             clock["estimates"] += time.perf_counter() - start
+            if tabulation is not None:  # banner tables read the wave's rows whole (outside the memory budget)
+                with progress.step(f"banner tables of wave {wave_id}", quiet=quiet):
+                    responses = load_responses(con, study, [wave_id])
+                    tabulation.add_wave(wave_id, responses, recipe, layout)
+                    del responses
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
             if options.method != "taylor":
@@ -196,6 +216,8 @@ def run_study(
     quiet: bool = False,
     force: bool = False,
     memory_budget: int = DEFAULT_BUDGET,
+    single_file: bool | None = None,
+    xlsx: bool = False,
 ) -> Path:
     """Run the study spec at `spec_path` and return the path of the book written.
 
@@ -203,14 +225,26 @@ def run_study(
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
     (`weigh_and_estimate`, within `memory_budget` bytes of respondent-level work), writes the tidy
-    cells export beside the book and renders the book to `book_path(study, out, force=force)`,
-    which is checked first. Raises SpecError / DataError with every problem found.
+    cells export beside the book, stores the book's inputs (`save_results`) and renders the book to
+    `book_path(study, out, force=force)`, which is checked first (`single_file` as in
+    `render_book`), with the run manifest. With `[tables]`, the banner exports `<book stem>_banner_cells` / `_tests`
+    are written beside the book (checked first too), and with `xlsx` the workbook
+    `<book stem>_tables.xlsx` (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
     """
+    started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
-    for path in export_paths(out_path, study.path.stem):  # the tidy export beside the book
+    for path in cells_export_paths(out_path, study.path.stem):  # the tidy export beside the book
         check_output(path, study_inputs(study), force=force, option="--out")
     options = variance_options(study)
+    spec = tables_spec(study)
+    if xlsx and spec is None:
+        problem = Problem("no-tables", "--xlsx writes the banner tables, but the spec has no [tables] table",
+                          file=str(study.path))
+        raise SpecError(f"{study.path}: nothing to write to a workbook", [problem])
+    exports = export_paths(out_path, xlsx=xlsx) if spec is not None else []
+    for path in exports:
+        check_output(path, study_inputs(study), force=force, option="--out")
     for wave_id, reason in stage_reasons(study, restage=restage).items():
         if reason.startswith("the spec changed"):
             print(f"wave {wave_id}: {reason} since it was staged; restaging it from {study.wave(wave_id).file}",
@@ -226,17 +260,60 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet, memory_budget=memory_budget)
+    tabulation = Tabulation(study, spec, options) if spec is not None else None
+    cells, reports, adjustments = weigh_and_estimate(
+        study, cells, options, quiet=quiet, memory_budget=memory_budget, tabulation=tabulation
+    )
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
+    weighting = weighting_section(study, reports)
+    variance = variance_lines(
+        options, study, calibrated=calibrated, replicate_adjustments=adjustments,
+        replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
+    )
+    if tabulation is not None:
+        tables = tabulation.finish()
+        with progress.step("writing the banner exports", quiet=quiet):
+            write_exports(tables, exports[:4])
+            if xlsx:
+                write_workbook(tables, study, exports[4])
+        variance = (*variance, tables.chance.sentence(), *tables.notes)
+    manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
+    save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
         write_cells(tidy_cells(cells), out_path, study.path.stem)
         return render_book(
             study,
             cells,
             out_path=out_path,
-            weighting=weighting_section(study, reports),
-            variance=variance_lines(options, study, calibrated=calibrated, replicate_adjustments=adjustments,
-                                    replicates={w: options.replicates or 500 for w in adjustments}
-                                    if options.method == "bootstrap" else None),
+            weighting=weighting,
+            variance=variance,
             level=options.level,
+            single_file=single_file,
+            manifest=manifest,
+        )
+
+
+def rebuild_book(
+    spec_path: str | Path,
+    *,
+    out: str | Path | None = None,
+    single_file: bool | None = None,
+    quiet: bool = False,
+    force: bool = False,
+) -> Path:
+    """Render the book again from the results the last `run_study` stored, without staging,
+    weighting or estimating; the output is checked as in `run_study`. Returns the book's path."""
+    study = load_spec(spec_path)
+    out_path = book_path(study, out, force=force)
+    stored = load_results(study)
+    with progress.step("writing the book", quiet=quiet):
+        return render_book(
+            study,
+            stored.cells,
+            out_path=out_path,
+            weighting=stored.weighting,
+            variance=stored.variance,
+            level=stored.level,
+            single_file=single_file,
+            manifest=stored.manifest,
         )

@@ -48,7 +48,7 @@ import polars as pl
 from pipeline.sqlfiles import sql
 from pipeline.staging.database import column_types, table_columns
 from pipeline.staging.routing import asked_column, flagged, routed_relation
-from pipeline.staging.spec import Code, Study, Variable
+from pipeline.staging.spec import ANY_ITEM_LABEL, Code, Study, Variable
 
 CELL_SCHEMA: dict[str, pl.DataType] = {
     "wave": pl.String(),
@@ -70,7 +70,7 @@ BASE_LABELS = {"asked": "Base: all asked", "answered": "Base: all giving an answ
 MISSING_LABEL = {"multi": "Not asked", "default": "No answer"}
 NOT_ASKED_LABEL = "Not asked"
 ROUTED_VIEW = "__wavebook_routed"
-ANY_LABEL = "Any of these"
+ANY_LABEL = ANY_ITEM_LABEL
 
 
 @dataclass(frozen=True)

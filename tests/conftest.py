@@ -155,3 +155,15 @@ def reference_dir() -> Path:
     if not REFERENCE_DIR.is_dir():
         pytest.skip(f"reference data folder {REFERENCE_DIR} is absent")
     return REFERENCE_DIR
+
+
+@pytest.fixture(scope="session")
+def demo_study(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo study copied and run once per test session (book, manifest, stored results);
+    returns its spec. Tests must not change the folder."""
+    from pipeline.commands.demo import DEMO_SPEC, copy_demo
+    from pipeline.runner import run_study
+
+    folder = copy_demo(tmp_path_factory.mktemp("demo-study") / "study")
+    run_study(folder / DEMO_SPEC, quiet=True)
+    return folder / DEMO_SPEC

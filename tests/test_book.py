@@ -2,8 +2,8 @@
 
 Topline values are checked against an independent polars computation on the same invented
 respondents (polars is the outside reference: a general-purpose data-frame library computing
-value counts, means and medians directly from the rows). The book is checked by parsing its
-HTML structure with the standard library's html.parser.
+value counts, means and medians directly from the rows). The book is checked by parsing it
+with html5lib (the WHATWG HTML parsing algorithm browsers use), strictly: a parse error fails.
 """
 
 from __future__ import annotations
@@ -11,17 +11,18 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import os
-from html.parser import HTMLParser
+import re
 from pathlib import Path
+from xml.etree.ElementTree import Element
 
 import duckdb
+import html5lib
 import numpy as np
 import polars as pl
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.book import render as book_module
 from pipeline.book.render import LOW_BASE, VERY_LOW_BASE, build_context, render_book
 from pipeline import outputs as outputs_module
 from pipeline.errors import WavebookError
@@ -277,70 +278,59 @@ def test_categories_and_no_answer_add_up_to_the_wave(answers: list[int | None]) 
 # ---- the HTML book, parsed --------------------------------------------------------------------
 
 
-class _Node:
-    def __init__(self, tag: str, attrs: dict[str, str | None]) -> None:
-        self.tag, self.attrs, self.children = tag, attrs, []
-        self.content: list[str | _Node] = []  # text and child elements in document order
-
-    def find_all(self, tag: str) -> list[_Node]:
-        found = []
-        for child in self.children:
-            if child.tag == tag:
-                found.append(child)
-            found += child.find_all(tag)
-        return found
-
-    @property
-    def text(self) -> str:
-        return " ".join(" ".join(p if isinstance(p, str) else p.text for p in self.content).split())
+def _parse(path: Path) -> Element:
+    """The page as an element tree; html5lib in strict mode raises on any HTML5 parse error."""
+    parser = html5lib.HTMLParser(strict=True, tree=html5lib.getTreeBuilder("etree"), namespaceHTMLElements=False)
+    return parser.parse(path.read_text(encoding="utf-8"))
 
 
-class _TreeBuilder(HTMLParser):
-    """A minimal element tree from html.parser; void elements are closed at once."""
-
-    VOID = {"meta", "br", "hr", "img", "input", "link"}
-
-    def __init__(self) -> None:
-        super().__init__()
-        self.root = _Node("#root", {})
-        self.stack = [self.root]
-        self.start_tags: list[str] = []
-
-    def handle_starttag(self, tag, attrs):
-        self.start_tags.append(tag)
-        node = _Node(tag, dict(attrs))
-        self.stack[-1].children.append(node)
-        self.stack[-1].content.append(node)
-        if tag not in self.VOID:
-            self.stack.append(node)
-
-    def handle_endtag(self, tag):
-        assert self.stack[-1].tag == tag, f"</{tag}> closes <{self.stack[-1].tag}>"
-        self.stack.pop()
-
-    def handle_data(self, data):
-        self.stack[-1].content.append(data)
+def _text(element: Element) -> str:
+    return " ".join("".join(element.itertext()).split())
 
 
-def _parse(path: Path) -> _TreeBuilder:
-    builder = _TreeBuilder()
-    builder.feed(path.read_text(encoding="utf-8"))
-    builder.close()
-    assert builder.stack == [builder.root], "unclosed elements"
-    return builder
+def _svg(element: Element, name: str) -> list[Element]:
+    """Descendants named `name` in the SVG namespace (html5lib keeps SVG elements namespaced)."""
+    return [e for e in element.iter() if isinstance(e.tag, str) and e.tag == f"{{http://www.w3.org/2000/svg}}{name}"]
 
 
-def _section(tree: _TreeBuilder, label: str) -> _Node:
-    matches = [s for s in tree.root.find_all("section") if s.find_all("h2") and s.find_all("h2")[0].text == label]
+def _classes(element: Element) -> set[str]:
+    return set((element.get("class") or "").split())
+
+
+def _section(root: Element, label: str) -> Element:
+    matches = [s for s in root.iter("section") if "variable" in _classes(s) and _text(s.find("h2")) == label]
     assert len(matches) == 1, label
     return matches[0]
 
 
-def _table_cell(section: _Node, row_label: str, wave_index: int) -> _Node:
-    (table,) = section.find_all("table")
-    body_rows = table.find_all("tbody")[0].find_all("tr")
-    (row,) = [r for r in body_rows if r.find_all("th")[0].text == row_label]
-    return row.find_all("td")[wave_index]
+def _result_table(section: Element) -> Element:
+    (table,) = [t for t in section.iter("table") if "result" in _classes(t)]
+    return table
+
+
+def _body_rows(section: Element) -> list[Element]:
+    return list(_result_table(section).find("tbody"))
+
+
+def _table_cell(section: Element, row_label: str, column: int) -> Element:
+    (row,) = [r for r in _body_rows(section) if "detail" not in _classes(r) and _text(r.find("th")) == row_label]
+    return row.findall("td")[column]
+
+
+def _detail_text(section: Element, row_label: str, kind: str, column: int) -> str:
+    """The text of the detail row `kind` ("interval", "se", "deff", "count") under `row_label`."""
+    rows = _body_rows(section)
+    start = [i for i, r in enumerate(rows) if "detail" not in _classes(r) and _text(r.find("th")) == row_label][0]
+    for row in rows[start + 1:]:
+        if "detail" not in _classes(row):
+            break
+        if f"detail-{kind}" in _classes(row):
+            return _text(row.findall("td")[column])
+    raise AssertionError(f"no {kind} row under {row_label}")
+
+
+def _figure(cell: Element) -> str:
+    return _text([s for s in cell.iter("span") if "figure" in _classes(s)][0])
 
 
 @pytest.fixture
@@ -348,38 +338,42 @@ def book_path(tmp_path: Path, cells: pl.DataFrame) -> Path:
     return render_book(_study(tmp_path), cells, out_path=tmp_path / "book" / "study.html")
 
 
-def test_one_table_per_variable(book_path: Path, tmp_path: Path) -> None:
-    tree = _parse(book_path)
-    assert len(tree.root.find_all("table")) == len(_study(tmp_path).variables)
-    heads = [th.text for th in tree.root.find_all("table")[0].find_all("thead")[0].find_all("th")]
-    assert heads == ["", "Wave 1 (spring) 2 Mar 2026 to 21 Mar 2026", "Wave 2 (summer)"]
+def test_one_result_table_per_variable_with_caption_and_header_cells(book_path: Path, tmp_path: Path) -> None:
+    root = _parse(book_path)
+    results = [t for t in root.iter("table") if "result" in _classes(t)]
+    assert len(results) == len(_study(tmp_path).variables)
+    heads = [_text(th) for th in results[0].find("thead").iter("th")]
+    assert heads == ["Answer", "Wave 1 (spring) 2 Mar 2026 to 21 Mar 2026", "Wave 2 (summer)"]
+    for table in root.iter("table"):
+        assert table.find("caption") is not None and _text(table.find("caption"))
+        assert all(th.get("scope") in ("col", "row") for th in table.iter("th"))
 
 
 def test_known_percent_and_count_in_the_right_cell(book_path: Path, data: pl.DataFrame) -> None:
     w2 = data.filter(pl.col("wave") == "W2")["region"].drop_nulls()
     count = int((w2 == 2).sum())
     percent = 100 * count / w2.len()
-    cell = _table_cell(_section(_parse(book_path), "Region"), "Eastvale", 1)
-    figure = [s for s in cell.find_all("span") if s.attrs.get("class") == "figure"][0].text
-    shown_count = [s for s in cell.find_all("span") if s.attrs.get("class") == "count"][0].text
-    assert figure == f"{int(percent + 0.5)}%"  # rounded half up, as the book promises
-    assert shown_count == f"n {count}"  # the "n" is text, so it survives copy-paste and screen readers
+    section = _section(_parse(book_path), "Region")
+    assert _figure(_table_cell(section, "Eastvale", 1)) == f"{int(percent + 0.5)}%"  # rounded half up
+    assert _detail_text(section, "Eastvale", "count", 1) == str(count)
 
 
-def test_cell_prefixes_are_text_not_style(book_path: Path) -> None:
-    """The "n" and "deff" prefixes are in the HTML, not generated by CSS (lost on copy-paste)."""
+def test_detail_labels_are_text_not_style(book_path: Path) -> None:
+    """Detail rows are named in their header cell (read by screen readers, kept on copy-paste)."""
     html = book_path.read_text(encoding="utf-8")
-    assert '<abbr title="unweighted number of respondents">n</abbr>' in html
-    assert "content:" not in html and "::before" not in html and "::after" not in html
+    section = _section(_parse(book_path), "Region")
+    labels = [_text(r.find("th")) for r in _body_rows(section) if "detail" in _classes(r)]
+    assert "Respondents (n)" in labels
+    assert not re.search(r"(?<![-\w])content\s*:", html) and "::before" not in html and "::after" not in html
 
 
 def test_labels_are_escaped_not_executed(book_path: Path) -> None:
     html = book_path.read_text(encoding="utf-8")
-    tree = _parse(book_path)
-    assert "script" not in tree.start_tags
+    root = _parse(book_path)
+    assert [s.text for s in root.iter("script") if "alert" in (s.text or "")] == []
     assert "&lt;script&gt;" in html
-    assert _section(tree, SCRIPT_LABEL).find_all("table")
-    assert _table_cell(_section(tree, "Region"), "Tea & Coffee Coast", 0) is not None
+    assert _result_table(_section(root, SCRIPT_LABEL)) is not None
+    assert _table_cell(_section(root, "Region"), "Tea & Coffee Coast", 0) is not None
 
 
 def test_no_respondent_ids_in_the_book(book_path: Path, data: pl.DataFrame) -> None:
@@ -389,16 +383,17 @@ def test_no_respondent_ids_in_the_book(book_path: Path, data: pl.DataFrame) -> N
 
 
 def test_self_contained_page(book_path: Path) -> None:
-    tree = _parse(book_path)
-    assert not [t for t in tree.start_tags if t in ("link", "img", "script", "iframe", "object")]
+    root = _parse(book_path)
+    assert not [e.tag for e in root.iter() if e.tag in ("link", "img", "iframe", "object", "embed")]
+    assert all(s.get("src") is None for s in root.iter("script"))
     assert "http://" not in book_path.read_text() and "https://" not in book_path.read_text()
-    assert tree.root.find_all("style")
+    assert root.find(".//style") is not None
 
 
 def _caution_titles(path: Path) -> list[str]:
-    tree = _parse(path)
-    (cautions,) = [s for s in tree.root.find_all("section") if s.attrs.get("id") == "cautions"]
-    return [h.text for h in cautions.find_all("h3")]
+    root = _parse(path)
+    (cautions,) = [s for s in root.iter("section") if s.get("id") == "cautions"]
+    return [_text(h) for h in cautions.iter("h4")]
 
 
 def test_nonprobability_caution_only_for_nonprobability_designs(tmp_path: Path, cells: pl.DataFrame) -> None:
@@ -409,32 +404,34 @@ def test_nonprobability_caution_only_for_nonprobability_designs(tmp_path: Path, 
     assert "What a confidence interval says" in _caution_titles(probability)
 
 
-def test_low_bases_are_marked(book_path: Path, cells: pl.DataFrame) -> None:
+def test_low_bases_are_marked_and_explained_under_the_table(book_path: Path, cells: pl.DataFrame) -> None:
     w2_base = _cell(cells, "W2", "region", "base", "Base: all giving an answer")["count"]
     aware_base = _cell(cells, "W2", "aware", "net", "Any of these")["base"]
     assert VERY_LOW_BASE <= w2_base < LOW_BASE and aware_base < VERY_LOW_BASE  # the fixture's intent
-    tree = _parse(book_path)
-    assert _table_cell(_section(tree, "Region"), "Northmoor", 0).attrs.get("class") is None  # W1 base >= 50
-    assert _table_cell(_section(tree, "Region"), "Northmoor", 1).attrs.get("class") == "base-low"
-    assert _table_cell(_section(tree, "Aided awareness"), "Any of these", 1).attrs.get("class") == "base-very-low"
+    root = _parse(book_path)
+    assert _table_cell(_section(root, "Region"), "Northmoor", 0).get("class") is None  # W1 base >= 50
+    assert _table_cell(_section(root, "Region"), "Northmoor", 1).get("class") == "base-low"
+    assert _table_cell(_section(root, "Aided awareness"), "Any of these", 1).get("class") == "base-very-low"
+    legend = _text(_section(root, "Aided awareness").find(".//ul[@class='legend']"))
+    assert f"† base under {LOW_BASE}" in legend and f"‡ base under {VERY_LOW_BASE}" in legend
     assert "Low bases" in _caution_titles(book_path)
 
 
 def test_methodology_says_unweighted_and_lists_waves(book_path: Path) -> None:
-    tree = _parse(book_path)
-    (method,) = [s for s in tree.root.find_all("section") if s.attrs.get("id") == "methodology"]
-    assert "UNWEIGHTED" in method.text
-    assert "Fieldwork 2 Mar 2026 to 21 Mar 2026" in method.text
-    assert f"{W1_SIZE} respondents" in method.text and f"{W2_SIZE} respondents" in method.text
+    root = _parse(book_path)
+    (method,) = [s for s in root.iter("section") if s.get("id") == "methodology"]
+    assert "UNWEIGHTED" in _text(method)
+    assert "Fieldwork 2 Mar 2026 to 21 Mar 2026" in _text(method)
+    assert f"{W1_SIZE} respondents" in _text(method) and f"{W2_SIZE} respondents" in _text(method)
 
 
 def test_a_declared_wave_not_yet_staged_shows_dashes(tmp_path: Path, cells: pl.DataFrame) -> None:
     study = _study(tmp_path)
     later = dataclasses.replace(study, waves=(*study.waves, Wave("W3", "Wave 3 (autumn)", tmp_path / "w3.csv")))
-    tree = _parse(render_book(later, cells, out_path=tmp_path / "three.html"))
-    assert _table_cell(_section(tree, "Region"), "Northmoor", 2).text == "–"
-    (method,) = [s for s in tree.root.find_all("section") if s.attrs.get("id") == "methodology"]
-    assert "Not staged: no figures." in method.text
+    root = _parse(render_book(later, cells, out_path=tmp_path / "three.html"))
+    assert _text(_table_cell(_section(root, "Region"), "Northmoor", 2)) == "–"
+    (method,) = [s for s in root.iter("section") if s.get("id") == "methodology"]
+    assert "Not staged: no figures." in _text(method)
 
 
 def test_footer_gives_time_and_version(tmp_path: Path, cells: pl.DataFrame) -> None:
@@ -472,6 +469,17 @@ def test_failed_replace_leaves_previous_book_untouched(
     assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
+def test_folder_book_replaces_the_previous_folder_whole(tmp_path: Path, cells: pl.DataFrame) -> None:
+    out = tmp_path / "book" / "study.html"
+    index = render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    assert index == tmp_path / "book" / "study" / "index.html"
+    (index.parent / "stale.html").write_text("old", encoding="utf-8")
+    render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    names = sorted(p.name for p in index.parent.iterdir())
+    assert "stale.html" not in names and "index.html" in names and "trends.html" in names
+    assert sorted(p.name for p in (tmp_path / "book").iterdir()) == ["study"]  # no temporary folder left
+
+
 def test_book_file_is_readable_like_a_normal_file(book_path: Path) -> None:
     mask = os.umask(0o022)
     os.umask(mask)
@@ -484,46 +492,145 @@ def _with_estimates(cells: pl.DataFrame) -> pl.DataFrame:
     mean_row = pl.col("code").is_in(["mean", "median"])
     estimate = pl.when(percent_row).then(pl.col("percent") + 0.7).when(mean_row).then(pl.col("value") * 1.1)
     return cells.with_columns(estimate.alias("estimate")).with_columns(
-        (pl.col("estimate") - 2.25).alias("ci_low"), (pl.col("estimate") + 3.5).alias("ci_high")
+        (pl.col("estimate") - 2.25).alias("ci_low"), (pl.col("estimate") + 3.5).alias("ci_high"),
+        pl.lit(1.25).alias("se"), pl.lit(1.4).alias("deff"),
     )
 
 
-def test_weighted_cells_show_estimate_interval_and_unweighted_count(tmp_path: Path, cells: pl.DataFrame) -> None:
+def test_weighted_cells_show_estimate_and_precision_rows(tmp_path: Path, cells: pl.DataFrame) -> None:
     weighted = _with_estimates(cells)
-    tree = _parse(render_book(_study(tmp_path), weighted, out_path=tmp_path / "weighted.html"))
+    root = _parse(render_book(_study(tmp_path), weighted, out_path=tmp_path / "weighted.html"))
     row = _cell(weighted, "W1", "region", "category", "Eastvale")
-    cell = _table_cell(_section(tree, "Region"), "Eastvale", 0)
-    spans = {s.attrs.get("class"): s.text for s in cell.find_all("span")}
+    section = _section(root, "Region")
     estimate = row["percent"] + 0.7
-    assert spans["figure"] == f"{int(estimate + 0.5)}%"
-    assert spans["interval"] == f"{int(estimate - 2.25 + 0.5)}–{int(estimate + 3.5 + 0.5)}"
-    assert spans["count"] == f"n {row['count']}"  # the prefix is text in the cell, not CSS
+    assert 3 < estimate - 2.25 and estimate + 3.5 < 97  # whole numbers are right for these figures
+    assert _figure(_table_cell(section, "Eastvale", 0)) == f"{int(estimate + 0.5)}%"
+    assert _detail_text(section, "Eastvale", "interval", 0) == f"{int(estimate - 2.25 + 0.5)}–{int(estimate + 3.5 + 0.5)}"
+    assert _detail_text(section, "Eastvale", "se", 0) == "1.2"  # 1.25 rounded half to even by format: 1.2
+    assert _detail_text(section, "Eastvale", "deff", 0) == "1.40"
+    assert _detail_text(section, "Eastvale", "count", 0) == str(row["count"])
     mean = _cell(weighted, "W1", "spend", "statistic", "Mean")["value"] * 1.1
-    mean_cell = _table_cell(_section(tree, "Monthly spend (credits)"), "Mean", 0)
-    assert [s.text for s in mean_cell.find_all("span") if s.attrs.get("class") == "figure"] == [f"{mean:,.2f}"]
-    n_cell = _table_cell(_section(tree, "Monthly spend (credits)"), "Number of answers", 0)
+    spend = _section(root, "Monthly spend (credits)")
+    assert _figure(_table_cell(spend, "Mean", 0)) == f"{mean:,.2f}"
     n = _cell(weighted, "W1", "spend", "statistic", "Number of answers")["value"]
-    assert n_cell.text == f"{n:,.0f}"  # counts stay unweighted
+    assert _text(_table_cell(spend, "Number of answers", 0)) == f"{n:,.0f}"  # counts stay unweighted
+    switch = section.find(".//input[@type='checkbox']")
+    assert switch is not None and switch.get("checked") is None  # precision rows hidden by default
 
 
 def test_weighted_book_says_so_and_drops_the_unweighted_caution(tmp_path: Path, cells: pl.DataFrame) -> None:
     path = render_book(_study(tmp_path), _with_estimates(cells), out_path=tmp_path / "weighted.html")
-    tree = _parse(path)
-    (method,) = [s for s in tree.root.find_all("section") if s.attrs.get("id") == "methodology"]
-    assert "WEIGHTED estimates" in method.text
+    root = _parse(path)
+    (method,) = [s for s in root.iter("section") if s.get("id") == "methodology"]
+    assert "WEIGHTED estimates" in _text(method)
     assert "Unweighted figures" not in _caution_titles(path)
     assert "Unweighted figures" in _caution_titles(render_book(_study(tmp_path), cells, out_path=tmp_path / "u.html"))
 
 
-@pytest.mark.parametrize(("percent", "shown"), [(12.5, "13%"), (12.49, "12%"), (0.3, "<1%"), (0.0, "0%"), (99.5, "100%")])
-def test_percentages_round_half_up(percent: float, shown: str) -> None:
-    # the book's display convention: round half up (Python's round() would round half to even)
-    assert book_module._percent_text(percent) == shown
+def test_zero_no_answer_rows_are_left_out_and_said_once(tmp_path: Path, cells: pl.DataFrame) -> None:
+    root = _parse(render_book(_study(tmp_path), cells, out_path=tmp_path / "b.html"))
+    for variable in _study(tmp_path).variables.values():
+        missing = cells.filter((pl.col("variable") == variable.name) & (pl.col("row_kind") == "missing"))
+        if missing.is_empty():
+            continue
+        section = _section(root, variable.label)
+        label = missing["row_label"][0]
+        shown = [_text(r.find("th")) for r in _body_rows(section) if "detail" not in _classes(r)]
+        legend = _text(section.find(".//ul[@class='legend']"))
+        if missing["count"].sum() == 0:
+            assert label not in shown and legend.count(f"“{label}” is 0 in every column and not shown.") == 1
+        else:
+            assert label in shown and "not shown" not in legend
 
 
-def test_small_percentage_intervals_keep_a_decimal() -> None:
-    from pipeline.book.render import _percent_interval
+def test_hostile_labels_render_as_text(tmp_path: Path, cells: pl.DataFrame) -> None:
+    study = _study(tmp_path)
+    hostile = '"><img src=x onerror=alert(1)>'
+    variables = dict(study.variables)
+    variables["region"] = dataclasses.replace(variables["region"], label=f"Region {hostile}")
+    relabelled = cells.with_columns(
+        pl.when(pl.col("row_label") == "Eastvale").then(pl.lit(f"East {hostile}")).otherwise(pl.col("row_label")).alias("row_label")
+    )
+    path = render_book(dataclasses.replace(study, variables=variables), relabelled, out_path=tmp_path / "h.html")
+    root = _parse(path)
+    assert [e for e in root.iter("img")] == []
+    assert _section(root, f"Region {hostile}") is not None
+    assert _table_cell(_section(root, f"Region {hostile}"), f"East {hostile}", 0) is not None
+    assert '<img src=x' not in path.read_text(encoding="utf-8")
 
-    assert _percent_interval(0.0, 0.24) == "0.0–0.2"  # whole numbers would print an empty-looking 0–0
-    assert _percent_interval(0.31, 1.9) == "0.3–1.9"
-    assert _percent_interval(12.5, 18.49) == "13–18"  # half up, like the figures
+
+def test_every_internal_link_resolves_in_both_forms(tmp_path: Path, cells: pl.DataFrame) -> None:
+    study = _study(tmp_path)
+    single = render_book(study, _with_estimates(cells), out_path=tmp_path / "one" / "study.html")
+    folder = render_book(study, _with_estimates(cells), out_path=tmp_path / "many" / "study.html", single_file=False)
+    for pages in ([single], sorted(folder.parent.glob("*.html"))):
+        ids = {p.name: {e.get("id") for e in _parse(p).iter() if e.get("id")} for p in pages}
+        for page in pages:
+            root = _parse(page)
+            for link in root.iter("a"):
+                href = link.get("href")
+                target, _, anchor = href.partition("#")
+                target = target or page.name
+                assert target in ids, f"{page.name}: {href}"
+                assert not anchor or anchor in ids[target], f"{page.name}: {href}"
+            for element in root.iter():
+                for key in ("aria-labelledby",):
+                    for ref in (element.get(key) or "").split():
+                        assert ref in ids[page.name], f"{page.name}: {key}={ref}"
+    assert len(list(folder.parent.glob("*.html"))) == len(study.variables) + 4
+
+
+def test_table_has_a_chart_of_its_latest_column_with_a_text_alternative(tmp_path: Path, cells: pl.DataFrame) -> None:
+    weighted = _with_estimates(cells)
+    root = _parse(render_book(_study(tmp_path), weighted, out_path=tmp_path / "c.html"))
+    section = _section(root, "Region")
+    (svg,) = _svg(section, "svg")
+    assert svg.get("role") == "img" and _svg(svg, "title") and _svg(svg, "desc")
+    labels = [_text(t) for t in _svg(svg, "text") if t.get("class") == "label"]
+    values = [_text(t) for t in _svg(svg, "text") if t.get("class") == "value"]
+    shown = [_text(r.find("th")) for r in _body_rows(section) if r.get("class") in ("row-category", "row-net")]
+    assert labels == shown
+    assert values == [_figure(_table_cell(section, label, 1)) for label in shown]  # W2, the latest wave
+    assert len(_svg(svg, "circle")) == len(shown)
+
+
+def test_trend_panels_follow_each_measure_across_waves(tmp_path: Path, cells: pl.DataFrame) -> None:
+    root = _parse(render_book(_study(tmp_path), _with_estimates(cells), out_path=tmp_path / "t.html"))
+    (trends,) = [s for s in root.iter("section") if s.get("id") == "trends"]
+    panels = list(trends.iter("figure"))
+    region_rows = cells.filter((pl.col("variable") == "region") & (pl.col("row_kind") == "category"))
+    titles = [_text(p.find("figcaption").find("span")) for p in panels]
+    assert set(region_rows["row_label"].unique().to_list()) <= set(titles)
+    first = panels[0]
+    assert [p.get("class") for p in _svg(first, "polygon")] == ["band"] and _svg(first, "polyline")
+    assert len(_svg(first, "circle")) == 2  # two waves
+
+
+def test_folder_book_that_cannot_be_written_keeps_the_previous_one(
+    tmp_path: Path, cells: pl.DataFrame, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    out = tmp_path / "book" / "study.html"
+    index = render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    before = {p.name: p.read_bytes() for p in index.parent.iterdir()}
+    real_write = Path.write_text
+
+    def full_disk(self: Path, *args: object, **kwargs: object) -> int:
+        if self.suffix == ".html":
+            raise OSError(28, "No space left on device")
+        return real_write(self, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "write_text", full_disk)
+    with pytest.raises(WavebookError, match="cannot write"):
+        render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    monkeypatch.undo()
+    assert {p.name: p.read_bytes() for p in index.parent.iterdir()} == before
+    assert sorted(p.name for p in (tmp_path / "book").iterdir()) == ["study"]  # no temporary folder left
+
+
+def test_a_folder_not_written_by_wavebook_is_not_replaced(tmp_path: Path, cells: pl.DataFrame) -> None:
+    foreign = tmp_path / "book" / "study"
+    foreign.mkdir(parents=True)
+    (foreign / "notes.txt").write_text("mine", encoding="utf-8")
+    with pytest.raises(WavebookError, match="not writing"):
+        render_book(_study(tmp_path), cells, out_path=tmp_path / "book" / "study.html", single_file=False)
+    assert [p.name for p in foreign.iterdir()] == ["notes.txt"]

@@ -37,7 +37,8 @@ def invented(seed: int = 1, n: int = 120) -> pl.DataFrame:
 
 
 def run_cli(args: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
-    code = main(["estimate", *args])
+    # full-precision CSV (the default rounds to 10 significant digits), compared with the API at 1e-12
+    code = main(["estimate", *args, *([] if "--digits" in args else ["--digits", "all"])])
     captured = capsys.readouterr()
     return code, captured.out, captured.err
 

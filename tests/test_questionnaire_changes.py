@@ -168,6 +168,8 @@ def test_a_wave_missing_a_question_it_asked_is_still_an_error(changing: Tracker)
         ('waves = ["W3"]', 'waves = ["W9"]', "variables.trust.waves: 'W9' is not a wave"),
         ('column = { W2 = "sat_w2" }', 'column = { W7 = "sat_w2" }', "variables.satisfaction.column.W7"),
         ("recode = { W1 = { 4 = 3 } }", "recode = { W1 = { 4 = 8 } }", "variables.age_band.recode.W1.4"),
+        ('column = { W2 = "sat_w2" }', 'column = { W2 = "channel" }',
+         "variables.satisfaction.column.W2: wave W2's column 'channel' is already read by variables.channel"),
     ],
 )
 def test_per_wave_keys_are_checked(tmp_path: Path, old: str, new: str, fragment: str) -> None:

@@ -148,3 +148,19 @@ def test_demo_never_replaces_an_edited_file(tmp_path: Path) -> None:
     assert fingerprint(folder) == before
     copy_demo(folder, force=True)
     assert "# my own note" not in spec.read_text(encoding="utf-8")
+
+
+def test_replicate_export_never_replaces_an_unrelated_recipe_file(
+    study: Tracker, capsys: pytest.CaptureFixture[str]
+) -> None:
+    study.write_spec(TRACKER_SPEC + '\n[variance]\nmethod = "jackknife"\n' + RAKE_STEP)
+    sidecar = study.folder / "w1.parquet.replicates.json"
+    sidecar.write_text('{"mine": true}\n', encoding="utf-8")
+    before = fingerprint(study.folder)
+    argv = ["weigh", "study.toml", "--wave", "W1", "--export", "w1.parquet", "--replicates", "--quiet"]
+    code, _, err = wavebook(argv, capsys)
+    assert (code, "[output-exists]" in err) == (1, True)
+    assert fingerprint(study.folder) == before
+    assert wavebook([*argv, "--force"], capsys)[0] == 0
+    assert '"mine"' not in sidecar.read_text(encoding="utf-8")
+    assert wavebook(argv, capsys)[0] == 0  # both files are now wavebook's own

@@ -214,5 +214,6 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     assert "weighting" in parser.ids
     text = " ".join(parser.text)
     assert "set by weighting" in text
-    assert re.search(r"\bdeff\s+\d+\.\d\d\b", text)  # the design effect's label is text in the page, not CSS
+    assert re.search(r"Design effect\s+(\d+\.\d\d\s+)+", text)  # the design effect's row label is text, not CSS
+    assert "Respondents weighted" in text and "Effective number of respondents" in text  # headers say what they count
     assert not any(rid in text for rid in responses["respondent_id"].to_list())  # no respondent ids

@@ -182,3 +182,15 @@ def test_replicate_with_an_empty_category_is_flagged_not_silent() -> None:
     np.testing.assert_allclose(factors[:, :2], [[10.0, 20.0], [5.0, 5.0]])
     assert [w.rule for w in recipe.warnings] == ["replicate-empty-category"]
     assert recipe.replicate_adjustments() == {"collapsed": 1, "unconverged": 0}
+
+
+def test_replicate_empty_category_follows_the_step_collapse_order() -> None:
+    data = pl.DataFrame({"respondent_id": [str(i) for i in range(6)], "a": [1, 1, 2, 2, 3, 3]})
+    targets = TargetTable({"a": {("1",): 10.0, ("2",): 10.0, ("3",): 10.0}}, "test")
+    step = RakeStep(0, (("a",),), targets, collapse=Collapse(1, {"a": (("1", "3"),)}))
+    recipe = fit_recipe(data, [step], base_weights=np.ones(6))
+    factors = recipe.replay(np.array([[0.0, 1.0, 1.0]]))
+    # hand computed: category 1 is empty in the replicate; the step's collapse order groups it with
+    # category 3 (not its code neighbour 2), so category 3 takes target 20 on a total of 1
+    np.testing.assert_allclose(factors[0, 1:], [10.0, 20.0])
+    assert recipe.replicate_adjustments()["collapsed"] == 1

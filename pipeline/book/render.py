@@ -1,14 +1,18 @@
-"""The result book: one self-contained HTML page built from the tidy long cell frame.
+"""The result book: self-contained HTML pages built from the tidy long cell frame.
 
 `render_book(study, cells, out_path=...)` turns the cells (see `pipeline.topline` for their
-columns) into a `BookContext` (the documented object every template receives), renders
-`templates/book.html.j2` with autoescaping forced on and strict undefined variables, and writes
-the page atomically through `pipeline.outputs` (a temporary file in the same folder, then a rename).
+columns, `pipeline.book.tables` for how they become tables) into a `BookContext` (the documented
+object every template receives), renders the templates with autoescaping forced on and strict
+undefined variables, and writes the book atomically.
+
+Output (`pipeline.book.pages`): one file (default for books under SINGLE_FILE_LIMIT tables) or
+a folder with `index.html` (cover and contents) and a page each for the methodology, every table,
+the trends and the appendix. `manifest.json` is written beside the book when a manifest is given.
 
 When the cells carry weighted estimates (the columns `estimate`, `ci_low`, `ci_high` added to
 the same rows by the estimation stage), percentages, means and medians show the weighted
-estimate with its confidence interval, and the counts beneath stay unweighted; otherwise the
-book shows unweighted figures and says so.
+estimate, its interval, standard error and design effect; the counts stay unweighted; otherwise
+the book shows unweighted figures and says so.
 
 The book holds aggregates only: counts, percentages and statistics per wave. It never receives
 respondent-level rows, so it cannot show them.
@@ -17,8 +21,6 @@ respondent-level rows, so it cannot show them.
 from __future__ import annotations
 
 import datetime as dt
-import math
-import re
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -27,84 +29,41 @@ import jinja2
 import polars as pl
 
 from pipeline import __version__
-from pipeline.cells_export import LOW_BASE, PERCENT_KINDS, STATISTIC_NAMES, VERY_LOW_BASE, tidy_cells
+from pipeline.book.manifest import SHORT_HASH, manifest_hash, manifest_json
+from pipeline.book.pages import Page, plan_pages, write_book
+from pipeline.book.tables import (
+    LOW_BASE,
+    VERY_LOW_BASE,
+    Column,
+    Section,
+    anchor_of,
+    build_table,
+    chart_of,
+    type_label,
+)
+from pipeline.book.trends import TrendGroup, trend_groups
+from pipeline.book.weighting import WeightingSection
 from pipeline.errors import WavebookError
-from pipeline.outputs import write_text_output
 from pipeline.resources import resource_dir
-from pipeline.staging.spec import Design, Study, Variable, Wave
+from pipeline.staging.spec import Design, Study, Wave
 
+__all__ = ["LOW_BASE", "VERY_LOW_BASE", "BookContext", "build_context", "render_book"]
 
-TYPE_LABELS = {
-    "single": "Single choice",
-    "multi": "Multiple choice",
-    "rating": "Rating scale",
-    "numeric": "Number",
-}
 REQUIRED_COLUMNS = (
     "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
 )
 ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
-ESTIMATED_STATISTICS = ("mean", "median")
-SET_BY_WEIGHTING = "set by weighting"
-NOT_ASKED_IN_WAVE = "not asked in this wave"
-SET_BY_WEIGHTING_NOTE = (
-    "Percentages marked 'set by weighting' equal the population figures the weights were "
-    "calibrated to; they carry no sampling error of their own."
-)
+SINGLE_FILE_LIMIT = 100
 
 
 @dataclass(frozen=True)
 class WaveColumn:
-    """A wave as a table column: id, label, fieldwork dates as text, respondents staged (None: not staged)."""
+    """A wave: id, label, fieldwork dates as text, respondents staged (None: not staged)."""
 
     id: str
     label: str
     fieldwork: str | None
     respondents: int | None
-
-
-@dataclass(frozen=True)
-class Cell:
-    """One table cell: the main figure as text, its confidence interval as text (weighted books),
-    an optional secondary figure (the unweighted count under a percentage), the base flag:
-    None, "low" (base < LOW_BASE) or "very-low" (< VERY_LOW_BASE), and the estimate's design
-    effect as text (weighted books)."""
-
-    text: str
-    detail: str | None = None
-    base_flag: str | None = None
-    interval: str | None = None
-    deff: str | None = None
-
-
-@dataclass(frozen=True)
-class TableRow:
-    """One table row: its kind (see pipeline.topline.ROW_KINDS), label and one cell per wave."""
-
-    kind: str
-    label: str
-    cells: tuple[Cell, ...]
-
-
-@dataclass(frozen=True)
-class Table:
-    """One variable's table: rows = base, categories/items, nets, statistics, no answer; columns = waves."""
-
-    columns: tuple[WaveColumn, ...]
-    rows: tuple[TableRow, ...]
-    notes: tuple[str, ...]
-
-
-@dataclass(frozen=True)
-class Section:
-    """One variable of the codebook with its table; `anchor` is its id in the page."""
-
-    anchor: str
-    name: str
-    label: str
-    type_label: str
-    table: Table
-    has_low_base: bool
 
 
 @dataclass(frozen=True)
@@ -116,32 +75,59 @@ class Caution:
 
 
 @dataclass(frozen=True)
+class CodebookEntry:
+    """One variable in the appendix: name, label, type and its codes with their labels."""
+
+    name: str
+    label: str
+    type_label: str
+    codes: tuple[tuple[str, str], ...]
+    href: str
+
+
+@dataclass(frozen=True)
 class BookContext:
-    """Everything `templates/book.html.j2` receives (as `book`).
+    """Everything the templates receive (as `book`).
 
     title, notes: from the spec. weighted: whether percentages, means and medians are weighted
-    estimates with intervals. waves: every declared wave in spec order. design: one line per
-    design fact. methodology: paragraphs on how the figures were produced. cautions: what the
-    reader must keep in mind. sections: one per codebook variable, in spec order.
-    low_base, very_low_base: the thresholds behind the cell flags. generated_at (UTC, text) and
-    version: for the footer. weighting: the weights in summary per wave and the margins they
-    meet (`pipeline.book.weighting`), None for an unweighted book. status: the one-line heading of
-    what the figures are (weighted by the weighting steps, by the design weights only, or unweighted).
+    estimates with intervals. waves: every declared wave in spec order. completes: respondents
+    of the latest staged wave (None when none is staged). design: one line per design fact.
+    methodology: paragraphs on how the figures were produced. cautions: what the reader must keep
+    in mind. sections: one per codebook variable, in spec order (table, chart, link). trends: the
+    tracked measures per table (empty with fewer than two waves). codebook: the appendix's
+    codebook. low_base, very_low_base: the thresholds behind the cell flags. level_label: the
+    intervals' confidence level ("95%"). generated_at (UTC, text) and version: for the footer.
+    weighting: the weights in summary per wave and the margins they meet
+    (`pipeline.book.weighting`), None for an unweighted book. manifest: the run manifest (None
+    when the book was rendered without one) and manifest_hash its short SHA-256. pages: the files
+    of the book; links: href of each page kind ("cover", "contents", "methodology", "trends",
+    "appendix"); trend_pages: a folder book's trends pages when there is more than one.
+    status: the one-line heading of what the figures are (weighted by the weighting steps, by
+    the design weights only, or unweighted).
     """
 
     title: str
     notes: tuple[str, ...]
     weighted: bool
     waves: tuple[WaveColumn, ...]
+    completes: int | None
     design: tuple[str, ...]
     methodology: tuple[str, ...]
     cautions: tuple[Caution, ...]
     sections: tuple[Section, ...]
+    trends: tuple[TrendGroup, ...]
+    codebook: tuple[CodebookEntry, ...]
     low_base: int
     very_low_base: int
+    level_label: str
     generated_at: str
     version: str
+    pages: tuple[Page, ...]
+    links: dict[str, str]
+    trend_pages: tuple[Page, ...]
     weighting: WeightingSection | None = None
+    manifest: dict | None = None
+    manifest_hash: str | None = None
     status: str = "Unweighted counts and percentages"
 
 
@@ -153,18 +139,27 @@ def render_book(
     weighting: WeightingSection | None = None,
     variance: tuple[str, ...] = (),
     level: float = 0.95,
+    single_file: bool | None = None,
+    manifest: dict | None = None,
 ) -> Path:
-    """Render the result book of `study` from `cells` (tidy long frame) and write it to `out_path`.
+    """Render the result book of `study` from `cells` (tidy long frame) and write it.
 
-    The page is rendered completely in memory first; only then is it written through
-    `pipeline.outputs.write_text_output` (a temporary file in the destination folder moved over
-    `out_path`, recorded as wavebook's own output), so a failure never leaves a half-written or
-    missing book. The caller checks `out_path` first (`pipeline.outputs.check_output`). Returns
-    `out_path`.
+    `out_path` names the one-file book (e.g. book/study.html); a folder book goes to the folder
+    of that name without the suffix (book/study/index.html). `single_file` None: one file below
+    SINGLE_FILE_LIMIT tables. Every page is rendered in memory first and written atomically, so a
+    failure never leaves a half-written or missing book. Returns the path of the page to open.
     """
-    context = build_context(study, cells, weighting=weighting, variance=variance, level=level)
-    html = _environment().get_template("book.html.j2").render(book=context)
-    return write_text_output(Path(out_path), html)
+    out_path = Path(out_path)
+    if single_file is None:
+        single_file = len(study.variables) < SINGLE_FILE_LIMIT
+    context = build_context(
+        study, cells, weighting=weighting, variance=variance, level=level, single_file=single_file, manifest=manifest
+    )
+    env = _environment()
+    files = {page.file: env.get_template("page.html.j2").render(book=context, page=page) for page in context.pages}
+    if manifest is not None:
+        files["manifest.json"] = manifest_json(manifest)
+    return write_book(out_path, files, single_file=single_file)
 
 
 def build_context(
@@ -175,11 +170,13 @@ def build_context(
     variance: tuple[str, ...] = (),
     level: float = 0.95,
     now: dt.datetime | None = None,
+    single_file: bool = True,
+    manifest: dict | None = None,
 ) -> BookContext:
     """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.topline`, plus
     the estimate columns of `pipeline.weighted_cells` in a weighted book); `weighting` and
     `variance` (sentences on how standard errors were computed) feed the methodology; `level` is
-    the confidence level of the intervals."""
+    the confidence level of the intervals; `single_file` decides the pages and links."""
     missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]
     if missing:
         raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
@@ -188,11 +185,30 @@ def build_context(
         cells.filter(pl.col("row_kind").is_in(["missing", "not-asked"])).group_by("wave").agg(pl.col("base").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
-    figures = _figures(tidy_cells(cells))
-    sections = tuple(
-        _section(index, variable, waves, cells.filter(pl.col("variable") == name), figures, weighted=weighted)
-        for index, (name, variable) in enumerate(study.variables.items())
-    )
+    columns = tuple(Column(key=w.id, label=w.label, sublabel=w.fieldwork) for w in waves)
+    level_label = f"{100 * level:g}%"
+    anchors = [anchor_of(i, name) for i, name in enumerate(study.variables)]
+    plan = plan_pages(anchors, single_file=single_file)
+    sections = []
+    for anchor, (name, variable) in zip(anchors, study.variables.items(), strict=True):
+        table = build_table(
+            variable, columns, cells.filter(pl.col("variable") == name), weighted=weighted, level_label=level_label
+        )
+        sections.append(
+            Section(
+                anchor=anchor,
+                page=plan.section_pages[anchor],
+                href=plan.href(plan.section_pages[anchor], anchor),
+                name=name,
+                label=variable.label,
+                type_label=type_label(variable),
+                table=table,
+                chart=chart_of(table),
+                has_low_base=any(c.base_flag for r in table.rows for c in r.cells),
+            )
+        )
+    sections_t = tuple(sections)
+    staged = [w.respondents for w in waves if w.respondents is not None]
     generated = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
     return BookContext(
         title=study.title,
@@ -200,15 +216,30 @@ def build_context(
         weighted=weighted,
         status=_status(study, weighted=weighted),
         waves=waves,
+        completes=staged[-1] if staged else None,
         design=_design_lines(study.design),
         methodology=_methodology(weighted=weighted) + (variance if weighted else ()),
-        cautions=_cautions(study, sections, weighted=weighted, level=level, weighting=weighting),
-        sections=sections,
+        cautions=_cautions(study, sections_t, weighted=weighted, level=level, weighting=weighting),
+        sections=sections_t,
+        trends=trend_groups(sections_t),
+        codebook=tuple(
+            CodebookEntry(
+                name=name, label=v.label, type_label=type_label(v),
+                codes=tuple((str(code), label) for code, label in v.values.items()), href=s.href,
+            )
+            for (name, v), s in zip(study.variables.items(), sections_t, strict=True)
+        ),
         low_base=LOW_BASE,
         very_low_base=VERY_LOW_BASE,
+        level_label=level_label,
         generated_at=generated.strftime("%Y-%m-%d %H:%M UTC"),
         version=__version__,
+        pages=plan.pages,
+        links=plan.links,
+        trend_pages=plan.trend_pages,
         weighting=weighting if weighted else None,
+        manifest=manifest,
+        manifest_hash=manifest_hash(manifest)[:SHORT_HASH] if manifest is not None else None,
     )
 
 
@@ -231,143 +262,6 @@ def _wave_column(wave: Wave, respondents: int | None) -> WaveColumn:
     dates = [d for d in (wave.fieldwork_start, wave.fieldwork_end) if d is not None]
     fieldwork = " to ".join(f"{d.day} {d:%b %Y}" for d in dates) if dates else None
     return WaveColumn(id=wave.id, label=wave.label, fieldwork=fieldwork, respondents=respondents)
-
-
-_Figures = dict[tuple[str, str, int, str], dict]
-
-
-def _figures(export: pl.DataFrame) -> _Figures:
-    """The export's rows by (wave, table, row, statistic): every number the book prints comes from here."""
-    return {(r["wave"], r["table"], r["row"], r["statistic"]): r for r in export.iter_rows(named=True)}
-
-
-def _section(
-    index: int,
-    variable: Variable,
-    waves: tuple[WaveColumn, ...],
-    cells: pl.DataFrame,
-    figures: _Figures,
-    *,
-    weighted: bool,
-) -> Section:
-    """One variable's section: rows in `row_order`, one cell per wave (a dash where a wave has no
-    data; NOT_ASKED_IN_WAVE where the wave did not ask the variable or the multi item)."""
-    by_key = {(row["row_order"], row["wave"]): row for row in cells.iter_rows(named=True)}
-    layout = cells.unique("row_order", keep="first").sort("row_order").select(
-        "row_order", "row_kind", "row_label", "code"
-    )
-    rows = []
-    for order, kind, row_label, code in layout.iter_rows():
-        item = code if kind == "item" else None
-        row_cells = tuple(
-            Cell(text=NOT_ASKED_IN_WAVE)
-            if (order, w.id) not in by_key and not variable.asked_in(w.id, item)
-            else _cell(by_key.get((order, w.id)), figures, weighted=weighted)
-            for w in waves
-        )
-        rows.append(TableRow(kind=kind, label=row_label, cells=row_cells))
-    notes = tuple(note for note in cells.sort("row_order")["note"].unique(maintain_order=True).to_list() if note)
-    if any(c.interval == SET_BY_WEIGHTING for r in rows for c in r.cells):
-        notes += (SET_BY_WEIGHTING_NOTE,)
-    slug = re.sub(r"[^a-z0-9]+", "-", variable.name.lower()).strip("-")
-    return Section(
-        anchor=f"v{index + 1}-{slug}" if slug else f"v{index + 1}",
-        name=variable.name,
-        label=variable.label,
-        type_label=TYPE_LABELS.get(variable.type, variable.type),
-        table=Table(columns=waves, rows=tuple(rows), notes=notes),
-        has_low_base=any(c.base_flag for r in rows for c in r.cells),
-    )
-
-
-def _cell(row: dict | None, figures: _Figures, *, weighted: bool) -> Cell:
-    """Format one cell: percentages as whole numbers with the unweighted count beneath, statistics
-    to 2 decimals; in a weighted book the weighted estimate and its interval where the row has one.
-
-    `row` (the long cell frame) says what the cell is; its numbers are read from the export rows
-    `figures` (`pipeline.cells_export`), percentages as shares 0-1."""
-    if row is None:
-        return Cell(text="–")
-    key = (row["wave"], row["variable"], row["row_order"])
-    flag = _base_flag(row["base"])
-    kind = row["row_kind"]
-    count = figures.get((*key, "count"))
-    detail = f"{_whole(count['estimate']):,}" if count is not None and count["estimate"] is not None else None
-    if kind == "base":
-        return Cell(text=detail or "–")
-    if kind == "balance":
-        score = figures.get((*key, "balance"))
-        if score is None or score["estimate"] is None:
-            return Cell(text="–", base_flag=flag)
-        low, high = score["ci_low"], score["ci_high"]
-        interval = f"{_balance_text(100 * low)} to {_balance_text(100 * high)}" if low is not None else None
-        return Cell(text=_balance_text(100 * score["estimate"]), base_flag=flag, interval=interval,
-                    deff=_deff_text(score))
-    if kind in PERCENT_KINDS:
-        share = figures[(*key, "percent")]
-        if share["estimate"] is None:
-            return Cell(text="–", detail=detail, base_flag=flag)
-        text = _percent_text(100 * share["estimate"])
-        if not (weighted and row.get("estimate") is not None) or kind in ("missing", "not-asked", "excluded"):
-            return Cell(text=text, detail=detail, base_flag=flag)
-        if "set-by-weighting" in share["flags"].split(";"):
-            return Cell(text=text, detail=detail, base_flag=flag, interval=SET_BY_WEIGHTING)
-        low, high = share["ci_low"], share["ci_high"]
-        interval = _percent_interval(100 * low, 100 * high) if low is not None else None
-        return Cell(text=text, detail=detail, base_flag=flag, interval=interval, deff=_deff_text(share))
-    statistic = figures.get((*key, STATISTIC_NAMES.get(row.get("code") or "", "")))
-    if kind != "statistic" or statistic is None or statistic["estimate"] is None:
-        return Cell(text="–", base_flag=flag)
-    value = statistic["estimate"]
-    if weighted and row.get("estimate") is not None and row.get("code") in ESTIMATED_STATISTICS:
-        low, high = statistic["ci_low"], statistic["ci_high"]
-        interval = f"{low:,.2f}–{high:,.2f}" if low is not None else None
-        return Cell(text=f"{value:,.2f}", base_flag=flag, interval=interval, deff=_deff_text(statistic))
-    text = f"{value:,.0f}" if row.get("code") == "n" else f"{value:,.2f}"
-    return Cell(text=text, base_flag=flag)
-
-
-def _balance_text(points: float) -> str:
-    """A balance score in points, rounded half up, with its sign ("+12", "-3", "0")."""
-    whole = _whole(points)
-    return f"{whole:+d}" if whole else "0"
-
-
-def _percent_interval(low: float, high: float) -> str:
-    """An interval of percentages: whole numbers, or one decimal when it lies below 2% (where whole
-    numbers would print "0–0" for an interval that is not empty)."""
-    if high < 1.95:
-        return f"{low:.1f}–{high:.1f}"
-    return f"{_whole(low)}–{_whole(high)}"
-
-
-def _deff_text(row: dict) -> str | None:
-    """The design effect to 2 decimals, or None where it is undefined (e.g. a 0% or 100% cell)."""
-    deff = row.get("deff")
-    return f"{deff:.2f}" if deff is not None and math.isfinite(deff) else None
-
-
-def _percent_text(percent: float) -> str:
-    """A percentage rounded half up to a whole number; "<1%" for a non-zero share below 0.5%."""
-    if 0 < percent < 0.5:
-        return "<1%"
-    return f"{_whole(percent)}%"
-
-
-def _whole(number: float) -> int:
-    """`number` rounded half up to a whole number (12.5 -> 13; Python's round() would give 12)."""
-    return math.floor(number + 0.5)
-
-
-def _base_flag(base: int | None) -> str | None:
-    """ "very-low" below VERY_LOW_BASE, "low" below LOW_BASE, else None (a base of 0 is shown as a dash)."""
-    if base is None or base == 0:
-        return None
-    if base < VERY_LOW_BASE:
-        return "very-low"
-    if base < LOW_BASE:
-        return "low"
-    return None
 
 
 def _design_lines(design: Design) -> tuple[str, ...]:

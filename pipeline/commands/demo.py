@@ -18,7 +18,7 @@ EXAMPLE = "wavebook demo ./wavebook-demo"
 DEMO_SPEC = "study.toml"
 MARKER = ".wavebook-demo"
 # Files a run creates beside the study; never copied from sample_data (a checkout may hold them).
-_NOT_COPIED = ("*.duckdb", "*.duckdb.wal", "*.wal", "book", "__pycache__", "*.pyc", MARKER, ".wavebook-outputs")
+_NOT_COPIED = ("*.duckdb", "*.duckdb.wal", "*.wal", "book", "*_results", "__pycache__", "*.pyc", MARKER, ".wavebook-outputs")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:

@@ -25,7 +25,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     """DATA, the design columns, what to estimate, the variance method and the output format."""
     parser.add_argument("data", metavar="DATA", help="respondent file: CSV or Parquet")
     design = parser.add_argument_group("design")
-    design.add_argument("--weight", required=True, metavar="COL", help="final weight column")
+    design.add_argument("--weight", metavar="COL", help="final weight column (default: equal weights)")
     design.add_argument("--strata", metavar="COL", help="stratum column (default: one stratum)")
     design.add_argument("--psu", metavar="COL", help="PSU (cluster) column (default: each respondent is a PSU)")
     design.add_argument(
@@ -87,6 +87,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     what = parser.add_argument_group("what to estimate (repeat any of these)")
     what.add_argument("--mean", action="append", default=[], metavar="COL")
     what.add_argument("--total", action="append", default=[], metavar="COL")
+    what.add_argument("--count", action="append", default=[], metavar="COL",
+                      help="weighted count of each category, with its standard error")
     what.add_argument("--proportion", action="append", default=[], metavar="COL", help="proportion of each category")
     what.add_argument("--ratio", action="append", default=[], nargs=2, metavar=("NUM_COL", "DEN_COL"))
     what.add_argument(
@@ -146,6 +148,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "means, totals and ratios always use t, quantiles the Woodruff interval)",
     )
     parser.add_argument("--format", choices=("csv", "json"), default="csv", help="output format (default csv)")
+    parser.add_argument(
+        "--digits",
+        default="10",
+        metavar="N|all",
+        help="CSV: significant digits of the numbers (default 10; 'all' for floats that read back exactly); "
+        "JSON always keeps full precision",
+    )
     add_retired_options(parser)
 
 
@@ -168,6 +177,12 @@ def run(args: argparse.Namespace) -> int:
         except ValueError:
             message = "the quantile probability is not a number"
             problems.append(Problem(rule="bad-quantile", message=message, column=col, value=q))
+    if args.digits != "all" and not (args.digits.isdigit() and 1 <= int(args.digits) <= 17):
+        problems.append(Problem(rule="bad-option", message="--digits must be a whole number from 1 to 17, or all",
+                                value=args.digits))
+    if args.variance == "jackknife" and args.strata:
+        print("note: --variance jackknife deletes one PSU at a time over the whole sample and ignores --strata; "
+              "use --variance stratified-jackknife to keep the strata", file=sys.stderr)
     if not 0.0 < args.level < 1.0:
         problems.append(Problem(rule="bad-option", message="--level must be between 0 and 1", value=str(args.level)))
     collapse = {}
@@ -197,6 +212,7 @@ def run(args: argparse.Namespace) -> int:
             sampling_fraction=_column_or_number(args.sampling_fraction),
             mean=args.mean,
             total=args.total,
+            count=args.count,
             proportion=args.proportion,
             ratio=[tuple(r) for r in args.ratio],
             quantile=quantiles,
@@ -221,8 +237,23 @@ def run(args: argparse.Namespace) -> int:
     if args.format == "json":
         print(json.dumps(result.to_dicts(), indent=1, allow_nan=False))
     else:
-        print(result.write_csv(), end="")
+        print(_rounded(result, args.digits).write_csv(), end="")
     return 0
+
+
+def _rounded(frame: pl.DataFrame, digits: str) -> pl.DataFrame:
+    """Float columns rounded to `digits` significant digits ("all": unchanged, shortest round-trip form)."""
+    import polars as pl
+
+    if digits == "all":
+        return frame
+    n = int(digits)
+
+    def significant(value: float | None) -> float | None:
+        return None if value is None else float(f"{value:.{n}g}")
+
+    floats = [c for c, t in frame.schema.items() if t.is_float()]
+    return frame.with_columns(pl.col(c).map_elements(significant, return_dtype=pl.Float64) for c in floats)
 
 
 def _column_or_number(value: str | None) -> str | float | None:

@@ -33,10 +33,12 @@ def run(args: argparse.Namespace) -> int:
     from pipeline.staging.database import open_database, staged_waves
     from pipeline.progress import step
     from pipeline.staging.spec import load_spec
-    from pipeline.weighting.store import export_replicates, export_weights, weigh_wave
+    from pipeline.weighting.store import export_replicates, export_weights, replicate_sidecar, weigh_wave
 
     study = load_spec(args.spec)
     export = check_output(args.export, study_inputs(study), force=args.force, option="--export") if args.export else None
+    if export is not None and args.replicates:
+        check_output(replicate_sidecar(export), study_inputs(study), force=args.force, option="--export (its recipe)")
     if not study.database_path.is_file():
         raise DataError(
             f"nothing to weigh: no study database at {study.database_path}",

@@ -46,6 +46,7 @@ VARIANCE_METHODS: tuple[str, ...] = (
 # (`replicates` module docstring); they get the within-PSU term of the two-stage estimator too
 FPC_REPLICATE_METHODS: tuple[str, ...] = ("jackknife", "stratified-jackknife")
 WEIGHT_QUANTITY = "__weight"
+EQUAL_WEIGHT = "__equal_weight"
 FINAL_WEIGHT = "__final_weight_for_cdf"
 
 
@@ -87,11 +88,12 @@ class MeanOf:
 
 
 def _as_list(value: object) -> list:
+    """The requests as a list, each once (a repeated identical request is estimated once)."""
     if value is None:
         return []
     if isinstance(value, str | tuple):
         return [value]
-    return list(value)
+    return list(dict.fromkeys(tuple(v) if isinstance(v, list) else v for v in value))
 
 
 def _answered(col: str, frame: pl.DataFrame) -> pl.Expr:
@@ -148,6 +150,13 @@ class _Plan:
         num = self.q(f"y|{m.name}", m.value.cast(pl.Float64).fill_null(0.0).fill_nan(0.0) * a)
         sq = num if m.indicator else self.q(f"y2|{m.name}", (m.value.cast(pl.Float64) ** 2).fill_null(0.0).fill_nan(0.0) * a)
         self.cells.append(_Cell("mean", m.name, "", "", num, base, base, sq, num, base))
+
+    def count(self, frame: pl.DataFrame, var: str, dom: str, d: pl.Expr, categories: list) -> None:
+        """Weighted count of each category: the total of its indicator (a total, like `total`)."""
+        base = self.q(f"base|{var}|{dom}", (_answered(var, frame) & d).cast(pl.Float64))
+        for c in categories:
+            num = self.q(f"eq|{var}|{c}|{dom}", (pl.col(var).eq(c).fill_null(False) & d).cast(pl.Float64))
+            self.cells.append(_Cell("count", var, str(c), dom, num, None, base, num, None, None))
 
     def ratio(self, frame: pl.DataFrame, num_col: str, den_col: str, dom: str, d: pl.Expr) -> None:
         a = (_answered(num_col, frame) & _answered(den_col, frame) & d).cast(pl.Float64)
@@ -208,7 +217,7 @@ def _parse_ratios(ratio: object) -> list[tuple[str, str]]:
 def estimate_table(
     frame: pl.DataFrame,
     *,
-    weight: str,
+    weight: str | None = None,
     strata: str | None = None,
     psu: str | None = None,
     population_size: str | Mapping[str, float] | float | None = None,
@@ -216,6 +225,7 @@ def estimate_table(
     psu_ids: str = "within-stratum",
     mean: str | Sequence[str] | None = None,
     total: str | Sequence[str] | None = None,
+    count: str | Sequence[str] | None = None,
     proportion: str | Sequence[str] | None = None,
     ratio: tuple[str, str] | Sequence[tuple[str, str]] | None = None,
     quantile: tuple[str, float] | Sequence[tuple[str, float]] | None = None,
@@ -247,13 +257,16 @@ def estimate_table(
     means_of: `MeanOf` requests (means or proportions of expressions over a base), estimated on
     the whole sample after the other requests (`by` does not apply: a domain goes in the base).
     """
+    if weight is None:  # equal weights
+        frame, weight = frame.with_columns(pl.lit(1.0).alias(EQUAL_WEIGHT)), EQUAL_WEIGHT
     design = SampleDesign(
         weight=weight, strata=strata, psu=psu, psu_ids=psu_ids,  # type: ignore[arg-type]
         population_size=population_size, sampling_fraction=sampling_fraction,
         single_psu=single_psu, collapse_with=dict(collapse_with or {}),  # type: ignore[arg-type]
         second_stage_fraction=float(second_stage_fraction), first_stage=first_stage, psu_inclusion=psu_inclusion,
     )
-    _check_request(frame, design, mean=mean, total=total, proportion=proportion, ratio=ratio, quantile=quantile,
+    _check_request(frame, design, mean=mean, total=total, count=count, proportion=proportion, ratio=ratio,
+                   quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
                    reweight=reweight, calibration_matrix=calibration_matrix, interval=interval,
                    replicate_method=replicate_method, replicate_df=replicate_df, fay=fay, replicates=replicates, seed=seed,
@@ -267,6 +280,8 @@ def estimate_table(
             plan.mean_or_total(frame, var, dom, d, statistic="total")
         for var in _as_list(proportion):
             plan.proportion(frame, var, dom, d, frame[var].drop_nulls().unique().sort().to_list())
+        for var in _as_list(count):
+            plan.count(frame, var, dom, d, frame[var].drop_nulls().unique().sort().to_list())
         for num_col, den_col in _parse_ratios(ratio):
             plan.ratio(frame, num_col, den_col, dom, d)
     for request in means_of:
@@ -419,7 +434,7 @@ def product_moments(
 def estimate(
     frame: pl.DataFrame,
     *,
-    weight: str,
+    weight: str | None = None,
     strata: str | None = None,
     psu: str | None = None,
     population_size: str | Mapping[str, float] | float | None = None,
@@ -427,6 +442,7 @@ def estimate(
     psu_ids: str = "within-stratum",
     mean: str | Sequence[str] | None = None,
     total: str | Sequence[str] | None = None,
+    count: str | Sequence[str] | None = None,
     proportion: str | Sequence[str] | None = None,
     ratio: tuple[str, str] | Sequence[tuple[str, str]] | None = None,
     quantile: tuple[str, float] | Sequence[tuple[str, float]] | None = None,
@@ -456,7 +472,7 @@ def estimate(
 
     Columns: statistic, variable, category, domain, estimate, se, ci_low, ci_high, df, deff, n,
     n_eff, reason, method. Options:
-      weight (required), strata, psu, psu_ids ("within-stratum"/"unique"); for the finite population
+      weight (default: equal weights, 1 for every row), strata, psu, psu_ids ("within-stratum"/"unique"); for the finite population
       correction either population_size (the first-stage population size N_h: a column, a mapping
       stratum -> N_h, or one number without strata) or sampling_fraction (f_h: a column, a mapping
       stratum -> f_h, or one number for every stratum);
@@ -465,7 +481,7 @@ def estimate(
       (1 - pi) approximation of `design`, Taylor only);
       second_stage_fraction: with an FPC and PSUs, the share of each selected PSU's units sampled
       (default 0, unknown: the within-PSU term is added in full; 1: whole PSUs, none is added);
-      mean, total, proportion (column or list of columns), ratio ((num, den) or list of pairs),
+      mean, total, proportion, count (weighted count of each category; column or list of columns), ratio ((num, den) or list of pairs),
       quantile ((column, q) or list of pairs); by (a column: adds one domain per level);
       variance: "taylor" (default) or a replicate method: "jackknife", "stratified-jackknife", "brr",
       "fay", "bootstrap", "supplied" (replicate_cols: a regular expression matched against whole
@@ -494,7 +510,7 @@ def estimate(
     """
     return estimate_table(
         frame, weight=weight, strata=strata, psu=psu, population_size=population_size,
-        sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total,
+        sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total, count=count,
         proportion=proportion, ratio=ratio, quantile=quantile, by=by, variance=variance,
         replicate_cols=replicate_cols, replicate_multiplier=replicate_multiplier, replicate_method=replicate_method,
         replicate_df=replicate_df,
@@ -510,7 +526,7 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
     source = req["source"] if isinstance(req["source"], str) else None
     problems: list[Problem] = []
     wanted: list[str] = [*design.columns]
-    for key in ("mean", "total", "proportion"):
+    for key in ("mean", "total", "count", "proportion"):
         wanted += _as_list(req[key])
     for a, b in _parse_ratios(req["ratio"]):
         wanted += [a, b]
@@ -523,8 +539,8 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         if col not in frame.columns:
             problems.append(Problem(rule="missing-column", message="column not in the data", file=source, column=col))
     options = []
-    if not any(_as_list(req[k]) for k in ("mean", "total", "proportion", "ratio", "quantile")) and not req["means_of"]:
-        options.append(("ask for at least one mean, total, proportion, ratio or quantile", None))
+    if not any(_as_list(req[k]) for k in ("mean", "total", "count", "proportion", "ratio", "quantile")) and not req["means_of"]:
+        options.append(("ask for at least one mean, total, count, proportion, ratio or quantile", None))
     if req["variance"] not in VARIANCE_METHODS:
         options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))
     if req["interval"] not in INTERVAL_KINDS:
@@ -656,6 +672,7 @@ TIED_QUANTILE = ("the Woodruff interval collapses to a point (a tied value, or a
 QUANTILE_DEFF = "no design effect for a quantile (its interval comes from the proportion below it)"
 NO_SRS_VARIANCE = "no design effect: the simple-random-sampling variance is 0 or cannot be estimated"
 INTERVAL_KINDS: tuple[str, ...] = ("korn-graubard", "logit", "t")
+TOTALS: tuple[str, ...] = ("total", "count")  # estimates that are totals (den = -1)
 
 
 def _table(
@@ -700,7 +717,7 @@ def _table(
     sum_wz = np.where(ratios.is_total, t[ratios.num], 0.0)
     # a domain total is the total of y * 1[domain] over the whole sample, whose size is random under
     # SRS: its reference is an SRS of the variable's whole-sample base (`deff` module docstring)
-    srs_idx = np.array([col(f"base|{c.variable}|") if c.statistic == "total" and c.domain else col(c.base)
+    srs_idx = np.array([col(f"base|{c.variable}|") if c.statistic in TOTALS and c.domain else col(c.base)
                         for c in cells])
     srs_n = gt.counts.sum(axis=0)[srs_idx]
     v_srs = deff_mod.srs_variance(sum_wz2=sum_wz2, sum_wz=sum_wz, base_weight=t[srs_idx], base_n=srs_n, fpc=has_fpc)
@@ -731,9 +748,9 @@ def _table(
             reason[i], missing[i] = NO_DOMAIN_RESPONDENTS if c.domain else NO_RESPONDENTS, True
         elif not np.isfinite(theta[i]):
             reason[i], missing[i] = ZERO_DENOMINATOR, True
-        elif c.statistic != "total" and n[i] == 1:
+        elif c.statistic not in TOTALS and n[i] == 1:
             reason[i], no_variance[i] = ONE_RESPONDENT, True
-        elif c.statistic != "total" and psus_present[i] < 2:
+        elif c.statistic not in TOTALS and psus_present[i] < 2:
             reason[i], no_variance[i] = ONE_PSU, True
         if c.statistic == "quantile" and not missing[i]:
             cdf = cdfs[c.variable][c.domain]

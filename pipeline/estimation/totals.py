@@ -103,11 +103,16 @@ class GroupTotals:
         """C, the number of weighting classes (1 + the largest class index)."""
         return int(self.cls.max()) + 1 if len(self.cls) else 0
 
+    @functools.cached_property
+    def _column_index(self) -> dict[str, int]:
+        """Quantity name -> index, built once (tables look up tens of thousands of names)."""
+        return {name: k for k, name in enumerate(self.columns)}
+
     def column(self, name: str) -> int:
         """Index of the quantity `name` in `columns` (KeyError naming the known columns otherwise)."""
         try:
-            return self.columns.index(name)
-        except ValueError:
+            return self._column_index[name]
+        except KeyError:
             raise KeyError(f"no quantity '{name}' in the group totals; known: {', '.join(self.columns)}") from None
 
     def psu_totals(self, values: np.ndarray | None = None) -> np.ndarray:

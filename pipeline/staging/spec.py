@@ -64,6 +64,8 @@ class Design:
     probability, which gives the (1 - pi) approximation of pipeline.estimation.design).
     extreme_weight_ratio: staging warns (extreme-weight, naming the ids) about a design weight above
     this multiple of the wave's median weight (default 1,000: common practice, no source).
+    same_psus_across_waves: the waves re-interview the same PSUs (a panel of areas), so wave-over-wave
+    changes are estimated on the waves stacked into one design (pipeline.tables.wave_change).
     """
 
     kind: Literal["probability", "nonprobability"] = "probability"
@@ -80,6 +82,7 @@ class Design:
     first_stage: Literal["equal", "pps"] = "equal"
     psu_inclusion_probability: str | None = None
     extreme_weight_ratio: float = 1000.0
+    same_psus_across_waves: bool = False
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -160,11 +163,6 @@ class Variable:
         return tuple(dict.fromkeys((*self.exclude_from_statistics, *self.exclude_from_base)))
 
     @property
-    def routed(self) -> bool:
-        """Whether some respondents may not have been asked (a filter or a wave list)."""
-        return self.asked_if is not None or self.waves is not None or bool(self.item_waves)
-
-    @property
     def columns(self) -> tuple[str, ...]:
         """The data columns this variable reads (the items of a multi set, else its own name)."""
         return tuple(self.items) if self.type == "multi" else (self.name,)
@@ -205,6 +203,8 @@ class Study:
     database: Path | None = None  # default: <spec stem>.duckdb beside the spec
     weighting: tuple[dict, ...] = ()  # raw [[weighting]] steps, parsed by pipeline.weighting
     variance: dict = field(default_factory=dict)  # raw [variance] table, parsed by pipeline.estimation
+    tables: dict = field(default_factory=dict)  # raw [tables] table, parsed by pipeline.tables.spec
+    banners: tuple[dict, ...] = ()  # raw [[banners]] tables, parsed by pipeline.tables.spec
 
     @property
     def database_path(self) -> Path:
@@ -222,6 +222,7 @@ class Study:
             variable_types={name: v.type for name, v in self.variables.items()},
             coded=frozenset(coded | ({self.design.strata} if self.design.strata else set())),
             codes={name: tuple(str(c) for c in v.valid_codes) for name, v in self.variables.items() if v.valid_codes},
+            waves=tuple(w.id for w in self.waves),
         )
 
     def wave(self, wave_id: str) -> Wave:
@@ -238,6 +239,7 @@ class Study:
 
 _TOP_KEYS = (
     "title", "notes", "respondent_id", "database", "waves", "design", "variables", "derived", "weighting", "variance",
+    "tables", "banners",
 )
 _DERIVED_KEYS = ("label", "type", "values", "nets", "when")
 ANY_ITEM_LABEL = "Any of these"  # the multi set's own net of every item (pipeline.topline)
@@ -257,6 +259,7 @@ _DESIGN_KEYS = (
     "first_stage",
     "psu_inclusion_probability",
     "extreme_weight_ratio",
+    "same_psus_across_waves",
 )
 _ROUTING_KEYS = ("asked_if", "waves")
 _VARIABLE_KEYS: dict[str, tuple[str, ...]] = {
@@ -280,6 +283,7 @@ _INT_LITERAL = re.compile(r"^[+-]?[0-9]+$")
 _TOML_POSITION = re.compile(r"\(at line (\d+), column (\d+)\)")
 
 _TYPE_NAMES = {
+    bool: "true or false",
     str: "a string",
     list: "an array",
     dict: "a table",
@@ -345,6 +349,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
     the spec is valid.
     """
     from pipeline.estimation.options import parse_variance
+    from pipeline.tables.spec import parse_tables
     from pipeline.weighting.steps import parse_steps
 
     problems: list[Problem] = []
@@ -356,6 +361,7 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
             parse_steps(study.weighting, study.step_context())
         except SpecError as exc:
             problems += exc.problems
+        problems += parse_tables(study)[1]
     return problems
 
 
@@ -411,6 +417,8 @@ class _Checker:
         ok = type(value) is dt.date if kind is dt.date else isinstance(value, kind) and not isinstance(value, bool)
         if kind is float:
             ok = _is_number(value)
+        if kind is bool:
+            ok = isinstance(value, bool)
         if not ok:
             wanted = "a number" if kind is float else _TYPE_NAMES.get(kind, kind.__name__)
             full = f"{key}.{name}" if key else name
@@ -455,6 +463,11 @@ class _Checker:
         design = self.design(data.get("design", {}), variables)
         weighting = self.weighting(data)
         variance = self.typed(data, "", "variance", dict)
+        tables = self.typed(data, "", "tables", dict)
+        banners = data.get("banners", [])
+        if not isinstance(banners, list) or not all(isinstance(b, dict) for b in banners):
+            self.add("wrong-type", "banners", "must be an array of tables ([[banners]] blocks)")
+            banners = []
         self.columns(respondent_id, design, variables)
         if self.problems:
             return None
@@ -469,6 +482,8 @@ class _Checker:
             database=(spec_path.parent / database) if database else None,
             weighting=weighting,
             variance=dict(variance or {}),
+            tables=dict(tables or {}),
+            banners=tuple(banners),
         )
 
     def weighting(self, data: dict) -> tuple[dict, ...]:
@@ -641,8 +656,9 @@ class _Checker:
             key = f"variables.{name}"
             waves = self.wave_list(table, key, wave_ids) if "waves" in table else None
             item_waves = {
-                item: self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids)
+                item: listed
                 for item, waves_of_item in variable.item_waves.items()
+                if (listed := self.wave_list({"waves": list(waves_of_item)}, f"{key}.items.{item}", wave_ids))
             }
             condition = self.condition(table, key, columns, variable) if "asked_if" in table else None
             column = self.wave_columns(table, key, wave_ids) if "column" in table else {}
@@ -650,6 +666,13 @@ class _Checker:
             out[name] = replace(
                 variable, asked_if=condition, waves=waves, item_waves=item_waves, column=column, recode=recode
             )
+        for wave_id in wave_ids:  # a renamed column may not be another variable's column in that wave
+            owner = {c: v.name for v in out.values() for c in v.wave_columns(wave_id) if wave_id not in v.column}
+            for variable in out.values():
+                source = variable.column.get(wave_id)
+                if source is not None and variable.asked_in(wave_id) and source in owner:
+                    self.add("duplicate-column", f"variables.{variable.name}.column.{wave_id}",
+                             f"wave {wave_id}'s column '{source}' is already read by variables.{owner[source]}")
         return out
 
     def derived(self, raw: object, variables: dict[str, Variable]) -> dict[str, Variable]:
@@ -905,6 +928,7 @@ class _Checker:
         if ratio is not None and not ratio > 1:
             self.add("bad-value", "design.extreme_weight_ratio", f"must be above 1, not {ratio}", value=ratio)
             ratio = None
+        same_psus = self.typed(raw, "design", "same_psus_across_waves", bool)
         return Design(
             kind=kind,  # type: ignore[arg-type]
             strata=strata,
@@ -920,6 +944,7 @@ class _Checker:
             first_stage=first_stage,  # type: ignore[arg-type]
             psu_inclusion_probability=inclusion,
             extreme_weight_ratio=float(ratio) if ratio is not None else 1000.0,
+            same_psus_across_waves=bool(same_psus),
         )
 
     def stratum_codes(self, keys: list[str], key: str, strata_var: Variable | None) -> list[Code]:

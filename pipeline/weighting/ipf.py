@@ -39,12 +39,15 @@ class RakeFit:
     unconverged: np.ndarray
 
 
-def merge_empty_targets(sums: np.ndarray, targets: np.ndarray) -> np.ndarray:
+def merge_empty_targets(
+    sums: np.ndarray, targets: np.ndarray, groups: Sequence[np.ndarray] | None = None
+) -> np.ndarray:
     """(K, R) targets with each category that has no weight (sums 0, target > 0) merged into a neighbour.
 
-    Per replicate: the target of an empty category moves to the nearest category in code order that
-    has weight, the heavier of the two at equal distance, so the margin can still be met and its
-    total is kept (a per-replicate collapse of the category into its neighbour; our rule, common
+    Per replicate: the target of an empty category moves to the heaviest category with weight of
+    its group in the step's collapse order (`groups`: arrays of category indices), else to the
+    nearest category in code order that has weight, the heavier of the two at equal distance, so
+    the margin can still be met and its total is kept (a per-replicate collapse; our rule, common
     practice for sparse cells, no source). Categories are left as they are when none has weight.
     """
     out = targets.copy()
@@ -52,8 +55,10 @@ def merge_empty_targets(sums: np.ndarray, targets: np.ndarray) -> np.ndarray:
         live = np.flatnonzero(sums[:, r] > 0)
         if not len(live):
             continue
+        mates = [g for g in (groups or ()) if k in g]
+        in_group = np.intersect1d(live, mates[0]) if mates else np.array([], dtype=np.int64)
         distance = np.abs(live - k)
-        near = live[distance == distance.min()]
+        near = in_group if len(in_group) else live[distance == distance.min()]
         partner = near[np.argmax(sums[near, r])]
         out[partner, r] += out[k, r]
         out[k, r] = 0.0
@@ -83,6 +88,7 @@ def rake(
     max_iterations: int,
     start: np.ndarray | None = None,
     collapse_empty: bool = False,
+    partners: Sequence[Sequence[np.ndarray] | None] | None = None,
 ) -> RakeFit:
     """Rake (C, R) class totals to the margins; `population` (R,) scales proportion targets.
 
@@ -94,14 +100,16 @@ def rake(
     same margins leaves the fixed point unchanged (it is a reparametrisation of lambda), so the
     full-sample factors are a valid warm start for replicates.
     `collapse_empty` (replicates): a category with no weight in a replicate has its target merged
-    into a neighbour for that replicate (`merge_empty_targets`), so the others can still be met.
+    into a neighbour for that replicate (`merge_empty_targets`; `partners`: per margin, the category
+    groups of the step's collapse order, or None), so the others can still be met.
     """
     current = totals.copy() if start is None else totals * start[:, None]
     indicators = [_indicator(m) for m in margins]
     targets = [absolute_targets(m, population) for m in margins]
     collapsed = np.zeros(totals.shape[1], dtype=bool)
     if collapse_empty:
-        merged = [merge_empty_targets(g @ current, t) for g, t in zip(indicators, targets)]
+        groups = list(partners) if partners is not None else [None] * len(margins)
+        merged = [merge_empty_targets(g @ current, t, p) for g, t, p in zip(indicators, targets, groups)]
         for t, t_new in zip(targets, merged):
             collapsed |= np.any(t != t_new, axis=0)
         targets = merged

@@ -24,7 +24,7 @@ from pipeline.weighting.calibration import calibrate
 from pipeline.weighting.classes import ClassIndex, Margin, build_classes
 from pipeline.weighting.diagnostics import StepReport, WeightSummary, largest_weights, margin_checks
 from pipeline.weighting.ipf import absolute_targets, rake
-from pipeline.weighting.margins import build_margins
+from pipeline.weighting.margins import Collapse, build_margins
 from pipeline.weighting.steps import CalibrateStep, NonresponseStep, PoststratifyStep, RakeStep, Step, TrimStep
 
 TRIM_SLACK = 1e-6  # a weight within this relative distance of its bound counts as within it
@@ -86,6 +86,7 @@ class _RakeOp:
     reference: float | None = None
     replicate_tolerance: float | None = None
     replicate_max_iterations: int | None = None
+    partners: list | None = None  # per margin, category groups of the step's collapse order (or None)
     collapsed_replicates: int = 0  # replicates in which an empty margin category was merged into a neighbour
     unconverged_replicates: int = 0  # replicates accepted beyond replicate_tolerance
     worst_replicate_discrepancy: float = 0.0
@@ -122,7 +123,7 @@ class _RakeOp:
         tolerance = max(self.tolerance, self.replicate_tolerance or self.tolerance)
         cycles = self.replicate_max_iterations or 20 * self.max_iterations
         fit = rake(current, self.margins, pop, tolerance=tolerance, max_iterations=cycles, start=self.start,
-                   collapse_empty=True)
+                   collapse_empty=True, partners=self.partners)
         self.last = {"iterations": fit.iterations, "converged": fit.converged,
                      "discrepancy": {m.name: float(d) for m, d in zip(self.margins, fit.discrepancy)},
                      "population": float(pop[0]) if pop.size else 0.0,
@@ -307,7 +308,8 @@ def _build_ops(steps: Sequence[Step], classes: ClassIndex, data: pl.DataFrame, c
             ops[s.index] = _RakeOp(s.index, "rake", margins, _population(margins, s.total), s.tolerance,
                                    s.max_iterations, s.allow_nonconvergence,
                                    replicate_tolerance=s.replicate_tolerance,
-                                   replicate_max_iterations=s.replicate_max_iterations)
+                                   replicate_max_iterations=s.replicate_max_iterations,
+                                   partners=[collapse_groups(m, s.collapse) for m in margins])
         elif isinstance(s, CalibrateStep):
             margins, note, probs = (build_margins(classes, list(s.margins), s.targets, code_order=code_order,
                                                   collapse=s.collapse, where=where) if s.margins else ([], [], []))
@@ -327,6 +329,19 @@ def _build_ops(steps: Sequence[Step], classes: ClassIndex, data: pl.DataFrame, c
     if problems:
         raise DataError("the weighting targets do not fit the data", problems)
     return ops, notes
+
+
+def collapse_groups(margin: Margin, collapse: Collapse | None) -> list[np.ndarray] | None:
+    """The category groups (index arrays) of a one-variable margin's explicit collapse order, for
+    the per-replicate merge of empty categories; None for "adjacent", crossed margins or no order."""
+    if collapse is None or len(margin.variables) != 1:
+        return None
+    rule = collapse.order.get(margin.variables[0])
+    if not isinstance(rule, tuple):
+        return None
+    codes = [set(label.split("+")) for label in margin.categories]
+    return [np.array([k for k, c in enumerate(codes) if c & {str(x) for x in group}], dtype=np.int64)
+            for group in rule]
 
 
 def _chain_factors(ops: list, classes: ClassIndex, b: np.ndarray) -> np.ndarray:

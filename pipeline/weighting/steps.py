@@ -7,6 +7,7 @@ Each table of the array is one step, applied in the declared order; `step` names
   step = "poststratify"  cells = "age_band x sex", targets = "cells.csv" | totals = {...},
                          total = 1200000 (optional), collapse = {...} (optional)
   step = "rake"          margins = ["age_band x sex", "region"], targets = "margins.csv" | totals = {...},
+                         (targets by wave: a `wave` column in the CSV, or targets = { W1 = "a.csv", W4 = "b.csv" })
                          total, tolerance = 1e-6, max_iterations = 100, allow_nonconvergence = false, collapse,
                          replicate_tolerance (default tolerance; looser only), replicate_max_iterations (default
                          20 x max_iterations): replicate re-weighting only, which always finishes
@@ -25,7 +26,7 @@ merges small categories before the step (see pipeline.weighting.margins).
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -41,7 +42,8 @@ class StepContext:
     folder: where targets files are resolved; source: the spec file, named in messages;
     variable_types: codebook variable name -> type; coded: the variables a margin, cell or class
     may use (single-choice and rating variables, and the strata column); codes: variable -> its
-    codebook codes as text, in order (the order margins and collapsing follow).
+    codebook codes as text, in order (the order margins and collapsing follow); waves: the spec's
+    wave ids (targets may differ by wave).
     The steps never read the spec itself, so the weighting package does not import it.
     """
 
@@ -50,6 +52,7 @@ class StepContext:
     variable_types: Mapping[str, str] = field(default_factory=dict)
     coded: frozenset[str] = frozenset()
     codes: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
+    waves: tuple[str, ...] = ()
 
     def code_order(self, variables: set[str]) -> dict[str, list[str]]:
         """Codebook code order (as text) of those of `variables` that have codes."""
@@ -227,7 +230,7 @@ def _unknown_target_variables(r: _Reader, targets: TargetTable, variables: set[s
     if not variables:  # no codebook to compare with
         return
     key = "targets" if "targets" in r.raw else "totals"
-    for margin in targets.margins:
+    for margin in sorted(targets.all_margins()):
         for name in split_margin(margin):
             if name not in variables:
                 close = difflib.get_close_matches(name, sorted(variables), n=2)
@@ -235,16 +238,37 @@ def _unknown_target_variables(r: _Reader, targets: TargetTable, variables: set[s
                 r.bad(key, f"the targets name margin '{margin}', but '{name}' is not a codebook variable{hint}")
 
 
-def _targets(r: _Reader, folder: Path) -> TargetTable:
+def _wave_targets(r: _Reader, folder: Path, files: dict, waves: tuple[str, ...]) -> TargetTable:
+    """`targets = { W1 = "a.csv", W4 = "b.csv" }`: each wave's targets from its own file."""
+    by_wave: dict[str, dict[str, dict[tuple[str, ...], float]]] = {}
+    for wave, file in files.items():
+        if waves and wave not in waves:
+            r.bad(f"targets.{wave}", f"'{wave}' is not a wave of the spec ({', '.join(waves)})")
+        elif not isinstance(file, str):
+            r.bad(f"targets.{wave}", f"must be a file path, got {file!r}")
+        else:
+            table, problems = read_targets_csv(folder / file, where=f"{r.where}, targets.{wave}")
+            r.problems.extend(problems)
+            if table is not None:
+                by_wave[wave] = table.for_wave(wave).margins
+    return TargetTable({}, source=", ".join(str(f) for f in files.values()), waves=by_wave, every_wave=False)
+
+
+def _targets(r: _Reader, folder: Path, waves: tuple[str, ...] = ()) -> TargetTable:
     has_file, has_inline = "targets" in r.raw, "totals" in r.raw
     if has_file == has_inline:
         r.bad("targets", "give exactly one of `targets` (a CSV file variable,category,target) or `totals` (inline)")
         return TargetTable({}, source=r.where)
     if has_file:
+        if isinstance(r.raw["targets"], dict):
+            return _wave_targets(r, folder, r.raw["targets"], waves)
         if not isinstance(r.raw["targets"], str):
-            r.bad("targets", f"must be a file path, got {r.raw['targets']!r}")
+            r.bad("targets", f"must be a file path or a table wave = file path, got {r.raw['targets']!r}")
             return TargetTable({}, source=r.where)
         table, problems = read_targets_csv(folder / r.raw["targets"], where=f"{r.where}, targets")
+        if table is not None and waves:
+            for wave in sorted(set(table.waves) - set(waves)):
+                r.bad("targets", f"{r.raw['targets']} has rows for wave '{wave}', which is not a wave of the spec")
     else:
         table, problems = inline_targets(r.raw["totals"], where=f"{r.where}, totals")
     r.problems.extend(problems)
@@ -315,7 +339,7 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
             r.bad("lower", f"must be below upper ({lower} >= {upper})")
         return TrimStep(i, upper, lower, relative_to, r.integer("max_rounds", 100))
     collapse = _collapse(r, known)
-    targets = _targets(r, folder)
+    targets = _targets(r, folder, context.waves)
     _unknown_target_variables(r, targets, set(context.variable_types))
     total = r.number("total", None)
     if kind == "poststratify":
@@ -363,6 +387,33 @@ def _parse_one(i: int, raw: object, context: StepContext, problems: list[Problem
         i, distance, margins, {k: float(v) for k, v in numeric.items() if isinstance(v, (int, float))}, targets,
         bounds, total, float(r.number("tolerance", 1e-8) or 1e-8), r.integer("max_iterations", 50), collapse,
     )
+
+
+def steps_for_wave(steps: list[Step], wave: str, *, source: str = "") -> list[Step]:
+    """The steps with each step's targets those of `wave` (`TargetTable.for_wave`).
+
+    SpecError (rule wave-without-targets) naming each step whose targets give this wave nothing.
+    """
+    out: list[Step] = []
+    problems: list[Problem] = []
+    for step in steps:
+        targets = getattr(step, "targets", None)
+        if targets is None:
+            out.append(step)
+            continue
+        own = targets.for_wave(wave)
+        needs = bool(getattr(step, "margins", ())) or isinstance(step, PoststratifyStep)
+        if needs and not own.margins:
+            problems.append(Problem(
+                "wave-without-targets",
+                f"weighting[{step.index}] ({step.kind}): the targets ({targets.source}) give wave '{wave}' none; "
+                f"add rows with wave {wave} (or rows without a wave) or a targets file for {wave}",
+                value=wave,
+            ))
+        out.append(replace(step, targets=own))  # type: ignore[arg-type]
+    if problems:
+        raise SpecError(f"{source or 'the spec'}: wave {wave} has no weighting targets", problems)
+    return out
 
 
 def parse_steps(raw: tuple[dict, ...], context: StepContext) -> list[Step]:

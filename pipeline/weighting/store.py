@@ -14,11 +14,12 @@ import numpy as np
 import polars as pl
 
 from pipeline.errors import SpecError, WavebookError
+from pipeline.outputs import write_output, write_text_output
 from pipeline.sqlfiles import sql
 from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.diagnostics import StepReport, WeightingReport, WeightSummary
 from pipeline.weighting.recipe import FittedRecipe, fit_recipe, largest
-from pipeline.weighting.steps import parse_steps
+from pipeline.weighting.steps import parse_steps, steps_for_wave
 
 if TYPE_CHECKING:
     import duckdb
@@ -65,7 +66,7 @@ def fit_wave(
     from pipeline.staging.database import load_responses
 
     context = study.step_context()
-    steps = parse_steps(study.weighting, context)
+    steps = steps_for_wave(parse_steps(study.weighting, context), wave_id, source=str(study.path))
     if data is None:
         data = load_responses(con, study, [wave_id], columns=weighting_columns(study))
     base, _ = design_base_weights(data, study, id_column=ID)
@@ -197,12 +198,15 @@ def export_replicates(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnect
     frame = pl.DataFrame({"respondent_id": export.ids, "wave": [wave_id] * len(export.ids),
                           "weight": recipe.weights}).with_columns(
         pl.Series(f"replicate_{r + 1}", export.weights[:, r]) for r in range(export.weights.shape[1]))
-    sidecar = path.with_name(f"{path.name}.replicates.json")
     write_frame(frame, path)
-    tmp = sidecar.with_name(f".{sidecar.name}.tmp")
-    tmp.write_text(json.dumps({"wave": wave_id, **export.metadata()}, indent=1), encoding="utf-8")
-    tmp.replace(sidecar)
+    write_text_output(replicate_sidecar(path), json.dumps({"wave": wave_id, **export.metadata()}, indent=1))
     return int(export.weights.shape[1])
+
+
+def replicate_sidecar(path: Path) -> Path:
+    """`<path>.replicates.json`: the variance recipe beside an export of replicate weights (checked
+    with `pipeline.outputs.check_output` like the export itself)."""
+    return path.with_name(f"{path.name}.replicates.json")
 
 
 def _stratum_values(values: dict) -> dict[str, float] | None:
@@ -213,8 +217,6 @@ def write_frame(frame: pl.DataFrame, path: Path) -> None:
     """Write a frame to `path` (.csv or .parquet) through `pipeline.outputs.write_output` (a
     temporary file renamed into place, recorded as wavebook's own output). The caller checks
     `path` first with `pipeline.outputs.check_output`."""
-    from pipeline.outputs import write_output
-
     suffix = path.suffix.lower()
     if suffix not in (".csv", ".parquet"):
         raise WavebookError(f"cannot write {path}: the file name must end in .csv or .parquet")

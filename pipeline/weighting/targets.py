@@ -1,6 +1,7 @@
 """Population targets for post-stratification, raking and calibration.
 
-Targets come from a long CSV with header `variable,category,target` or inline in the spec as
+Targets come from a long CSV with header `variable,category,target` (and optionally `wave`: rows
+with a wave apply to that wave only, rows without one to every wave) or inline in the spec as
 `totals = { region = { 1 = 0.55, 2 = 0.45 }, "age_band x sex" = { "1 x 1" = 0.06, ... } }`.
 A crossed margin is named by joining its variables with " x " and its categories by joining
 the codes with " x ". Targets of one margin are proportions (they sum to 1) or counts.
@@ -9,7 +10,7 @@ the codes with " x ". Targets of one margin are proportions (they sum to 1) or c
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from pipeline.errors import Problem
@@ -36,14 +37,30 @@ def split_category(label: str) -> tuple[str, ...]:
 
 @dataclass(frozen=True)
 class TargetTable:
-    """Targets by margin: margin name -> {category label (codes joined by " x ") -> target}."""
+    """Targets by margin: margin name -> {category label (codes joined by " x ") -> target}.
+
+    waves: wave id -> margins of that wave only (a `wave` column, or `targets = { W1 = ... }`);
+    every_wave: whether `margins` apply to the waves too (False for `targets = { W1 = ... }`,
+    where a wave not listed has no targets). `for_wave` gives one wave's plain table.
+    """
 
     margins: dict[str, dict[tuple[str, ...], float]]
     source: str
+    waves: dict[str, dict[str, dict[tuple[str, ...], float]]] = field(default_factory=dict)
+    every_wave: bool = True
 
     def get(self, variables: tuple[str, ...]) -> dict[tuple[str, ...], float] | None:
         """The targets of the margin over `variables` (None when the table lacks that margin)."""
         return self.margins.get(margin_name(variables))
+
+    def for_wave(self, wave: str) -> TargetTable:
+        """The targets of one wave: its own margins, and the every-wave margins it does not replace."""
+        common = self.margins if self.every_wave else {}
+        return TargetTable({**common, **self.waves.get(wave, {})}, source=self.source)
+
+    def all_margins(self) -> set[str]:
+        """Every margin named, for any wave."""
+        return set(self.margins) | {m for margins in self.waves.values() for m in margins}
 
 
 def _add(
@@ -134,7 +151,9 @@ def read_targets_csv(path: Path, *, where: str) -> tuple[TargetTable | None, lis
     if missing:
         return unusable(f"targets file lacks column(s) {', '.join(missing)}; the header must be variable,category,target", 1)
     index = [header.index(c) for c in ("variable", "category", "target")]
+    wave_index = header.index("wave") if "wave" in header else None
     margins: dict[str, dict[tuple[str, ...], float]] = {}
+    waves: dict[str, dict[str, dict[tuple[str, ...], float]]] = {}
     problems: list[Problem] = []
     label = f"{where} ({path.name})"
     for record in reader:
@@ -151,9 +170,11 @@ def read_targets_csv(path: Path, *, where: str) -> tuple[TargetTable | None, lis
             )
             continue
         margin, category, target = (record[i].strip() for i in index)
-        _add(margins, problems, where=label, margin=margin, category=category, raw_target=target, line=reader.line_num)
+        wave = record[wave_index].strip() if wave_index is not None else ""
+        into = waves.setdefault(wave, {}) if wave else margins
+        _add(into, problems, where=label, margin=margin, category=category, raw_target=target, line=reader.line_num)
     problems = [replace(p, file=str(path)) for p in problems]
-    return TargetTable(margins, source=str(path)), problems
+    return TargetTable(margins, source=str(path), waves=waves), problems
 
 
 def inline_targets(raw: object, *, where: str) -> tuple[TargetTable | None, list[Problem]]:

@@ -1,0 +1,91 @@
+"""How the book prints numbers: percentages with their intervals, statistics, counts.
+
+Display conventions (the book's own; no outside source):
+
+* Rounding is half up (12.5 -> 13), not Python's half to even.
+* A percentage and its interval share one number of decimals, chosen together: whole numbers,
+  unless whole numbers would mislead, then one decimal. Whole numbers mislead when a value that
+  is not exactly 0 or 100 would print as 0 or 100 (at either end of the interval, or the
+  estimate itself), or when the interval's two ends would print the same although they differ.
+  A value that still prints as 0.0 or 100.0 with one decimal prints as "<0.1" or ">99.9".
+* Integer-valued statistics (counts of answers, and medians, minima and maxima that are whole
+  numbers, as on a rating scale) print without decimals; means, and order statistics that are
+  not whole, print with 2 decimals.
+"""
+
+from __future__ import annotations
+
+import math
+
+INTEGER_STATISTICS = ("n",)
+ORDER_STATISTICS = ("median", "min", "max")
+
+
+def half_up(number: float, decimals: int = 0) -> float:
+    """`number` rounded half up to `decimals` places (12.5 -> 13; 0.25 -> 0.3 with one decimal).
+
+    The scaled value is first rounded to 9 places so that binary noise (0.25 stored a hair under)
+    does not flip a half down."""
+    scale = 10**decimals
+    return math.floor(round(number * scale, 9) + 0.5) / scale
+
+
+def percent_decimals(*values: float | None) -> int:
+    """0 or 1: the decimals for a percentage and its interval ends (None ends are ignored).
+
+    One decimal when a value strictly between 0 and 100 would round to 0 or 100, or when the
+    first two values given after the estimate (the interval's ends) differ but round equal."""
+    present = [v for v in values if v is not None and math.isfinite(v)]
+    if any(half_up(v) in (0.0, 100.0) and 0.0 < v < 100.0 for v in present):
+        return 1
+    if len(values) == 3 and values[1] is not None and values[2] is not None:
+        low, high = values[1], values[2]
+        if low < high and half_up(low) == half_up(high):
+            return 1
+    return 0
+
+
+def percent_number(value: float, decimals: int) -> str:
+    """A percentage without the sign at `decimals` places; "<0.1"/">99.9" where one decimal would
+    still print an exact end for a value that is not one."""
+    if decimals == 1 and 0.0 < value < 0.05:
+        return "<0.1"
+    if decimals == 1 and 99.95 <= value < 100.0:
+        return ">99.9"
+    return f"{half_up(value, decimals):.{decimals}f}"
+
+
+def percent_texts(estimate: float, low: float | None = None, high: float | None = None) -> tuple[str, str | None]:
+    """The estimate as "12%" and its interval as "10–15" (None without ends), with shared decimals."""
+    decimals = percent_decimals(estimate, low, high)
+    interval = None
+    if low is not None and high is not None:
+        interval = f"{percent_number(low, decimals)}–{percent_number(high, decimals)}"
+    return f"{percent_number(estimate, decimals)}%", interval
+
+
+def statistic_number(code: str, value: float) -> str:
+    """A statistic's value: counts and whole order statistics without decimals, else 2 decimals."""
+    if code in INTEGER_STATISTICS or (code in ORDER_STATISTICS and float(value).is_integer()):
+        return f"{half_up(value):,.0f}"
+    return f"{value:,.2f}"
+
+
+def statistic_interval(code: str, low: float, high: float) -> str:
+    """A statistic's interval "6–8" or "6.25–7.80": whole numbers only when both ends are whole
+    numbers of an order statistic (a median's interval on a rating scale)."""
+    if code in ORDER_STATISTICS and float(low).is_integer() and float(high).is_integer():
+        return f"{low:,.0f}–{high:,.0f}"
+    return f"{low:,.2f}–{high:,.2f}"
+
+
+def count_text(count: int | float) -> str:
+    """A count of respondents with thousands separators."""
+    return f"{half_up(count):,.0f}"
+
+
+def ratio_text(value: float | None, decimals: int = 2) -> str | None:
+    """A ratio such as a design effect to `decimals` places; None where undefined."""
+    if value is None or not math.isfinite(value):
+        return None
+    return f"{value:,.{decimals}f}"
