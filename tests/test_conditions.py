@@ -146,6 +146,9 @@ _ROWS = st.lists(
 )
 
 
+_CON = duckdb.connect()  # one in-memory connection for every example (each registers its own frame)
+
+
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(tree=_TREES, rows=_ROWS)
 def test_polars_and_duckdb_forms_select_the_same_rows(tree: Node, rows: list[tuple]) -> None:
@@ -156,9 +159,11 @@ def test_polars_and_duckdb_forms_select_the_same_rows(tree: Node, rows: list[tup
     by_polars = frame.filter(to_polars(tree))["id"].to_list()
     flags = frame.select(to_polars(tree).alias("f"))["f"]
     assert flags.null_count() == 0  # true or false for every respondent, never null
-    con = duckdb.connect()
-    con.register("t", frame)
-    by_duckdb = sorted(r[0] for r in con.table("t").filter(to_duckdb(tree)).select("id").fetchall())
+    _CON.register("t", frame)
+    try:
+        by_duckdb = sorted(r[0] for r in _CON.table("t").filter(to_duckdb(tree)).select("id").fetchall())
+    finally:
+        _CON.unregister("t")
     assert by_polars == by_duckdb, show(tree)
 
 
@@ -176,6 +181,6 @@ def test_missing_answers_fail_every_comparison_and_membership() -> None:
     }
 
 
-def test_round_trip_of_shown_text_is_not_needed_for_literals_with_quotes() -> None:
+def test_a_text_literal_may_hold_the_other_quote() -> None:
     """A text literal may hold the other quote character; the tree keeps it verbatim."""
     assert parse("b == \"it's\"").tree == Compare("b", "==", "it's", 0, 5)

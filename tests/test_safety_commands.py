@@ -151,3 +151,29 @@ def test_check_warns_of_a_weighting_category_inside_one_psu(tracker: Tracker, ca
         code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
         assert code == 0, out
         assert ("[category-in-one-psu]" in out and "category '3' of margin 'age_band'" in out) == warned, method
+
+
+def test_check_warns_of_a_weighting_category_in_one_psu_of_a_stratum(tracker: Tracker, capsys: pytest.CaptureFixture[str]) -> None:
+    """Age band 3 lies in both areas of region 2 but in only area 1 of region 1 (3 PSUs overall, so
+    category-in-one-psu stays silent); every other (region, band) cell spans both areas."""
+    rows = tracker_rows(12, prefix="a")
+    region1_bands = {0: "3", 2: "1", 4: "1", 6: "2", 8: "2", 10: "1"}
+    for i, row in enumerate(rows):
+        if row["region"] == "1":
+            row["age_band"] = region1_bands[i]
+    tracker.write_wave("wave1.csv", rows)
+    step = '\n[[weighting]]\nstep = "rake"\nmargins = ["age_band"]\ntargets = "targets.csv"\n'
+    (tracker.folder / "targets.csv").write_text(AGE_TARGETS, encoding="utf-8")
+    for method, warned in (("jackknife", True), ("stratified-jackknife", True), ("taylor", False)):
+        tracker.write_spec(TRACKER_SPEC + f'\n[variance]\nmethod = "{method}"\n' + step)
+        code, out, _ = wavebook(["check", str(tracker.spec_path), "--wave", "W1"], capsys)
+        assert code == 0, out
+        assert "[category-in-one-psu]" not in out, out
+        thin = [line for line in out.splitlines() if "[category-thin-in-stratum]" in line]
+        if not warned:
+            assert thin == [], method
+            continue
+        (line,) = thin
+        assert "wave W1, weighting step 1: category '3' of margin 'age_band'" in line, line
+        assert "lies in 1 of the 2 PSUs of stratum '1' (region)" in line, line
+        assert "W1: ok, 1 warning" in out, out

@@ -108,7 +108,12 @@ def test_sigint_to_the_command_exits_130(tracker: Tracker) -> None:
         stderr=subprocess.PIPE,
         text=True,
     )
-    time.sleep(1.0)
+    # Signal once the run is at work (its study database exists), not while the interpreter is
+    # still starting: on a loaded machine a fixed delay can land before Python installs its handler.
+    database = tracker.folder / "study.duckdb"
+    deadline = time.monotonic() + 60
+    while not database.exists() and process.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.01)
     process.send_signal(2)
     _, err = process.communicate(timeout=60)
     if process.returncode == 0:
