@@ -120,3 +120,12 @@ def test_shared_psus_change_variance_equals_a_direct_stacked_computation():
         independent.append(np.sqrt((cells["se"] ** 2).sum()))
     # the shared PSU effect correlates the waves positively: the change is more precise than independence says
     assert got.sort("column_a")["se_difference"].to_numpy()[0] < independent[0]
+
+
+def test_chance_marks_count_every_test_made_and_expect_tests_times_level():
+    """Expected false marks if nothing differed = tests x level (linearity of expectation)."""
+    result = _three_waves()
+    made = int(result.tests["p_value"].is_not_null().sum())
+    assert result.chance.tests == made > 50
+    assert result.chance.expected == (made * 0.05,)
+    assert f"{made:,} significance tests" in result.chance.sentence()
