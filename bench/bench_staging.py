@@ -19,6 +19,11 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    import numpy as np
+    import polars as pl
 
 N_SINGLE = 30  # single-choice columns, codes 1..5
 N_SCALE = 10  # 0-10 scales with 99 = don't know
@@ -27,12 +32,11 @@ N_NUMERIC = 6  # numeric columns with bounds
 # plus resp_id, region, area, p_select = 60 columns
 
 
-def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
-    """Write waves/wave1.csv (seeded invented data) and study.toml into `folder`; return the spec path."""
+def wave_frame(rows: int, rng: np.random.Generator) -> pl.DataFrame:
+    """One wave's 60 columns of seeded invented answers, drawn with `rng`."""
     import numpy as np
     import polars as pl
 
-    rng = np.random.default_rng(seed)
     region = rng.integers(1, 11, rows)
     columns: dict[str, object] = {
         "resp_id": [f"R{i:07d}" for i in range(rows)],
@@ -49,9 +53,18 @@ def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
         columns[f"{'aware' if j < 5 else 'used'}_b{j % 5}"] = (rng.random(rows) < 0.4).astype(np.int8)
     for j in range(N_NUMERIC):
         columns[f"spend{j}"] = np.round(rng.lognormal(3, 1, rows), 2)
-    frame = pl.DataFrame(columns).with_columns(
+    return pl.DataFrame(columns).with_columns(
         pl.when(pl.int_range(pl.len()) % 17 == 0).then(None).otherwise(pl.col("spend0")).alias("spend0")
     )
+
+
+def write_study(folder: Path, rows: int, *, seed: int = 20260301) -> Path:
+    """Write waves/wave1.csv (seeded invented data) and study.toml into `folder`; return the spec path."""
+    import numpy as np
+    import polars as pl
+
+    rng = np.random.default_rng(seed)
+    frame = wave_frame(rows, rng)
     (folder / "waves").mkdir(parents=True, exist_ok=True)
     frame.write_csv(folder / "waves" / "wave1.csv")
     # W3: the same rows with about 1% bad values in 10 coded columns and a numeric one (errors)

@@ -10,27 +10,34 @@ order, are small functions so later stages slot in between staging and rendering
   5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
                                          effects joined onto the same cells
   5b. `pipeline.tables.Tabulation`       with `[tables]`: banner cells and tests of each wave from
-                                         the same weighted rows; `<stem>_cells` / `<stem>_tests`
+                                         the same weighted rows; `<stem>_banner_cells` / `<stem>_tests`
                                          exports beside the book
-  6. `save_results`                      the cells and the book's other inputs stored
+  6. `tidy_cells` + `write_cells`        the tidy export, `<spec stem>_cells.parquet` / `.csv`
+                                         beside the book (`pipeline.cells_export`)
+  7. `save_results`                      the cells and the book's other inputs stored
                                          (`wavebook book` re-renders from them)
-  7. `render_book`                       the HTML book and its manifest.json, written atomically
+  8. `render_book`                       the HTML book and its manifest.json, written atomically
 """
 
 from __future__ import annotations
 
 import datetime as dt
 import sys
+import time
 from pathlib import Path
 
+import duckdb
 import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.book.manifest import run_manifest
 from pipeline.book.store import load_results, save_results
+from pipeline.cells_export import export_paths as cells_export_paths
+from pipeline.cells_export import tidy_cells, write_cells
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
+from pipeline.memory import DEFAULT_BUDGET, variable_batches
 from pipeline.outputs import check_output, file_sha256, study_inputs
 from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
 from pipeline.staging.spec import Study, load_spec
@@ -40,9 +47,9 @@ from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.exports import export_paths, write_exports
 from pipeline.tables.workbook import write_workbook
 from pipeline.topline import unweighted_toplines
-from pipeline.weighted_cells import ESTIMATE_SCHEMA, wave_estimates
+from pipeline.weighted_cells import ESTIMATE_SCHEMA, RememberedReplay, wave_estimates
 from pipeline.weighting import WeightingReport
-from pipeline.weighting.store import fit_wave, store
+from pipeline.weighting.store import fit_wave, store, weighting_columns
 
 
 def default_book_path(study: Study) -> Path:
@@ -115,7 +122,13 @@ def variance_options(study: Study) -> VarianceOptions:
 
 
 def weigh_and_estimate(
-    study: Study, cells: pl.DataFrame, options: VarianceOptions, *, quiet: bool = False,
+    study: Study,
+    cells: pl.DataFrame,
+    options: VarianceOptions,
+    *,
+    quiet: bool = False,
+    timings: dict[str, float] | None = None,
+    memory_budget: int = DEFAULT_BUDGET,
     tabulation: Tabulation | None = None,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
@@ -124,9 +137,17 @@ def weigh_and_estimate(
 
     Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
     (wave, variable, row_order), the weighting report of each wave, and for replicate methods
-    each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting warnings go to
-    stderr. Each wave's estimates come from one grouped pass over that wave's respondents.
+    each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting
+    warnings go to stderr. Each wave's rows are read from the database once: the weighting columns
+    first (`weighting_columns`, kept for the whole wave), then the answer columns in the batches of
+    variables that fit `memory_budget` bytes (`pipeline.memory.variable_batches`), each batch
+    estimated in one grouped pass over the wave's respondents.
+    timings: when given, receives the seconds spent weighting ("weigh") and estimating
+    ("estimates"), summed over the waves (`bench/bench_study_run.py` reads them).
     """
+    clock = timings if timings is not None else {}
+    clock.setdefault("weigh", 0.0)
+    clock.setdefault("estimates", 0.0)
     wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
     reports: dict[str, WeightingReport] = {}
     adjustments: dict[str, dict[str, int]] = {}
@@ -134,19 +155,34 @@ def weigh_and_estimate(
     con = open_database(study)
     try:
         for wave_id in wave_ids:
+            start = time.perf_counter()
             with progress.step(f"weighting wave {wave_id}", quiet=quiet):
-                recipe, report = fit_wave(study, wave_id, con=con)
+                held = load_responses(con, study, [wave_id], columns=weighting_columns(study))
+                recipe, report = fit_wave(study, wave_id, con=con, data=held)
                 store(con, recipe, report)
+            clock["weigh"] += time.perf_counter() - start
             for warning in report.warnings:
                 print(warning.render(), file=sys.stderr)
             reports[wave_id] = report
-            with progress.step(f"estimating wave {wave_id}", quiet=quiet):
-                responses = load_responses(con, study, [wave_id])
-                layout = cells.filter(pl.col("wave") == wave_id)
-                estimates.append(wave_estimates(responses, study, recipe, layout, options, wave=wave_id))
-            if tabulation is not None:
+            start = time.perf_counter()
+            layout = cells.filter(pl.col("wave") == wave_id)
+            batches = variable_batches(study, held.height, memory_budget, held_columns=held.width)
+            replay = RememberedReplay(recipe.replay)
+            for k, names in enumerate(batches):
+                label = f"estimating wave {wave_id}" + (f" ({k + 1} of {len(batches)})" if len(batches) > 1 else "")
+                with progress.step(label, quiet=quiet):
+                    part = _with_columns(con, study, wave_id, held, names)
+                    estimates.append(
+                        wave_estimates(part, study, recipe, layout, options, wave=wave_id, variables=names, replay=replay)
+                    )
+                    del part
+            del held
+            clock["estimates"] += time.perf_counter() - start
+            if tabulation is not None:  # banner tables read the wave's rows whole (outside the memory budget)
                 with progress.step(f"banner tables of wave {wave_id}", quiet=quiet):
+                    responses = load_responses(con, study, [wave_id])
                     tabulation.add_wave(wave_id, responses, recipe, layout)
+                    del responses
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
             if options.method != "taylor":
@@ -157,6 +193,21 @@ def weigh_and_estimate(
     return joined, reports, adjustments
 
 
+def _with_columns(
+    con: duckdb.DuckDBPyConnection, study: Study, wave_id: str, held: pl.DataFrame, names: list[str]
+) -> pl.DataFrame:
+    """`held` (the wave's weighting columns) beside the columns of the variables `names` it lacks,
+    read from the database in the same row order (checked on the respondent ids)."""
+    wanted = [c for n in names for c in study.variables[n].columns if c not in held.columns]
+    # (routing flags come with every read: `load_responses` adds them)
+    if not wanted:
+        return held
+    extra = load_responses(con, study, [wave_id], columns=list(dict.fromkeys(wanted)))
+    if not extra["respondent_id"].equals(held["respondent_id"]):
+        raise AssertionError(f"two reads of wave {wave_id} returned its respondents in different orders")
+    return held.hstack(extra.drop(c for c in extra.columns if c in held.columns))
+
+
 def run_study(
     spec_path: str | Path,
     *,
@@ -164,6 +215,7 @@ def run_study(
     restage: bool = False,
     quiet: bool = False,
     force: bool = False,
+    memory_budget: int = DEFAULT_BUDGET,
     single_file: bool | None = None,
     xlsx: bool = False,
 ) -> Path:
@@ -172,15 +224,18 @@ def run_study(
     Stages the waves `waves_to_stage` selects (a summary per wave unless `quiet`, and every
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
-    (`weigh_and_estimate`), stores the book's inputs (`save_results`) and renders the book to
+    (`weigh_and_estimate`, within `memory_budget` bytes of respondent-level work), writes the tidy
+    cells export beside the book, stores the book's inputs (`save_results`) and renders the book to
     `book_path(study, out, force=force)`, which is checked first (`single_file` as in
-    `render_book`), with the run manifest. With `[tables]`, the banner exports `<book stem>_cells` / `_tests`
+    `render_book`), with the run manifest. With `[tables]`, the banner exports `<book stem>_banner_cells` / `_tests`
     are written beside the book (checked first too), and with `xlsx` the workbook
     `<book stem>_tables.xlsx` (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
     """
     started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
+    for path in cells_export_paths(out_path, study.path.stem):  # the tidy export beside the book
+        check_output(path, study_inputs(study), force=force, option="--out")
     options = variance_options(study)
     spec = tables_spec(study)
     if xlsx and spec is None:
@@ -206,7 +261,9 @@ def run_study(
         finally:
             con.close()
     tabulation = Tabulation(study, spec, options) if spec is not None else None
-    cells, reports, adjustments = weigh_and_estimate(study, cells, options, quiet=quiet, tabulation=tabulation)
+    cells, reports, adjustments = weigh_and_estimate(
+        study, cells, options, quiet=quiet, memory_budget=memory_budget, tabulation=tabulation
+    )
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     weighting = weighting_section(study, reports)
     variance = variance_lines(
@@ -223,6 +280,7 @@ def run_study(
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
     save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
+        write_cells(tidy_cells(cells), out_path, study.path.stem)
         return render_book(
             study,
             cells,

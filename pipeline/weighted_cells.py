@@ -38,12 +38,14 @@ the t interval with the design degrees of freedom.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+import hashlib
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 import polars as pl
 
 from pipeline.estimation import estimate_table
+from pipeline.estimation.api import MeanOf
 from pipeline.estimation.intervals import korn_graubard_interval
 from pipeline.estimation.options import VarianceOptions
 from pipeline.staging.routing import asked_column, flagged
@@ -79,8 +81,8 @@ SET_BY_WEIGHTING_SE = 1e-5
 def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, str, pl.Expr | None, pl.Expr]]:
     """(row_order, kind, y, base) per estimable row of one variable's layout.
 
-    y is the 0/1 indicator (percent rows) or the value (mean, median); base is the 0/1 base
-    indicator. y is None for rows estimated from the value column directly (statistics).
+    y is the 0/1 indicator (percent rows), the -1/0/1 score (balance rows) or None for rows
+    estimated from the value column (mean, median); base is the boolean base indicator.
     """
     out: list[tuple[int, str, pl.Expr | None, pl.Expr]] = []
     asked = pl.col(asked_column(variable.name)) if variable.name in flagged(variable) else pl.lit(True)
@@ -126,11 +128,15 @@ def _row_expressions(variable: Variable, rows: pl.DataFrame) -> list[tuple[int, 
 
 
 def _wave_frame(
-    responses: pl.DataFrame, study: Study, recipe: FittedRecipe, layout: pl.DataFrame
-) -> tuple[pl.DataFrame, list[str], list[str], dict[str, tuple[str, int, str]]]:
-    """The wave's respondents with one derived column per estimable row, the weight and the class.
+    responses: pl.DataFrame, study: Study, recipe: FittedRecipe, layout: pl.DataFrame, variables: Sequence[str]
+) -> tuple[
+    pl.DataFrame, list[MeanOf], list[str], list[str], dict[str, tuple[str, int, str]], dict[str, pl.Expr]
+]:
+    """The wave's respondents with the weight, the class and one derived column per mean or median
+    of a value; every percentage row is a `MeanOf` request on the answer columns themselves.
 
-    Returns (frame, mean columns, median columns, column -> (variable, row_order, kind)).
+    Returns (frame, percentage requests, mean columns, median columns, name -> (variable,
+    row_order, kind), name -> base expression).
     """
     weights = pl.DataFrame(
         {
@@ -142,26 +148,57 @@ def _wave_frame(
     )
     frame = responses.join(weights, on="respondent_id", how="inner", validate="1:1")
     derived: list[pl.Expr] = []
+    shares: list[MeanOf] = []
     means: list[str] = []
     medians: list[str] = []
     meaning: dict[str, tuple[str, int, str]] = {}
-    for name, variable in study.variables.items():
+    bases: dict[str, pl.Expr] = {}
+    for name in variables:
+        variable = study.variables[name]
         rows = layout.filter(pl.col("variable") == name)
         for order, kind, y, base in _row_expressions(variable, rows):
             column = f"__r{len(meaning)}"
             meaning[column] = (name, order, kind)
+            bases[column] = base
             if y is None:
-                derived.append(pl.when(base).then(pl.col(name).cast(pl.Float64)).otherwise(None).alias(column))
+                # the answer itself outside-base nulled, in its own type: whole-number codes stay
+                # integers, which the grouped pass codes by arithmetic (no sort); the estimators
+                # cast to float64 themselves
+                derived.append(pl.when(base).then(pl.col(name)).otherwise(None).alias(column))
                 (medians if kind == "median" else means).append(column)
             else:
-                derived.append(pl.when(base).then(y.cast(pl.Float64)).otherwise(None).alias(column))
-                means.append(column)
-    return frame.with_columns(derived), means, medians, meaning
+                # rows with the same base (every category of a question) share its quantity; a
+                # balance score is -1/0/1, so it keeps its own squared quantity
+                shares.append(MeanOf(column, y, base, _expression_key(base), indicator=kind != "balance"))
+    return frame.with_columns(derived), shares, means, medians, meaning, bases
+
+
+def _expression_key(expr: pl.Expr) -> str:
+    """A name for an expression that two expressions share only when they are the same expression."""
+    return hashlib.blake2b(expr.meta.serialize(format="json").encode(), digest_size=16).hexdigest()
 
 
 def _by_stratum(values: Mapping[object, float]) -> dict[str, float] | None:
     """Stratum label -> the design's first-stage population size N_h or sampling fraction f_h."""
     return {str(k): float(v) for k, v in values.items()} if values else None
+
+
+class RememberedReplay:
+    """A weighting recipe's `replay`, each result remembered by its input: the batches of one wave
+    (`pipeline.memory`) replay the same replicate class totals, and each is then computed once.
+
+    replay is a pure function of the (R, C) class totals, so a remembered result is the result."""
+
+    def __init__(self, replay: Callable[[np.ndarray], np.ndarray]) -> None:
+        self._replay = replay
+        self._results: dict[tuple[tuple[int, ...], bytes], np.ndarray] = {}
+
+    def __call__(self, class_totals: np.ndarray) -> np.ndarray:
+        totals = np.ascontiguousarray(class_totals, dtype=np.float64)
+        key = (totals.shape, hashlib.blake2b(totals.tobytes(), digest_size=32).digest())
+        if key not in self._results:
+            self._results[key] = np.asarray(self._replay(totals), dtype=np.float64)
+        return self._results[key].copy()
 
 
 def wave_estimates(
@@ -172,14 +209,20 @@ def wave_estimates(
     options: VarianceOptions,
     *,
     wave: str,
+    variables: Sequence[str] | None = None,
+    replay: Callable[[np.ndarray], np.ndarray] | None = None,
 ) -> pl.DataFrame:
     """Design-based estimates of every estimable topline row of one wave (module docstring).
 
-    responses: the wave's staged rows; recipe: its fitted weighting; layout: the topline rows of
-    the wave (`pipeline.topline.unweighted_toplines` filtered to the wave).
+    responses: the wave's staged rows (the design columns and those of `variables`); recipe: its
+    fitted weighting; layout: the topline rows of the wave (`pipeline.topline.unweighted_toplines`
+    filtered to the wave); variables: the variables to estimate (default every one of the study);
+    replay: the recipe's replay to use (default `recipe.replay`; a `RememberedReplay` shared by the
+    batches of a wave).
     Returns a frame with `ESTIMATE_SCHEMA`; percentages on the 0-100 scale.
     """
-    frame, means, medians, meaning = _wave_frame(responses, study, recipe, layout)
+    names = list(study.variables) if variables is None else list(variables)
+    frame, shares, means, medians, meaning, bases = _wave_frame(responses, study, recipe, layout, names)
     if not meaning:
         return pl.DataFrame(schema=ESTIMATE_SCHEMA)
     design = study.design
@@ -197,7 +240,8 @@ def wave_estimates(
         second_stage_fraction=design.second_stage_fraction,
         first_stage=design.first_stage,
         psu_inclusion=design.psu_inclusion_probability,
-        mean=means,
+        mean=means or None,
+        means_of=shares,
         quantile=[(c, 0.5) for c in medians] or None,
         interpolate_quantiles=[c for c in medians if study.variables[meaning[c][0]].type in RATING_TYPES],
         variance=options.method,
@@ -206,11 +250,11 @@ def wave_estimates(
         seed=options.seed,
         level=options.level,
         classes=_CLASS,
-        reweight=recipe.replay,
+        reweight=recipe.replay if replay is None else replay,
         calibration_matrix=None if calibration.shape[1] == 0 else calibration,
         source=f"wave {wave}",
     ).frame
-    weighted_base = _weighted_bases(frame, list(meaning))
+    weighted_base = _weighted_bases(frame, bases)
     kinds = [meaning[v][2] for v in table["variable"]]
     percent = np.array([k in PERCENT_KINDS for k in kinds])
     est = table["estimate"].to_numpy().astype(float)
@@ -251,7 +295,14 @@ def wave_estimates(
     ).with_columns(pl.col(c).fill_nan(None) for c in ("estimate", "se", "ci_low", "ci_high", "deff", "n_eff"))
 
 
-def _weighted_bases(frame: pl.DataFrame, columns: list[str]) -> dict[str, float]:
-    """Sum of final weights over each derived column's base (the rows where it is not null)."""
-    row = frame.select([pl.col(_FINAL).filter(pl.col(c).is_not_null()).sum().alias(c) for c in columns]).row(0)
-    return dict(zip(columns, row, strict=True))
+def _weighted_bases(frame: pl.DataFrame, bases: dict[str, pl.Expr]) -> dict[str, float]:
+    """Sum of final weights over each row's base, each distinct base summed once."""
+    distinct: dict[str, pl.Expr] = {}
+    for expr in bases.values():
+        distinct.setdefault(expr.meta.serialize(format="json"), expr)
+    keys = list(distinct)
+    sums = frame.select(
+        pl.col(_FINAL).filter(e.fill_null(False)).sum().alias(f"b{k}") for k, e in enumerate(distinct.values())
+    ).row(0)
+    total = dict(zip(keys, sums, strict=True))
+    return {name: total[expr.meta.serialize(format="json")] for name, expr in bases.items()}

@@ -64,6 +64,16 @@ def assert_same_as_direct(frame: pl.DataFrame, quantities: dict[str, pl.Expr], *
     classes = design.get("classes")
     expected_cls = ref["c"].to_numpy() if classes is None or ref["c"].dtype.is_integer() else ref["c"].rank("dense").to_numpy() - 1
     np.testing.assert_array_equal(gt.cls, expected_cls)
+    # the squared-weight sums of the within-PSU term come from the same pass: sum_{i in g} w_i^2 y_ik,
+    # against the direct sum with w^2 as the weight; the totals and counts are unchanged by asking for them
+    with_squares = group_totals(frame, quantities, weight="w", squared=True, **design)
+    assert gt.squared is None
+    np.testing.assert_array_equal(with_squares.totals, gt.totals)
+    np.testing.assert_array_equal(with_squares.counts, gt.counts)
+    squared, _ = direct_totals(frame.with_columns(pl.col("w").cast(pl.Float64) ** 2), quantities, weight="w", **design)
+    square_scale = squared.select([q + "_abs" for q in names]).to_numpy()
+    np.testing.assert_array_less(np.abs(with_squares.squared - squared.select(names).to_numpy()),
+                                 1e-12 * square_scale + 1e-300)
 
 
 def invented_sample(seed: int, n: int) -> pl.DataFrame:

@@ -103,9 +103,9 @@ def test_demo_run_writes_exports_and_suppressed_cells_hold_no_number(tmp_path):
     spec.write_text(text.replace("suppress_below = 20", "suppress_below = 150"), encoding="utf-8")
     book = run_study(folder / "study.toml", quiet=True, xlsx=True)
     stem = book.parent / book.stem
-    cells = read_export(Path(f"{stem}_cells.parquet"))
+    cells = read_export(Path(f"{stem}_banner_cells.parquet"))
     tests = read_export(Path(f"{stem}_tests.parquet"))
-    assert read_export(Path(f"{stem}_cells.csv")).height == cells.height
+    assert read_export(Path(f"{stem}_banner_cells.csv")).height == cells.height
     assert read_export(Path(f"{stem}_tests.csv")).height == tests.height
     for column in ("wave", "table", "variable", "row", "row_label", "banner", "column", "column_label", "statistic",
                    "estimate", "se", "ci_low", "ci_high", "df", "deff", "base_unweighted", "base_weighted",

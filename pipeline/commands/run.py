@@ -11,7 +11,7 @@ EXAMPLE = "wavebook run tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    """SPEC, --out, --force, --single-file / --folder, --xlsx, --restage (--quiet is added by pipeline.cli)."""
+    """SPEC, --out, --force, --single-file / --folder, --xlsx, --restage, --memory-budget (--quiet is added by pipeline.cli)."""
     parser.add_argument("spec", metavar="SPEC", help="the study spec (TOML file)")
     parser.add_argument(
         "--out",
@@ -36,6 +36,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         action="store_true",
         help="stage every wave again, even those whose raw file has not changed",
     )
+    from pipeline.memory import parse_size
+
+    parser.add_argument(
+        "--memory-budget",
+        metavar="SIZE",
+        type=parse_size,
+        default="2GB",
+        help="memory for the respondent-level work of one wave, e.g. 2GB or 512MB (default 2GB): "
+        "the answer columns are estimated in batches that fit it",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -44,7 +54,7 @@ def run(args: argparse.Namespace) -> int:
 
     path = run_study(
         args.spec, out=args.out, restage=args.restage, quiet=args.quiet, force=args.force, single_file=args.single_file,
-        xlsx=args.xlsx,
+        xlsx=args.xlsx, memory_budget=args.memory_budget,
     )
     print(path)
     return 0

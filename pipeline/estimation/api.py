@@ -68,6 +68,25 @@ class _Cell:
     interpolated: bool = False  # quantiles of whole-number answers by the grouped-data rule (`quantiles`)
 
 
+@dataclass(frozen=True)
+class MeanOf:
+    """A mean of an expression over a base: theta = sum_i w_i a_i y_i / sum_i w_i a_i.
+
+    value: y_i, a polars expression evaluated per respondent (null or NaN only outside the base);
+    base: a_i, a boolean expression (the respondents the mean is taken over); name: the row's
+    `variable` in the result; base_name: means that name the same base share its quantity (the
+    base of every row of one question is summed once). indicator: y is 0/1, so y^2 = y and no
+    squared quantity is added (a proportion). Each is a quantity of the one grouped pass: a row
+    kind of a table needs no column of its own.
+    """
+
+    name: str
+    value: pl.Expr
+    base: pl.Expr
+    base_name: str
+    indicator: bool = False
+
+
 def _as_list(value: object) -> list:
     """The requests as a list, each once (a repeated identical request is estimated once)."""
     if value is None:
@@ -124,6 +143,13 @@ class _Plan:
         for c in categories:
             num = self.q(f"eq|{var}|{c}|{dom}", (pl.col(var).eq(c).fill_null(False) & d).cast(pl.Float64))
             self.cells.append(_Cell("proportion", var, str(c), dom, num, base, base, num, num, base))
+
+    def mean_of(self, m: MeanOf) -> None:
+        a = m.base.fill_null(False).cast(pl.Float64)
+        base = self.q(f"base|{m.base_name}", a)
+        num = self.q(f"y|{m.name}", m.value.cast(pl.Float64).fill_null(0.0).fill_nan(0.0) * a)
+        sq = num if m.indicator else self.q(f"y2|{m.name}", (m.value.cast(pl.Float64) ** 2).fill_null(0.0).fill_nan(0.0) * a)
+        self.cells.append(_Cell("mean", m.name, "", "", num, base, base, sq, num, base))
 
     def count(self, frame: pl.DataFrame, var: str, dom: str, d: pl.Expr, categories: list) -> None:
         """Weighted count of each category: the total of its indicator (a total, like `total`)."""
@@ -224,8 +250,13 @@ def estimate_table(
     interpolate_quantiles: str | Sequence[str] | None = None,
     first_stage: str = "equal",
     psu_inclusion: str | None = None,
+    means_of: Sequence[MeanOf] = (),
 ) -> EstimateTable:
-    """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments)."""
+    """Design-based estimates as an `EstimateTable` (see `estimate` for the arguments).
+
+    means_of: `MeanOf` requests (means or proportions of expressions over a base), estimated on
+    the whole sample after the other requests (`by` does not apply: a domain goes in the base).
+    """
     if weight is None:  # equal weights
         frame, weight = frame.with_columns(pl.lit(1.0).alias(EQUAL_WEIGHT)), EQUAL_WEIGHT
     design = SampleDesign(
@@ -238,7 +269,8 @@ def estimate_table(
                    quantile=quantile,
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
                    reweight=reweight, calibration_matrix=calibration_matrix, interval=interval,
-                   replicate_method=replicate_method, replicate_df=replicate_df, fay=fay, replicates=replicates, seed=seed)
+                   replicate_method=replicate_method, replicate_df=replicate_df, fay=fay, replicates=replicates, seed=seed,
+                   means_of=means_of)
     domains = _domains(frame, by)
     plan = _Plan()
     for dom, d in domains.items():
@@ -252,6 +284,8 @@ def estimate_table(
             plan.count(frame, var, dom, d, frame[var].drop_nulls().unique().sort().to_list())
         for num_col, den_col in _parse_ratios(ratio):
             plan.ratio(frame, num_col, den_col, dom, d)
+    for request in means_of:
+        plan.mean_of(request)
     cdfs = {}
     quantiles = _parse_quantiles(quantile)
     cdf_frame, cdf_weight = frame, weight
@@ -263,7 +297,11 @@ def estimate_table(
         cdfs[var] = cdfs.get(var) or weighted_cdfs(cdf_frame, value=var, weight=cdf_weight, domains=domains)
         for dom, d in domains.items():
             plan.quantile(frame, var, prob, cdfs[var][dom], dom, d, interpolated=var in smooth)
-    gt = group_totals(frame, plan.quantities, weight=weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
+    # the within-PSU term of a two-stage design needs sums of w^2 y y': from the same pass
+    within_term = ((design.has_fpc or design.first_stage != "equal") and psu is not None
+                   and second_stage_fraction < 1 and variance in ("taylor", *FPC_REPLICATE_METHODS))
+    gt = group_totals(frame, plan.quantities, weight=weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids,
+                      squared=within_term)
     final = _final_totals(gt, reweight)
     ratios, t = _ratios(plan, gt), final.totals.sum(axis=0)
     fpc_values = design.fpc_values(frame)
@@ -275,8 +313,7 @@ def estimate_table(
             calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
         within = None
         if layout.has_fpc and psu is not None and second_stage_fraction < 1:  # two-stage (`design` docstring)
-            within = _within_psu(frame, plan, gt, final, ratios, calibration, weight=weight, strata=strata, psu=psu,
-                                 classes=classes, psu_ids=psu_ids, reweight=reweight)
+            within = _within_psu(plan, gt, final, ratios, calibration, reweight=reweight)
         theta, v = taylor_variance(final, ratios, layout, calibration=calibration, within=within)
         df: float = layout.df
         has_fpc = layout.has_fpc
@@ -298,8 +335,7 @@ def estimate_table(
             calibration = None
             if calibration_matrix is not None:
                 calibration = Calibration(np.asarray(calibration_matrix, dtype=np.float64), gt.column(WEIGHT_QUANTITY))
-            within = _within_psu(frame, plan, gt, final, ratios, calibration, weight=weight, strata=strata, psu=psu,
-                                 classes=classes, psu_ids=psu_ids, reweight=reweight)
+            within = _within_psu(plan, gt, final, ratios, calibration, reweight=reweight)
             v = v + layout.second_stage(within)
         df_layout = layout
     return _table(plan, gt, ratios, t, theta, v, df, cdfs, level=level, method=variance, has_fpc=has_fpc,
@@ -333,38 +369,33 @@ def _final_totals(gt: GroupTotals, reweight: Callable[[np.ndarray], np.ndarray] 
 
 
 def _within_psu(
-    frame: pl.DataFrame, plan: _Plan, gt: GroupTotals, final: GroupTotals, ratios: Ratios,
-    calibration: Calibration | None, *, weight: str, strata: str | None, psu: str | None, classes: str | None,
-    psu_ids: str, reweight: Callable[[np.ndarray], np.ndarray] | None,
+    plan: _Plan, gt: GroupTotals, final: GroupTotals, ratios: Ratios, calibration: Calibration | None, *,
+    reweight: Callable[[np.ndarray], np.ndarray] | None,
 ) -> np.ndarray:
     """(P, m) second-stage variances v2(z_hj) of the PSU totals of the linearized values (calibration
     residuals when `calibration` is given), for `PsuLayout.second_stage`."""
-    squared = _squared_totals(frame, plan, gt, weight=weight, strata=strata, psu=psu, classes=classes,
-                              psu_ids=psu_ids, reweight=reweight)
-    return within_psu_variance(final, ratios, squared, weight_column=gt.column(WEIGHT_QUANTITY),
-                               calibration=calibration)
+    return within_psu_variance(final, ratios, _squared_totals(plan, gt, reweight=reweight),
+                               weight_column=gt.column(WEIGHT_QUANTITY), calibration=calibration)
 
 
 def _squared_totals(
-    frame: pl.DataFrame, plan: _Plan, gt: GroupTotals, *, weight: str, strata: str | None, psu: str | None,
-    classes: str | None, psu_ids: str, reweight: Callable[[np.ndarray], np.ndarray] | None,
+    plan: _Plan, gt: GroupTotals, *, reweight: Callable[[np.ndarray], np.ndarray] | None
 ) -> SquaredTotals:
     """Sums of w_i^2 y_ik by group (w = base * f(c), the final weights), for the within-PSU term.
 
-    A second grouped pass with the squared base weight, in the same groups as `gt`; each group is
-    then scaled by f(c)^2."""
-    squared_weight = "__squared_weight"
-    sq = group_totals(frame.with_columns((pl.col(weight).cast(pl.Float64) ** 2).alias(squared_weight)), plan.quantities,
-                      weight=squared_weight, strata=strata, psu=psu, classes=classes, psu_ids=psu_ids)
-    if not (np.array_equal(sq.psu, gt.psu) and np.array_equal(sq.cls, gt.cls)):
-        raise AssertionError("the squared-weight pass formed different groups")
+    The interface with `taylor.within_psu_variance`: the pass (`group_totals(squared=True)`)
+    sums the squared base weight times every quantity in the same groups as the totals; each group
+    is then scaled by f(c)^2, and each estimator names the columns of its moments y_num^2,
+    y_num y_den and y_den^2 (the quantities `s_nn`, `s_nd`, `s_dd` of its cell)."""
+    if gt.squared is None:
+        raise AssertionError("the within-PSU term needs the squared-weight sums of the grouped pass")
     f = _group_factors(gt, reweight)
 
     def index(names: list[str | None]) -> np.ndarray:
         return np.array([gt.column(n) if n is not None else -1 for n in names], dtype=np.int64)
 
     cells = plan.cells
-    return SquaredTotals(sq.totals * (f**2)[:, None], index([c.s_nn for c in cells]), index([c.s_nd for c in cells]),
+    return SquaredTotals(gt.squared * (f**2)[:, None], index([c.s_nn for c in cells]), index([c.s_nd for c in cells]),
                          index([c.s_dd for c in cells]))
 
 
@@ -508,7 +539,7 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         if col not in frame.columns:
             problems.append(Problem(rule="missing-column", message="column not in the data", file=source, column=col))
     options = []
-    if not any(_as_list(req[k]) for k in ("mean", "total", "count", "proportion", "ratio", "quantile")):
+    if not any(_as_list(req[k]) for k in ("mean", "total", "count", "proportion", "ratio", "quantile")) and not req["means_of"]:
         options.append(("ask for at least one mean, total, count, proportion, ratio or quantile", None))
     if req["variance"] not in VARIANCE_METHODS:
         options.append((f"variance must be one of {', '.join(VARIANCE_METHODS)}", str(req["variance"])))

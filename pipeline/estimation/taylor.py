@@ -56,11 +56,25 @@ def linearized_group_totals(
 ) -> np.ndarray:
     """(G, m) weighted totals of the linearized variables (or of their calibration residuals) by group."""
     t = gt.totals.sum(axis=0)
-    z = gt.totals @ np.nan_to_num(estimand.linearize(t))
+    z = linear_combinations(gt.totals, np.nan_to_num(estimand.linearize(t)))
     if calibration is None:
         return z
     w_g = gt.totals[:, calibration.weight_column]
     return z - w_g[:, None] * _fitted(gt, z, calibration)[gt.cls]
+
+
+def linear_combinations(y: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """y @ d for (G, K) totals and a (K, m) gradient: a sparse product when d is mostly zeros (a
+    ratio's gradient has two non-zero entries per column), so the cost is G x nnz(d), not G x K x m.
+
+    The sparse product also sums only the non-zero terms, so a ratio whose numerator and
+    denominator totals are equal in every group (a share of 100%) gets linearized totals of exactly
+    0, where a dense product may leave rounding noise of order 1e-18."""
+    if d.size and np.count_nonzero(d) <= 0.5 * d.size:
+        from scipy import sparse
+
+        return np.asarray(sparse.csc_matrix(d).T.dot(y.T).T)
+    return y @ d
 
 
 def _fitted(gt: GroupTotals, z: np.ndarray, calibration: Calibration) -> np.ndarray:
@@ -116,7 +130,7 @@ def within_psu_variance(
     den = np.where(estimand.is_total, -1, estimand.den)
     q = a**2 * s[:, squared.s_nn] + 2 * a * b * s[:, squared.s_nd] + b**2 * s[:, squared.s_dd]
     if calibration is not None:
-        beta = _fitted(gt, gt.totals @ d, calibration)[gt.cls]
+        beta = _fitted(gt, linear_combinations(gt.totals, d), calibration)[gt.cls]
         ones = s[:, [weight_column]]
         q = q - 2 * beta * (a * s[:, estimand.num] + b * s[:, den]) + beta**2 * ones
     u = gt.psu_totals(linearized_group_totals(gt, estimand, calibration=calibration))

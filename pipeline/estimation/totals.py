@@ -84,6 +84,9 @@ class GroupTotals:
     psu_stratum: np.ndarray  # (P,) stratum index of each PSU
     stratum_labels: tuple[str, ...]
     psu_labels: tuple[str, ...]
+    # (G, K) float64: sum_{i in g} w_i^2 * y_ik, from the same pass when `group_totals(squared=True)`
+    # (the moments of the within-PSU term, `taylor.within_psu_variance`); None otherwise
+    squared: np.ndarray | None = None
 
     @property
     def n_strata(self) -> int:
@@ -143,6 +146,7 @@ def group_totals(
     psu: str | None,
     classes: str | None = None,
     psu_ids: str = "within-stratum",
+    squared: bool = False,
 ) -> GroupTotals:
     """The one grouped pass: Y[g, k] = sum_{i in g} w_i y_ik and the unweighted counts (module docstring).
 
@@ -153,6 +157,8 @@ def group_totals(
     up with the weighting recipe's classes) or of labels (indexed in sorted order).
     quantities: name -> expression evaluated per respondent (row-wise expressions of columns with
     few distinct value combinations take the combination path; others are summed row by row).
+    squared: also sum w_i^2 y_ik in the same pass (`GroupTotals.squared`): one more weighted
+    bincount per set of columns, no second pass over the rows.
 
     Raises DataError listing every problem: missing design columns, missing stratum/PSU/class/weight
     values, negative or non-finite weights, PSU ids repeated across strata under "unique", and
@@ -172,14 +178,19 @@ def group_totals(
     w = frame[weight].cast(pl.Float64).to_numpy().astype(np.float64)
     cache: dict[str, _Factor] = {}
     key = _GroupKey.build(frame, strata=strata, psu=psu, classes=classes, cache=cache)
-    staged = _Staged.empty(len(names), key.size)
-    kept = None if np.all(w != 0) else w != 0
-    for cols, ks in _by_columns(quantities).items():
+    staged = _Staged.empty(len(names), key.size, squared=squared)
+    weights = _Weights(w, w * w if squared else None, None if np.all(w != 0) else w != 0)
+    groups = _by_columns(quantities)
+    last_use = {c: i for i, cols in enumerate(groups) for c in cols or ()}
+    for i, (cols, ks) in enumerate(groups.items()):
         exprs = [(k, quantities[names[k]]) for k in ks]
         if cols is not None and _few_combinations(frame, cols):
-            _combination_totals(frame, cols, exprs, key=key, w=w, kept=kept, cache=cache, out=staged)
+            _combination_totals(frame, cols, exprs, key=key, weights=weights, cache=cache, out=staged)
+            for c in cols:  # a column's codes are dropped after the last set of columns that reads it
+                if last_use[c] == i:
+                    cache.pop(c, None)
         else:
-            _row_totals(frame, exprs, key=key, w=w, out=staged)
+            _row_totals(frame, exprs, key=key, weights=weights, out=staged)
     bad = staged.missing
     problems += [
         Problem(
@@ -195,7 +206,7 @@ def group_totals(
     if psu_ids == "unique" and psu is not None:
         _check_unique_psus(key, psu=psu)
     cls = key.class_index(frame, classes=classes)
-    totals, counts = staged.transposed()
+    totals, counts, squares = staged.transposed()
     return GroupTotals(
         stratum=key.stratum,
         psu=key.psu,
@@ -206,7 +217,17 @@ def group_totals(
         psu_stratum=key.psu_stratum,
         stratum_labels=key.stratum_labels,
         psu_labels=key.psu_labels,
+        squared=squares,
     )
+
+
+@dataclass(frozen=True)
+class _Weights:
+    """The pass's per-respondent weights: w, w^2 when the squared moments are wanted, the non-zero mask."""
+
+    w: np.ndarray  # (n,)
+    w2: np.ndarray | None  # (n,) w * w, or None
+    kept: np.ndarray | None  # (n,) w != 0, or None when every weight is non-zero
 
 
 @dataclass(frozen=True)
@@ -220,25 +241,34 @@ class _Staged:
     totals: np.ndarray  # (K, G) float64
     counts: np.ndarray  # (K, G) int64
     missing: np.ndarray  # (K,) rows where the quantity is null or NaN
+    squared: np.ndarray | None  # (K, G) float64 sums of w^2 y, or None
 
     @staticmethod
-    def empty(n_quantities: int, n_groups: int) -> _Staged:
+    def empty(n_quantities: int, n_groups: int, *, squared: bool) -> _Staged:
         """Room for K quantities over G groups (every row is written once before `transposed`)."""
         return _Staged(
             np.empty((n_quantities, n_groups)),
             np.empty((n_quantities, n_groups), dtype=np.int64),
             np.zeros(n_quantities, dtype=np.int64),
+            np.empty((n_quantities, n_groups)) if squared else None,
         )
 
-    def put(self, batch: list[int], weighted: np.ndarray, nonzero: np.ndarray) -> None:
-        """Rows `batch` from (b, G) totals and counts."""
+    def put(
+        self, batch: list[int], weighted: np.ndarray, nonzero: np.ndarray, squared: np.ndarray | None = None
+    ) -> None:
+        """Rows `batch` from (b, G) totals, counts and (when staged) squared-weight totals."""
         self.totals[batch], self.counts[batch] = weighted, nonzero
+        if self.squared is not None:
+            self.squared[batch] = squared
 
-    def transposed(self) -> tuple[np.ndarray, np.ndarray]:
-        """(G, K) C-ordered totals and counts: two transposing copies, run at once (numpy releases the GIL)."""
+    def transposed(self) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        """(G, K) C-ordered totals, counts and squared totals: transposing copies, the counts in a
+        second thread (numpy releases the GIL)."""
         with ThreadPoolExecutor(max_workers=1) as pool:
             counts = pool.submit(np.ascontiguousarray, self.counts.T)
-            return np.ascontiguousarray(self.totals.T), counts.result()
+            totals = np.ascontiguousarray(self.totals.T)
+            squared = None if self.squared is None else np.ascontiguousarray(self.squared.T)
+            return totals, counts.result(), squared
 
 
 def _design_problems(
@@ -529,14 +559,13 @@ def _combination_totals(
     exprs: list[tuple[int, pl.Expr]],
     *,
     key: _GroupKey,
-    w: np.ndarray,
-    kept: np.ndarray | None,
+    weights: _Weights,
     cache: dict[str, _Factor],
     out: _Staged,
 ) -> None:
     """Totals of row-wise quantities of `columns`: W[g, u] from one bincount, the quantities on the U combinations."""
     combos = _Combos.build(frame, columns, cache=cache)
-    pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, w, kept)
+    pairs = _PairMatrix.build(key.g, key.size, combos.u, combos.size, weights)
     for batch, values in combos.evaluate(exprs):
         missing = np.isnan(values)
         out.missing[batch] = np.rint(combos.rows @ missing).astype(np.int64)
@@ -544,32 +573,38 @@ def _combination_totals(
 
 
 def _row_totals(
-    frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, w: np.ndarray, out: _Staged
+    frame: pl.DataFrame, exprs: list[tuple[int, pl.Expr]], *, key: _GroupKey, weights: _Weights, out: _Staged
 ) -> None:
     """Totals of quantities evaluated on the full frame (as any polars select would), then summed per group.
 
-    A polars group_by on the group index, at most BATCH_CELLS values at a time.
+    A polars group_by on the group index, at most BATCH_CELLS values at a time (the squared-weight
+    sums, when wanted, in the same aggregation).
     """
     step = max(1, BATCH_CELLS // max(frame.height, 1))
     group = pl.Series("__g", key.g)
-    weight = pl.Series("__w", w)
+    weight = [pl.Series("__w", weights.w)] + ([] if weights.w2 is None else [pl.Series("__w2", weights.w2)])
     for s in range(0, len(exprs), step):
         batch = exprs[s : s + step]
         names = [f"__q{k}" for k, _ in batch]
         values = frame.with_columns(e.cast(pl.Float64).alias(q) for (_, e), q in zip(batch, names, strict=True))
-        values = values.select(names).with_columns(group, weight)
+        values = values.select(names).with_columns(group, *weight)
         missing = values.select((pl.col(q).is_null() | pl.col(q).is_nan()).sum() for q in names).row(0)
+        squares = [] if weights.w2 is None else [(pl.col("__w2") * pl.col(q)).sum().alias(q + "_2") for q in names]
         grouped = values.group_by("__g").agg(
             *[(pl.col("__w") * pl.col(q)).sum().alias(q) for q in names],
             *[((pl.col("__w") != 0) & (pl.col(q) != 0)).sum().cast(pl.Int64).alias(q + "_n") for q in names],
+            *squares,
         )
         index = grouped["__g"].to_numpy()
-        weighted = np.zeros((len(batch), key.size))
-        nonzero = np.zeros((len(batch), key.size), dtype=np.int64)
-        weighted[:, index] = grouped.select(names).to_numpy().T
-        nonzero[:, index] = grouped.select([q + "_n" for q in names]).to_numpy().T
+
+        def spread(columns: list[str], dtype: type) -> np.ndarray:
+            block = np.zeros((len(batch), key.size), dtype=dtype)
+            block[:, index] = grouped.select(columns).to_numpy().T
+            return block
+
         rows = [k for k, _ in batch]
-        out.put(rows, weighted, nonzero)
+        squared = None if weights.w2 is None else spread([q + "_2" for q in names], np.float64)
+        out.put(rows, spread(names, np.float64), spread([q + "_n" for q in names], np.int64), squared)
         out.missing[rows] = missing
 
 
@@ -609,45 +644,50 @@ class _PairMatrix:
     """W[g, u] = sum of weights and N[g, u] = number of non-zero weights of the respondents in g with combination u.
 
     Held dense as (U, G) when G x U <= DENSE_CELLS, else as sparse (G, U) matrices; N as integers.
+    `squares` holds the sums of squared weights in the same layout when the pass wants them.
     """
 
     weights: np.ndarray | sparse.csr_matrix
     counts: np.ndarray | sparse.csr_matrix
+    squares: np.ndarray | sparse.csr_matrix | None
 
     @staticmethod
-    def build(
-        g: np.ndarray, n_groups: int, u: np.ndarray, n_combos: int, w: np.ndarray, kept: np.ndarray | None
-    ) -> _PairMatrix:
-        """kept: mask of the respondents with a non-zero weight (None: all of them)."""
-
-        def sums(pair: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
-            # two independent passes over the rows; numpy releases the GIL in bincount, so on a
-            # machine with a free core the count runs beside the weighted sum
+    def build(g: np.ndarray, n_groups: int, u: np.ndarray, n_combos: int, weights: _Weights) -> _PairMatrix:
+        def sums(pair: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+            # independent passes over the rows; numpy releases the GIL in bincount, so on a machine
+            # with a free core the count (and the squared weights) run beside the weighted sum
+            kept = weights.kept
             with ThreadPoolExecutor(max_workers=1) as pool:
                 counted = pool.submit(np.bincount, pair if kept is None else pair[kept], None, size)
-                return np.bincount(pair, weights=w, minlength=size), counted.result()
+                squared = None if weights.w2 is None else pool.submit(np.bincount, pair, weights.w2, size)
+                total = np.bincount(pair, weights=weights.w, minlength=size)
+                return total, counted.result(), None if squared is None else squared.result()
 
         if n_groups * n_combos <= DENSE_CELLS:
             shape = (n_combos, n_groups)
-            weights, counts = sums(u * n_groups + g, n_groups * n_combos)
-            return _PairMatrix(weights.reshape(shape), counts.reshape(shape))
+            total, counted, squared = sums(u * n_groups + g, n_groups * n_combos)
+            return _PairMatrix(
+                total.reshape(shape), counted.reshape(shape), None if squared is None else squared.reshape(shape)
+            )
         from scipy import sparse
 
         pair, m, distinct, _ = _dense(g * n_combos + u, n_groups * n_combos)
         index = np.divmod(distinct, n_combos)
         shape = (n_groups, n_combos)
-        weights, counts = sums(pair, m)
+        total, counted, squared = sums(pair, m)
         return _PairMatrix(
-            sparse.csr_matrix((weights, index), shape=shape), sparse.csr_matrix((counts, index), shape=shape)
+            sparse.csr_matrix((total, index), shape=shape),
+            sparse.csr_matrix((counted, index), shape=shape),
+            None if squared is None else sparse.csr_matrix((squared, index), shape=shape),
         )
 
     def put(self, phi: np.ndarray, batch: list[int], out: _Staged) -> None:
         """Rows `batch` of the totals and counts from (U, b) quantity values per combination.
 
-        Y[k, g] = sum_u phi[u, k] W[u, g] and counts sum_u 1[phi[u, k] != 0] N[u, g]. A quantity
-        non-zero on one combination u_k only (a category, in a banner column or not) has rows
-        phi[u_k, k] W[u_k] and N[u_k], copied straight into place from a dense W; the others are
-        matrix products.
+        Y[k, g] = sum_u phi[u, k] W[u, g] and counts sum_u 1[phi[u, k] != 0] N[u, g] (the squared
+        totals as Y with the squared-weight sums). A quantity non-zero on one combination u_k only
+        (a category, in a banner column or not) has rows phi[u_k, k] W[u_k] and N[u_k], copied
+        straight into place from a dense W; the others are matrix products.
         """
         from scipy import sparse
 
@@ -661,13 +701,16 @@ class _PairMatrix:
                 phi, indicator, batch = phi[:, ~single], indicator[:, ~single], np.asarray(batch)[~single].tolist()
         indicator = indicator.astype(np.int64)
         if not isinstance(self.weights, np.ndarray):
-            out.put(batch, np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T)
+            squared = None if self.squares is None else np.asarray(self.squares @ phi).T
+            out.put(batch, np.asarray(self.weights @ phi).T, np.asarray(self.counts @ indicator).T, squared)
         elif np.count_nonzero(indicator) <= SPARSE_SHARE * indicator.size:  # integer counts stay integers
-            weighted = np.asarray(sparse.csr_matrix(phi.T) @ self.weights)
-            out.put(batch, weighted, sparse.csr_matrix(indicator.T) @ self.counts)
+            phi_t = sparse.csr_matrix(phi.T)
+            squared = None if self.squares is None else np.asarray(phi_t @ self.squares)
+            out.put(batch, np.asarray(phi_t @ self.weights), sparse.csr_matrix(indicator.T) @ self.counts, squared)
         else:  # BLAS: counts below 2**53 multiply exactly in float64
-            weighted = phi.T @ self.weights
-            out.put(batch, weighted, indicator.T.astype(np.float64) @ self.counts.astype(np.float64))
+            squared = None if self.squares is None else phi.T @ self.squares
+            counts = indicator.T.astype(np.float64) @ self.counts.astype(np.float64)
+            out.put(batch, phi.T @ self.weights, counts, squared)
 
     def _select(self, phi: np.ndarray, chosen: np.ndarray, rows: np.ndarray, out: _Staged) -> None:
         """Rows rows[i] = phi[chosen[i], i] * W[chosen[i]] and N[chosen[i]], by runs of consecutive rows."""
@@ -676,9 +719,13 @@ class _PairMatrix:
         for a, e in zip(starts.tolist(), [*starts[1:].tolist(), len(rows)], strict=True):
             np.take(self.weights, chosen[a:e], axis=0, out=out.totals[rows[a] : rows[a] + e - a])
             np.take(self.counts, chosen[a:e], axis=0, out=out.counts[rows[a] : rows[a] + e - a])
+            if self.squares is not None and out.squared is not None:
+                np.take(self.squares, chosen[a:e], axis=0, out=out.squared[rows[a] : rows[a] + e - a])
         scaled = np.flatnonzero(scale != 1.0)
         if len(scaled):
             out.totals[rows[scaled]] *= scale[scaled, None]
+            if out.squared is not None:
+                out.squared[rows[scaled]] *= scale[scaled, None]
 
 
 def _check_unique_psus(key: _GroupKey, *, psu: str) -> None:

@@ -172,14 +172,21 @@ def staged_waves(con: duckdb.DuckDBPyConnection) -> pl.DataFrame:
 
 
 def load_responses(
-    con: duckdb.DuckDBPyConnection, study: Study, wave_ids: list[str] | tuple[str, ...] | None = None
+    con: duckdb.DuckDBPyConnection,
+    study: Study,
+    wave_ids: list[str] | tuple[str, ...] | None = None,
+    *,
+    columns: list[str] | None = None,
 ) -> pl.DataFrame:
     """Staged rows as a polars DataFrame: wave, respondent_id, then the design and codebook columns.
 
-    wave_ids: the waves to read (default: every wave of the spec that is staged). Rows come in
-    spec wave order, then respondent id. Routed variables come with their asked flags and the
-    answers of respondents not asked masked (pipeline.staging.routing.route_frame). DataError naming the waves when a requested wave is not
-    staged, or naming the columns when the spec has columns no staged wave has yet.
+    wave_ids: the waves to read (default: every wave of the spec that is staged); columns: the
+    study columns to read (default all, in table order; the columns that routing conditions read
+    are read with them and left out again). Rows come in spec wave order, then respondent id, so
+    reads of different columns line up row for row. Routed variables come with their asked flags
+    and the answers of respondents not asked masked (pipeline.staging.routing.route_frame).
+    DataError naming the waves when a requested wave is not staged, or naming the columns when
+    the spec has columns no staged wave has yet.
     """
     staged = set(staged_waves(con)["wave"].to_list())
     order = [w.id for w in study.waves]
@@ -193,16 +200,22 @@ def load_responses(
         if w not in staged
     ]
     existing = table_columns(con, "responses")
+    wanted_columns = list(column_types(study)) if columns is None else list(columns)
     problems += [
         Problem(
             "column-not-staged",
             f"the spec declares '{c}' but no staged wave has it; restage the waves (wavebook stage {study.path})",
             column=c,
         )
-        for c in column_types(study)
+        for c in wanted_columns
         if c not in existing
     ]
     if problems:
         raise DataError(f"cannot read the staged responses from {study.database_path}", problems)
-    frame = con.sql(sql("load_responses.sql", columns=list(column_types(study))), params={"waves": wanted}).pl()
-    return route_frame(frame, study)
+    conditions = [c for v in study.variables.values() if v.asked_if is not None for n in v.asked_if.names
+                  if n in study.variables for c in study.variables[n].columns]
+    read = list(dict.fromkeys(wanted_columns + [c for c in conditions if c in existing]))
+    frame = con.sql(sql("load_responses.sql", columns=read), params={"waves": wanted}).pl()
+    routed = route_frame(frame, study)
+    unwanted = [c for c in read if c not in wanted_columns]
+    return routed.drop(unwanted) if unwanted else routed

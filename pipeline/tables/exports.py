@@ -27,9 +27,9 @@ from pipeline.tables import BannerTables
 
 
 def export_paths(book: Path, *, xlsx: bool = False) -> list[Path]:
-    """The files beside `book`: `<stem>_cells.csv/.parquet`, `<stem>_tests.csv/.parquet` (and `<stem>_tables.xlsx`)."""
+    """The files beside `book`: `<stem>_banner_cells.csv/.parquet`, `<stem>_tests.csv/.parquet` (and `<stem>_tables.xlsx`)."""
     book = Path(book)
-    paths = [book.with_name(f"{book.stem}_{name}.{suffix}") for name in ("cells", "tests") for suffix in ("csv", "parquet")]
+    paths = [book.with_name(f"{book.stem}_{name}.{suffix}") for name in ("banner_cells", "tests") for suffix in ("csv", "parquet")]
     return paths + ([book.with_name(f"{book.stem}_tables.xlsx")] if xlsx else [])
 
 

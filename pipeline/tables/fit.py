@@ -199,8 +199,10 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
                 num = plan.q(f"le|{column}|{cell.domain}", (below & d).cast(pl.Float64))
             plan.cells[k] = api._Cell("quantile", cell.variable, "0.5", cell.domain, num, cell.base, cell.base,
                                       num, num, cell.base, 0.5, interpolated)
+    # the squared-weight sums of the within-PSU term come from the same pass (used only in a two-stage design)
     gt = group_totals(frame, plan.quantities, weight=weight, strata=design.strata, psu=design.psu,
-                      classes=inputs.classes, psu_ids=design.psu_ids)
+                      classes=inputs.classes, psu_ids=design.psu_ids,
+                      squared=design.psu is not None and design.second_stage_fraction < 1)
     final = api._final_totals(gt, inputs.reweight)
     ratios = api._ratios(plan, gt)  # type: ignore[arg-type]
     t = final.totals.sum(axis=0)
@@ -233,9 +235,7 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
         df = float(replicate_df(rf))
     within = within_own = None
     if two_stage and (method == "taylor" or method in api.FPC_REPLICATE_METHODS):
-        squared = api._squared_totals(frame, plan, gt, weight=weight, strata=design.strata,  # type: ignore[arg-type]
-                                      psu=design.psu, classes=inputs.classes, psu_ids=design.psu_ids,
-                                      reweight=inputs.reweight).totals
+        squared = api._squared_totals(plan, gt, reweight=inputs.reweight).totals  # type: ignore[arg-type]
         u = z if z is not None else linearized_psu_totals(final, ratios, calibration=calibration)
         within = WithinTerms.build(final, squared, ratios, calibration, u, weight_column=gt.column(api.WEIGHT_QUANTITY))
         col = gt.column

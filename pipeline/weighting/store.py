@@ -39,13 +39,36 @@ def build_report(recipe: FittedRecipe, *, wave: str, n_input: int) -> WeightingR
     )
 
 
-def fit_wave(study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection) -> tuple[FittedRecipe, WeightingReport]:
-    """Fit the study's weighting on one staged wave (nothing written); the recipe and its report."""
+def weighting_columns(study: Study) -> list[str]:
+    """The `responses` columns the weighting reads: the design's, then those of every variable a
+    step names (margins, post-strata, nonresponse status and classes, calibration numerics)."""
+    names: list[str] = []
+    for step in parse_steps(study.weighting, study.step_context()):
+        for field in ("status", "classes", "cells", "margins", "numeric"):
+            value = getattr(step, field, ())
+            if isinstance(value, str):
+                names.append(value)
+            elif isinstance(value, dict):
+                names += list(value)
+            else:
+                names += [n for v in value for n in ((v,) if isinstance(v, str) else v)]
+    columns = [c for c in study.design.columns if c != study.respondent_id]
+    columns += [c for n in names if n in study.variables for c in study.variables[n].columns]
+    return list(dict.fromkeys(columns))
+
+
+def fit_wave(
+    study: Study, wave_id: str, *, con: duckdb.DuckDBPyConnection, data: pl.DataFrame | None = None
+) -> tuple[FittedRecipe, WeightingReport]:
+    """Fit the study's weighting on one staged wave (nothing written); the recipe and its report.
+
+    data: the wave's staged rows with at least `weighting_columns(study)` (read here when None)."""
     from pipeline.staging.database import load_responses
 
     context = study.step_context()
     steps = steps_for_wave(parse_steps(study.weighting, context), wave_id, source=str(study.path))
-    data = load_responses(con, study, [wave_id])
+    if data is None:
+        data = load_responses(con, study, [wave_id], columns=weighting_columns(study))
     base, _ = design_base_weights(data, study, id_column=ID)
     recipe = fit_recipe(data, steps, base_weights=base, id_column=ID, code_order=context.code_order(set(study.variables)))
     return recipe, build_report(recipe, wave=wave_id, n_input=data.height)
@@ -93,9 +116,21 @@ def _frames(recipe: FittedRecipe, report: WeightingReport) -> dict[str, pl.DataF
 
 
 def create_weighting_tables(con: duckdb.DuckDBPyConnection) -> None:
-    """Create `weights` and the `weighting_*` tables when absent."""
+    """Create `weights` and the `weighting_*` tables when absent.
+
+    A `weights` table made by an earlier version with a primary key is rebuilt without it, once,
+    keeping its rows (`sql/weighting_schema_weights.sql` says why there is no index)."""
     for name in ("weights", "steps", "margins", "largest", "response", "notes"):
         con.execute(sql(f"weighting_schema_{name}.sql"))
+    if con.execute(sql("weighting_weights_indexed.sql")).fetchone()[0]:
+        con.begin()
+        try:
+            for step in ("copy", "drop", "rename"):
+                con.execute(sql(f"weighting_rebuild_{step}.sql"))
+            con.commit()
+        except BaseException:
+            con.rollback()
+            raise
 
 
 def store(con: duckdb.DuckDBPyConnection, recipe: FittedRecipe, report: WeightingReport) -> None:

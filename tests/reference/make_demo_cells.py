@@ -1,0 +1,48 @@
+"""Write tests/reference/demo_cells.csv: the demo study's tidy cells export, with a provenance header.
+
+Usage: python tests/reference/make_demo_cells.py
+
+Copies the demo study into a temp folder, runs it (`pipeline.runner.run_study`) and writes its
+`<stem>_cells.csv` behind a header naming this script, the wavebook version, the git commit and
+the date. `tests/test_cells_export.py` checks every later run of the demo against it, so a change
+of the estimation engine that moves any demo figure fails. Regenerate it only when a figure is
+meant to change, and say why in the commit. (The stored file was made from main's engine at
+the commit its header names, before the one-pass engine of issue 10, by running that engine and passing the cells
+it gave the book through `pipeline.cells_export.tidy_cells`; its header says so.)
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+TARGET = ROOT / "tests" / "reference" / "demo_cells.csv"
+
+
+def main() -> int:
+    from pipeline import __version__
+    from pipeline.commands.demo import DEMO_SPEC, copy_demo
+    from pipeline.runner import run_study
+
+    commit = subprocess.run(["git", "rev-parse", "HEAD"], cwd=ROOT, capture_output=True, text=True).stdout.strip()
+    with tempfile.TemporaryDirectory(prefix="wavebook-reference-") as tmp:
+        folder = copy_demo(Path(tmp) / "demo")
+        book = run_study(folder / DEMO_SPEC, quiet=True)
+        body = (book.parent / f"{Path(DEMO_SPEC).stem}_cells.csv").read_text(encoding="utf-8")
+    header = [
+        "# The demo study's tidy cells export (invented data: sample_data/generate_demo.py).",
+        f"# Written by tests/reference/make_demo_cells.py, wavebook {__version__}, commit {commit or 'unknown'},",
+        f"# on {dt.datetime.now(dt.UTC):%Y-%m-%d %H:%M} UTC.",
+    ]
+    TARGET.parent.mkdir(parents=True, exist_ok=True)
+    TARGET.write_text("\n".join(header) + "\n" + body, encoding="utf-8")
+    print(TARGET)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
