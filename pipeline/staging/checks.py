@@ -297,11 +297,9 @@ class _Context:
             for more in answered[1:]:
                 any_answer = any_answer | more
             routed_past = raw.filter(~to_duckdb(condition.tree, typed) & any_answer)
-            n = int(routed_past.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+            n, examples = self.count_and_examples(routed_past)
             if not n:
                 continue
-            ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
-            examples = [str(r[0]) for r in routed_past.select(ids).order("id").limit(5).fetchall()]
             problems.append(Problem(
                 "answered-not-asked",
                 f"{n} respondent{'s' if n != 1 else ''} answered '{variable.name}' although its asked_if "
@@ -310,6 +308,16 @@ class _Context:
                 severity="warning", file=self.file, column=variable.name, count=n, examples=tuple(examples),
             ))
         return problems + self.overlap_problems(present)
+
+    def count_and_examples(self, rows: object) -> tuple[int, list[str]]:
+        """How many raw rows a DuckDB relation holds, and the first five respondent ids among them."""
+        import duckdb
+
+        n = int(rows.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+        if not n:
+            return 0, []
+        ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
+        return n, [str(r[0]) for r in rows.select(ids).order("id").limit(5).fetchall()]
 
     def overlap_problems(self, present: set[str]) -> list[Problem]:
         """derived-overlap: respondents matching two `when` conditions of one derived variable."""
@@ -327,11 +335,9 @@ class _Context:
             for more in matches[1:]:
                 total = total + more
             twice = raw.filter(total >= duckdb.ConstantExpression(2))
-            n = int(twice.aggregate([duckdb.FunctionExpression("count", duckdb.StarExpression())]).fetchall()[0][0])
+            n, examples = self.count_and_examples(twice)
             if not n:
                 continue
-            ids = duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(self.study.respondent_id)).alias("id")
-            examples = [str(r[0]) for r in twice.select(ids).order("id").limit(5).fetchall()]
             problems.append(Problem(
                 "derived-overlap",
                 f"{n} respondent{'s' if n != 1 else ''} match more than one `when` condition of derived.{variable.name}; "

@@ -33,6 +33,7 @@ import numpy as np
 import polars as pl
 
 from pipeline.estimation import api
+from pipeline.cells_export import EXPORT_SCHEMA
 from pipeline.estimation.intervals import korn_graubard_interval, t_interval
 from pipeline.staging.spec import Study
 from pipeline.tables.banners import Banner, Column
@@ -40,28 +41,13 @@ from pipeline.tables.fit import Plan
 from pipeline.tables.spec import TablesSpec
 from pipeline.weighted_cells import RATING_TYPES, SET_BY_WEIGHTING_SE, _row_expressions
 
+# The tidy export's columns (`pipeline.cells_export.EXPORT_SCHEMA`) with the break variable and
+# the column's letter after `column_label`.
 CELL_COLUMNS: dict[str, pl.DataType] = {
-    "wave": pl.String(),
-    "table": pl.String(),
-    "variable": pl.String(),
-    "row": pl.Int32(),
-    "row_label": pl.String(),
-    "banner": pl.String(),
-    "column": pl.String(),
-    "column_label": pl.String(),
-    "break_variable": pl.String(),
-    "letter": pl.String(),
-    "statistic": pl.String(),
-    "estimate": pl.Float64(),
-    "se": pl.Float64(),
-    "ci_low": pl.Float64(),
-    "ci_high": pl.Float64(),
-    "df": pl.Float64(),
-    "deff": pl.Float64(),
-    "base_unweighted": pl.Int64(),
-    "base_weighted": pl.Float64(),
-    "base_effective": pl.Float64(),
-    "flags": pl.String(),
+    name: dtype
+    for key, value in EXPORT_SCHEMA.items()
+    for name, dtype in ([(key, value), ("break_variable", pl.String()), ("letter", pl.String())]
+                        if key == "column_label" else [(key, value)])
 }
 NUMBERS = ("estimate", "se", "ci_low", "ci_high", "df", "deff", "base_unweighted", "base_weighted", "base_effective")
 EMPTY_NOTE = "no respondents in this column"
