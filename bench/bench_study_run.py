@@ -128,10 +128,10 @@ def _estimates_and_book(spec_path: str, memory_budget: str | None, results: mult
     from pipeline import runner
     from pipeline.book import render_book
     from pipeline.book import variance_lines, weighting_section
-    from pipeline.cells_export import tidy_cells, write_cells
+    from pipeline.tables.cells_export import tidy_cells, write_cells
     from pipeline.staging.database import open_database
     from pipeline.staging.spec import load_spec
-    from pipeline.topline import unweighted_toplines
+    from pipeline.tables.topline import unweighted_toplines
 
     study = load_spec(spec_path)
     options = runner.variance_options(study)

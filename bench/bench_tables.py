@@ -9,7 +9,7 @@ against the Total, a Rao-Scott test per stub and break; across the two waves, ev
 
 What each timing counts (per variance method, Taylor and the stratified jackknife, whose 400
 PSUs in 20 strata give 400 replicates):
-  topline   `pipeline.weighted_cells.wave_estimates` for both waves: the 60 stubs' weighted rows
+  topline   `pipeline.tables.weighted_cells.wave_estimates` for both waves: the 60 stubs' weighted rows
             with standard errors, intervals and design effects, one grouped pass per wave;
   tables    `pipeline.tables.Tabulation` for both waves (one grouped pass per wave for all cells,
             then the tests) and `finish` (wave-over-wave tests, chance marks).
@@ -40,8 +40,8 @@ from pipeline.estimation.options import VarianceOptions  # noqa: E402
 from pipeline.staging.spec import Design, Study, Variable, Wave  # noqa: E402
 from pipeline.tables import Tabulation  # noqa: E402
 from pipeline.tables.spec import BannerSpec, TablesSpec  # noqa: E402
-from pipeline.topline import CELL_SCHEMA  # noqa: E402
-from pipeline.weighted_cells import wave_estimates  # noqa: E402
+from pipeline.tables.topline import CELL_SCHEMA  # noqa: E402
+from pipeline.tables.weighted_cells import wave_estimates  # noqa: E402
 from pipeline.weighting import fit_recipe  # noqa: E402
 
 STUBS, BREAKS, CATEGORIES, STRATA, PSUS = 60, 5, 5, 20, 20
@@ -58,7 +58,7 @@ def _study() -> Study:
 
 
 def _layout(study: Study, wave: str) -> pl.DataFrame:
-    """Topline layout rows: base, the categories, "no answer" (as `pipeline.topline` orders them)."""
+    """Topline layout rows: base, the categories, "no answer" (as `pipeline.tables.topline` orders them)."""
     records = []
     for name, v in study.variables.items():
         rows = [("base", "Base", None)] + [("category", label, str(c)) for c, label in v.values.items()]

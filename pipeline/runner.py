@@ -13,7 +13,7 @@ order, are small functions so later stages slot in between staging and rendering
                                          the same weighted rows; `<stem>_banner_cells` / `<stem>_tests`
                                          exports beside the book
   6. `tidy_cells` + `write_cells`        the tidy export, `<spec stem>_cells.parquet` / `.csv`
-                                         beside the book (`pipeline.cells_export`)
+                                         beside the book (`pipeline.tables.cells_export`)
   7. `save_results`                      the cells and the book's other inputs stored
                                          (`wavebook book` re-renders from them)
   8. `render_book`                       the HTML book and its manifest.json, written atomically
@@ -33,8 +33,6 @@ from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.book.manifest import run_manifest
 from pipeline.book.store import load_results, save_results
-from pipeline.cells_export import export_paths as cells_export_paths
-from pipeline.cells_export import tidy_cells, write_cells
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.memory import DEFAULT_BUDGET, variable_batches
@@ -43,11 +41,20 @@ from pipeline.staging.database import column_types, load_responses, open_databas
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.staging.wave_columns import wave_signature
-from pipeline.tables import Tabulation, tables_spec
-from pipeline.tables.exports import export_paths, write_exports
-from pipeline.tables.workbook import write_workbook
-from pipeline.topline import unweighted_toplines
-from pipeline.weighted_cells import ESTIMATE_SCHEMA, RememberedReplay, wave_estimates
+from pipeline.tables import (
+    ESTIMATE_SCHEMA,
+    RememberedReplay,
+    Tabulation,
+    cells_export_paths,
+    export_paths,
+    tables_spec,
+    tidy_cells,
+    unweighted_toplines,
+    wave_estimates,
+    write_cells,
+    write_exports,
+    write_workbook,
+)
 from pipeline.weighting import WeightingReport
 from pipeline.weighting.store import fit_wave, store, weighting_columns
 
@@ -135,7 +142,7 @@ def weigh_and_estimate(
 
     With `tabulation`, each weighted wave is also given to it (banner tables, `pipeline.tables`).
 
-    Returns the cells with the estimate columns of `pipeline.weighted_cells` joined on
+    Returns the cells with the estimate columns of `pipeline.tables.weighted_cells` joined on
     (wave, variable, row_order), the weighting report of each wave, and for replicate methods
     each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting
     warnings go to stderr. Each wave's rows are read from the database once: the weighting columns

@@ -11,12 +11,12 @@ from pipeline.estimation.options import VarianceOptions
 from pipeline.staging.spec import Design, Study, Variable
 from pipeline.tables import Tabulation
 from pipeline.tables.spec import BannerSpec, TablesSpec
-from pipeline.topline import CELL_SCHEMA
+from pipeline.tables.topline import CELL_SCHEMA
 from pipeline.weighting import fit_recipe
 
 
 def layout_rows(study: Study, wave: str = "W1") -> pl.DataFrame:
-    """The topline layout rows (row_order, row_kind, code, row_label) of every variable, as `pipeline.topline` orders them."""
+    """The topline layout rows (row_order, row_kind, code, row_label) of every variable, as `pipeline.tables.topline` orders them."""
     records = []
     for name, v in study.variables.items():
         rows: list[tuple[str, str, str | None]] = [("base", "Base: answered", None)]

@@ -16,7 +16,7 @@ from pipeline.estimation.estimands import Ratios
 from pipeline.runner import variance_options, weigh_and_estimate
 from pipeline.staging.database import load_responses, open_database
 from pipeline.staging.stage import stage_wave
-from pipeline.topline import unweighted_toplines
+from pipeline.tables.topline import unweighted_toplines
 
 BALANCE = 'balance = { "Satisfaction balance" = { plus = [9, 10], minus = [0, 1, 2, 3, 4, 5] } }\n'
 NETS = 'nets = { "Kestrel or Lumen" = ["aware_kestrel", "aware_lumen"], "Only Lumen listed" = ["aware_lumen"] }\n'

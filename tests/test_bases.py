@@ -12,7 +12,7 @@ from pipeline.errors import SpecError
 from pipeline.runner import variance_options, weigh_and_estimate
 from pipeline.staging.database import open_database
 from pipeline.staging.stage import stage_wave
-from pipeline.topline import unweighted_toplines
+from pipeline.tables.topline import unweighted_toplines
 
 SPEC = TRACKER_SPEC.replace("exclude_from_statistics = [99]", "exclude_from_base = [99]")
 

@@ -27,7 +27,7 @@ from pipeline.book.render import LOW_BASE, VERY_LOW_BASE, build_context, render_
 from pipeline import outputs as outputs_module
 from pipeline.errors import WavebookError
 from pipeline.staging.spec import Design, Study, Variable, Wave
-from pipeline.topline import CELL_SCHEMA, unweighted_toplines
+from pipeline.tables.topline import CELL_SCHEMA, unweighted_toplines
 
 SCRIPT_LABEL = "Preferred <script>alert('x')</script> kettle"
 ID_PREFIX = "QZ-"

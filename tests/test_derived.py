@@ -12,7 +12,7 @@ from pipeline.errors import DataError, SpecError
 from pipeline.runner import stage_reasons
 from pipeline.staging.database import load_responses, open_database
 from pipeline.staging.stage import check_wave, stage_wave
-from pipeline.topline import unweighted_toplines
+from pipeline.tables.topline import unweighted_toplines
 
 DERIVED = '''
 [derived.young_shopper]

@@ -16,7 +16,7 @@ from pipeline.commands.demo import DEMO_SPEC, copy_demo
 from pipeline.memory import BYTES_PER_VALUE, DEFAULT_BUDGET, parse_size, variable_batches
 from pipeline.runner import run_study
 from pipeline.staging.spec import load_spec
-from pipeline.weighted_cells import RememberedReplay
+from pipeline.tables.weighted_cells import RememberedReplay
 
 
 @pytest.mark.parametrize(

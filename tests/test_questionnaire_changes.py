@@ -15,7 +15,7 @@ from pipeline.errors import SpecError
 from pipeline.runner import stage_reasons, variance_options, weigh_and_estimate
 from pipeline.staging.database import open_database
 from pipeline.staging.stage import check_wave, stage_wave
-from pipeline.topline import unweighted_toplines
+from pipeline.tables.topline import unweighted_toplines
 
 W3 = '''
 [waves.W3]

@@ -12,8 +12,8 @@ from pipeline.runner import variance_options
 from pipeline.staging.database import load_responses, open_database
 from pipeline.staging.spec import load_spec
 from pipeline.staging.stage import stage_wave
-from pipeline.topline import unweighted_toplines
-from pipeline.weighted_cells import wave_estimates
+from pipeline.tables.topline import unweighted_toplines
+from pipeline.tables.weighted_cells import wave_estimates
 from pipeline.weighting.store import fit_wave
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_data"

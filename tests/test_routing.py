@@ -13,7 +13,7 @@ from pipeline.errors import SpecError
 from pipeline.runner import run_study
 from pipeline.staging.database import load_responses, open_database
 from pipeline.staging.stage import check_wave, stage_wave
-from pipeline.topline import unweighted_toplines
+from pipeline.tables.topline import unweighted_toplines
 
 ROUTED_SPEC = TRACKER_SPEC.replace(
     'minimum = 0\nmaximum = 5000\n', 'minimum = 0\nmaximum = 5000\nasked_if = "age_band != 3"\n'

@@ -16,8 +16,8 @@ from pipeline.staging.spec import load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.tables import Tabulation, tables_spec
 from pipeline.tables.exports import read_export
-from pipeline.topline import unweighted_toplines
-from pipeline.weighted_cells import wave_estimates
+from pipeline.tables.topline import unweighted_toplines
+from pipeline.tables.weighted_cells import wave_estimates
 from pipeline.weighting.store import fit_wave
 
 DEMO = Path(__file__).resolve().parents[1] / "sample_data"

@@ -95,7 +95,7 @@ def test_difference_variances_add_the_within_psu_covariance():
 def test_joint_covariance_outer_product_form_equals_the_general_cross_moments():
     """`joint_covariance_terms` (outer-product form for disjoint numerators over one joint base) equals
     `covariance_terms` on the products named by `WavePlan.joint_cross`, pair by pair (an algebraic identity)."""
-    from pipeline.tables import design_inputs, wave_frame
+    from pipeline.tables.tabulation import design_inputs, wave_frame
     from pipeline.tables.banners import build_banner
     from pipeline.tables.cells import plan_wave
     from pipeline.tables.fit import fit_wave

@@ -1,4 +1,4 @@
-"""Weighted design-based estimates of the topline rows (pipeline.weighted_cells)."""
+"""Weighted design-based estimates of the topline rows (pipeline.tables.weighted_cells)."""
 
 from __future__ import annotations
 
@@ -11,8 +11,8 @@ import pytest
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.staging.database import load_responses, open_database
 from pipeline.staging.stage import stage_wave
-from pipeline.topline import unweighted_toplines
-from pipeline.weighted_cells import wave_estimates
+from pipeline.tables.topline import unweighted_toplines
+from pipeline.tables.weighted_cells import wave_estimates
 from pipeline.weighting import fit_recipe, parse_steps
 from pipeline.weighting.base import design_base_weights
 

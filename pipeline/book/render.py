@@ -1,6 +1,6 @@
 """The result book: self-contained HTML pages built from the tidy long cell frame.
 
-`render_book(study, cells, out_path=...)` turns the cells (see `pipeline.topline` for their
+`render_book(study, cells, out_path=...)` turns the cells (see `pipeline.tables.topline` for their
 columns, `pipeline.book.tables` for how they become tables) into a `BookContext` (the documented
 object every template receives), renders the templates with autoescaping forced on and strict
 undefined variables, and writes the book atomically.
@@ -173,8 +173,8 @@ def build_context(
     single_file: bool = True,
     manifest: dict | None = None,
 ) -> BookContext:
-    """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.topline`, plus
-    the estimate columns of `pipeline.weighted_cells` in a weighted book); `weighting` and
+    """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.tables.topline`, plus
+    the estimate columns of `pipeline.tables.weighted_cells` in a weighted book); `weighting` and
     `variance` (sentences on how standard errors were computed) feed the methodology; `level` is
     the confidence level of the intervals; `single_file` decides the pages and links."""
     missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]

@@ -97,7 +97,7 @@ class DetailRow:
 
 @dataclass(frozen=True)
 class TableRow:
-    """One table row: its kind (see pipeline.topline.ROW_KINDS), label, cells and detail rows."""
+    """One table row: its kind (see pipeline.tables.topline.ROW_KINDS), label, cells and detail rows."""
 
     kind: str
     label: str

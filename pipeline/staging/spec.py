@@ -242,7 +242,7 @@ _TOP_KEYS = (
     "tables", "banners",
 )
 _DERIVED_KEYS = ("label", "type", "values", "nets", "when")
-ANY_ITEM_LABEL = "Any of these"  # the multi set's own net of every item (pipeline.topline)
+ANY_ITEM_LABEL = "Any of these"  # the multi set's own net of every item (pipeline.tables.topline)
 _WAVE_KEYS = ("label", "file", "fieldwork")
 _DESIGN_KEYS = (
     "kind",

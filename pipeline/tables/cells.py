@@ -12,7 +12,7 @@ with standard errors from the design (`pipeline.tables.fit`), the Korn and Graub
 for percentages and the t interval for means, both with the domain's degrees of freedom (PSUs with
 domain members minus strata with domain members, `PsuLayout.domain_df`), the design effect and the
 effective base n / deff (Kish 1965 section 8.2). Rows are those of the wave's topline layout
-(`pipeline.topline`), so the Total column of a banner table is the weighted topline. Degrees of
+(`pipeline.tables.topline`), so the Total column of a banner table is the weighted topline. Degrees of
 freedom, and the missing SE of a cell on one respondent or in one PSU, are the core's (`api._table`).
 
 For the Rao-Scott test of a single-choice stub against a single-choice break the plan also holds
@@ -33,15 +33,15 @@ import numpy as np
 import polars as pl
 
 from pipeline.estimation import api
-from pipeline.cells_export import EXPORT_SCHEMA
+from pipeline.tables.cells_export import EXPORT_SCHEMA
 from pipeline.estimation.intervals import korn_graubard_interval, t_interval
 from pipeline.staging.spec import Study
 from pipeline.tables.banners import Banner, Column
 from pipeline.tables.fit import Plan
 from pipeline.tables.spec import TablesSpec
-from pipeline.weighted_cells import RATING_TYPES, SET_BY_WEIGHTING_SE, _row_expressions
+from pipeline.tables.weighted_cells import RATING_TYPES, SET_BY_WEIGHTING_SE, _row_expressions
 
-# The tidy export's columns (`pipeline.cells_export.EXPORT_SCHEMA`) with the break variable and
+# The tidy export's columns (`pipeline.tables.cells_export.EXPORT_SCHEMA`) with the break variable and
 # the column's letter after `column_label`.
 CELL_COLUMNS: dict[str, pl.DataType] = {
     name: dtype

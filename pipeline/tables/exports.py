@@ -23,7 +23,7 @@ from pathlib import Path
 import polars as pl
 
 from pipeline.outputs import write_output
-from pipeline.tables import BannerTables
+from pipeline.tables.result import BannerTables
 
 
 def export_paths(book: Path, *, xlsx: bool = False) -> list[Path]:

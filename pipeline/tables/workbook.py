@@ -19,7 +19,7 @@ import polars as pl
 from pipeline.errors import Problem, SpecError
 from pipeline.outputs import write_output
 from pipeline.staging.spec import Study
-from pipeline.tables import BannerTables
+from pipeline.tables.result import BannerTables
 
 SUPPRESSED = "*"
 LOW_BASE = "!"

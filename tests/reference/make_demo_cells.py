@@ -8,7 +8,7 @@ the date. `tests/test_cells_export.py` checks every later run of the demo agains
 of the estimation engine that moves any demo figure fails. Regenerate it only when a figure is
 meant to change, and say why in the commit. (The stored file was made from main's engine at
 the commit its header names, before the one-pass engine of issue 10, by running that engine and passing the cells
-it gave the book through `pipeline.cells_export.tidy_cells`; its header says so.)
+it gave the book through `pipeline.tables.cells_export.tidy_cells`; its header says so.)
 """
 
 from __future__ import annotations

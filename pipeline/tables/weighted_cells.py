@@ -2,7 +2,7 @@
 
 `weighted_cells(responses, study, recipes, options)` takes the staged responses of the waves,
 the fitted weighting recipe of each wave and the `[variance]` options, and returns one row per
-(wave, variable, row_order) of the topline layout (`pipeline.topline`) that has an estimate:
+(wave, variable, row_order) of the topline layout (`pipeline.tables.topline`) that has an estimate:
 
   category / net / item / missing rows: a weighted percentage, 100 * p with
       p = sum_i w_i a_i y_i / sum_i w_i a_i,   y_i = 1 when i's answer is in the row, a_i = 1 when
@@ -215,7 +215,7 @@ def wave_estimates(
     """Design-based estimates of every estimable topline row of one wave (module docstring).
 
     responses: the wave's staged rows (the design columns and those of `variables`); recipe: its
-    fitted weighting; layout: the topline rows of the wave (`pipeline.topline.unweighted_toplines`
+    fitted weighting; layout: the topline rows of the wave (`pipeline.tables.topline.unweighted_toplines`
     filtered to the wave); variables: the variables to estimate (default every one of the study);
     replay: the recipe's replay to use (default `recipe.replay`; a `RememberedReplay` shared by the
     batches of a wave).

@@ -1,7 +1,7 @@
 """The tidy cells export: one row per number the book shows, written beside the book.
 
-`tidy_cells(cells)` turns the long cell frame of a run (`pipeline.topline` rows with the estimate
-columns of `pipeline.weighted_cells` joined on) into the frame `EXPORT_SCHEMA` describes, and
+`tidy_cells(cells)` turns the long cell frame of a run (`pipeline.tables.topline` rows with the estimate
+columns of `pipeline.tables.weighted_cells` joined on) into the frame `EXPORT_SCHEMA` describes, and
 `write_cells(export, book_path, stem)` writes it as `<stem>_cells.parquet` and `<stem>_cells.csv`
 in the book's folder (the run checks both paths with the book's, `pipeline.outputs.check_output`). The book renders its numbers from this same frame (`pipeline.book`), so the
 two cannot disagree.
