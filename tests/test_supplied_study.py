@@ -20,7 +20,7 @@ from pipeline.errors import DataError, SpecError
 from pipeline.estimation import estimate_table
 from pipeline.estimation.replicates import make_replicates
 from pipeline.runner import run_study, variance_options
-from pipeline.staging.database import load_responses, open_database
+from pipeline.staging.database import load_responses, open_database, table_columns
 from pipeline.staging.replicate_columns import staged_columns
 from pipeline.staging.spec import load_spec
 from pipeline.staging.stage import check_wave, stage_wave
@@ -250,8 +250,7 @@ def test_staged_replicates_are_double_design_columns(tmp_path: Path) -> None:
     stage_wave(study, "W1", quiet=True)
     con = open_database(study, read_only=True)
     try:
-        types = dict(con.execute("select column_name, data_type from information_schema.columns "
-                                 "where table_name = 'responses'").fetchall())
+        types = table_columns(con, "responses")
         staged = load_responses(con, study, ["W1"], columns=staged_columns(study))
     finally:
         con.close()
@@ -327,3 +326,54 @@ def test_acs_verification_table_from_a_study_spec(tmp_path: Path) -> None:
                                                                              row["PUMS_SE_17_TO_21"])
     # Census "PUMS Estimates for User Verification" 2017-2021: estimate and SE equal after rounding, 48 of 48
     assert (checked, mismatched) == (48, 0)
+
+
+RAKE = '''
+[[weighting]]
+step = "rake"
+margins = ["region"]
+totals = { region = { 1 = 0.7, 2 = 0.3 } }
+'''
+
+
+def test_weighting_that_moves_the_supplied_weight_is_flagged(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    frame, r = _with_replicates(_respondents(PSUS), "jackknife", np.zeros(PSUS, dtype=np.int64))
+    spec = _study(tmp_path, frame, variance='replicate_method = "jackknife"')
+    spec.write_text(spec.read_text().replace("[variance]", RAKE + "\n[variance]"), encoding="utf-8")
+    capsys.readouterr()
+    book = run_study(spec, quiet=True)
+    err = capsys.readouterr().err
+    assert "[supplied-replicates-weighting]" in err
+    study = load_spec(spec)
+    con = open_database(study, read_only=True)
+    try:
+        final = con.sql("select respondent_id, weight from weights order by respondent_id").pl()
+    finally:
+        con.close()
+    # the largest relative change, computed here from the stored final weights and the file's weight column
+    joined = final.join(frame.select(pl.col("id").alias("respondent_id"), "wt"), on="respondent_id")
+    change = float((joined["weight"] / joined["wt"] - 1).abs().max())
+    assert change > 0.01
+    html = " ".join(book.read_text(encoding="utf-8").split())
+    assert "Caution: the full-sample weight is the study" in html and f"by up to {100 * change:.3g}% (wave W1)" in html
+
+
+def test_methodology_says_which_weight_the_supplied_replicates_describe(tmp_path: Path) -> None:
+    from pipeline.book.weighting import SuppliedWave, variance_lines
+
+    frame, _ = _with_replicates(_respondents(PSUS), "jackknife", np.zeros(PSUS, dtype=np.int64))
+    spec = _study(tmp_path, frame, variance='replicate_method = "fay"\nfay = 0.5\ndf = 40\ncentre = "replicate-mean"')
+    study = load_spec(spec)
+    text = " ".join(variance_lines(variance_options(study), study, calibrated=False,
+                                   supplied={"W1": SuppliedWave(replicates=80, weight_change=0.0)}))
+    # Fay 1989: multiplier 1/(R (1-rho)^2) = 1/(80 * 0.25) = 0.05
+    assert "the 80 replicate weights supplied with the data (balanced repeated replication with Fay's coefficient 0.5)" in text
+    assert "the fay multiplier 1/(R (1-rho)^2) = 0.05" in text and "the mean of the replicate estimates" in text
+    assert "Degrees of freedom: 40, as declared (the number of half-sample pairs)" in text
+    assert "the study adds no weighting of its own" in text
+    spec.write_text(spec.read_text().replace("[variance]", RAKE + "\n[variance]"), encoding="utf-8")
+    study = load_spec(spec)
+    text = " ".join(variance_lines(variance_options(study), study, calibrated=True,
+                                   supplied={"W1": SuppliedWave(replicates=80, weight_change=0.004)}))
+    assert "changes that weight by at most 0.4% for any respondent" in text and "Caution" not in text
+    assert "Every replicate repeats" not in text

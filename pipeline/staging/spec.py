@@ -368,6 +368,14 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
     variance = data.get("variance", {})
     if isinstance(variance, dict):
         problems += parse_variance(variance, columns=study.own_columns() if study is not None else None)[1]
+        if study is not None and variance.get("method") == "supplied":
+            design = study.design
+            for key, given in (("population", design.population), ("sampling_fraction", design.sampling_fraction),
+                               ("psu_inclusion_probability", design.psu_inclusion_probability)):
+                if given:
+                    problems.append(Problem("conflicting-keys", f"design.{key}: supplied replicate weights carry "
+                                            "their own variance recipe (a finite population correction included); "
+                                            "drop it"))
     if study is not None:
         try:
             parse_steps(study.weighting, study.step_context())

@@ -31,7 +31,8 @@ Every estimate of a wave comes from ONE call of `pipeline.estimation.estimate_ta
 wave's rows: one grouped pass over respondents, the full design kept (rows outside a base get
 a_i = 0, they are never dropped before the variance), the weighting recipe's classes passed in so
 that Taylor linearization uses the calibration residuals (Deville & Sarndal 1992) and replicate
-methods replay the recipe in every replicate. Percentages get the Korn & Graubard (1998)
+methods replay the recipe in every replicate; supplied replicate weights (`variance_arguments`) are
+used as they are. Percentages get the Korn & Graubard (1998)
 interval (Clopper-Pearson on the effective sample size, which behaves near 0% and 100%), means
 the t interval with the design degrees of freedom.
 """
