@@ -377,3 +377,40 @@ def test_methodology_says_which_weight_the_supplied_replicates_describe(tmp_path
                                    supplied={"W1": SuppliedWave(replicates=80, weight_change=0.004)}))
     assert "changes that weight by at most 0.4% for any respondent" in text and "Caution" not in text
     assert "Every replicate repeats" not in text
+
+
+def test_stratified_jackknife_with_its_multipliers_equals_the_generated_one(tmp_path: Path,
+                                                                          capsys: pytest.CaptureFixture[str]) -> None:
+    from pipeline.estimation import estimate
+
+    psu_stratum = np.repeat(np.arange(4), 3)  # 4 strata of 3 PSUs
+    frame, r = _with_replicates(_respondents(PSUS), "stratified-jackknife", psu_stratum)
+    frame = frame.with_columns(pl.Series("stratum", psu_stratum[frame["psu"].to_numpy()]))
+    generated = estimate(frame, weight="wt", strata="stratum", psu="psu", mean="spend",
+                         variance="stratified-jackknife").row(0, named=True)
+    multipliers = ", ".join(["0.6666666666666666"] * r)  # (n_h - 1)/n_h = 2/3 (Wolter 2007 section 4.5)
+    spec = _study(tmp_path, frame.drop("stratum"),
+                  variance=f'replicate_method = "stratified-jackknife"\nmultipliers = [{multipliers}]\ndf = 8')
+    book = run_study(spec, quiet=True)
+    mean = pl.read_parquet(book.parent / "study_cells.parquet").filter(
+        (pl.col("variable") == "spend") & (pl.col("statistic") == "mean")).row(0, named=True)
+    # identity: the supplied columns are the generated replicates, with the generated multipliers
+    assert mean["se"] == pytest.approx(generated["se"], rel=1e-10) and mean["df"] == 8 == generated["df"]
+    cli = _cli(tmp_path / "w1.csv", capsys, "--replicate-method", "stratified-jackknife", "--replicate-df", "8",
+               "--replicate-multipliers", ",".join(["0.6666666666666666"] * r), "--mean", "spend")
+    assert cli["se"][0] == pytest.approx(generated["se"], rel=1e-10)
+
+
+def test_help_and_readme_state_each_default(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit):
+        main(["estimate", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    for default in ("(default sdr)", "sdr 4/R", "jackknife (R-1)/R", "brr 1/R", "fay 1/(R (1-RHO)^2",
+                    "bootstrap 1/R", "stratified-jackknife 1 with --replicate-multipliers",
+                    "(default R - 1; brr and fay need it: the number of half-sample pairs",
+                    "(full-sample, default)"):
+        assert default in text, default
+    readme = " ".join((Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8").split())
+    for default in ('method = "supplied"', "sdr 4/R, jackknife (R-1)/R,", "default R - 1; brr and fay must give it",
+                    'centre = "full-sample"', "required: sdr, jackknife"):
+        assert default in readme, default

@@ -135,6 +135,10 @@ def replicate_problems(
         return problems
     from pipeline.sqlfiles import sql
 
+    counts = con.execute(sql("check_replicate_counts.sql", raw=raw, columns=columns)).fetchall()[0]
+    columns = [c for c, n in zip(columns, counts, strict=True) if n]  # details only where something failed
+    if not columns:
+        return problems
     rows = con.execute(
         sql("check_replicate_weights.sql", raw=raw, id=study.respondent_id, columns=columns), {"names": columns}
     ).fetchall()
