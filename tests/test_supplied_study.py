@@ -174,6 +174,7 @@ def test_brr_design_df_is_its_number_of_pairs(tmp_path: Path, capsys: pytest.Cap
         ('replicate_method = "stratified-jackknife"', "multipliers"),
         ('replicate_method = "sdr"\nmultiplier = -1', "multiplier"),
         ('replicate_method = "sdr"\ncentre = "median"', "centre"),
+        ('replicate_method = "stratified-jackknife"\nmultipliers = [0.5, 0.5]\ncentre = "replicate-mean"', "centre"),
         ('replicate_method = "sdr"\ndf = 0', "df"),
         ('replicate_method = "sdr"\nseed = 3', "seed"),
         ('replicate_method = "sdr"\nreplicates = 40', "replicates"),

@@ -378,7 +378,8 @@ def supplied_option_problems(
     required for "stratified-jackknife", (n_h - 1)/n_h of each replicate's stratum, Wolter 2007
     section 4.5; an error with any other method), df (a whole number >= 1; required for "brr" and
     "fay": the number of half-sample pairs, Wolter 2007 section 3.5, from memory, not R - 1),
-    centre ("full-sample" or "replicate-mean").
+    centre ("full-sample" or "replicate-mean", the mean of all the replicates; not with
+    "stratified-jackknife", whose replicate strata are not supplied).
     """
     out: list[tuple[str, str, object]] = []
     if method not in SUPPLIED_METHODS:
@@ -415,6 +416,9 @@ def supplied_option_problems(
                     "pairs (strata), not R - 1 (Wolter 2007 section 3.5, from memory)", None))
     if centre not in CENTRES:
         out.append(("centre", f"must be one of {', '.join(CENTRES)}", centre))
+    elif centre == "replicate-mean" and method == "stratified-jackknife":
+        out.append(("centre", "stratified-jackknife replicates are centred on their stratum's mean, and the strata of "
+                    "supplied replicates are not known: use full-sample", centre))
     return out
 
 
