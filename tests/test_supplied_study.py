@@ -415,3 +415,14 @@ def test_help_and_readme_state_each_default(capsys: pytest.CaptureFixture[str]) 
     for default in ('method = "supplied"', "sdr 4/R, jackknife (R-1)/R,", "default R - 1; brr and fay must give it",
                     'centre = "full-sample"', "required: sdr, jackknife"):
         assert default in readme, default
+
+
+def test_supplied_replicate_totals_in_blocks_equal_one_product() -> None:
+    from pipeline.estimation.replicates import supplied_replicate_totals
+
+    frame, r = _with_replicates(_respondents(PSUS), "jackknife", np.zeros(PSUS, dtype=np.int64))
+    quantities = {f"q{k}": (pl.col("spend") * (pl.col("q1") == 1 + k % 3)) for k in range(7)}
+    weights = [f"rw{k}" for k in range(1, r + 1)]
+    blocks = supplied_replicate_totals(frame, quantities, weights, chunk_bytes=8 * frame.height * 2)  # 2 per block
+    direct = frame.select(weights).to_numpy().T @ frame.select(**quantities).cast(pl.Float64).to_numpy()
+    np.testing.assert_allclose(blocks, direct, rtol=1e-12)  # identity: the same sums, blocked by quantity
