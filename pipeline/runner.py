@@ -28,10 +28,12 @@ import time
 from pathlib import Path
 
 import duckdb
+import numpy as np
 import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
+from pipeline.book.weighting import SUPPLIED_WEIGHT_TOLERANCE, SuppliedWave
 from pipeline.book.manifest import run_manifest
 from pipeline.book.store import load_results, save_results
 from pipeline.errors import DataError, Problem, SpecError
@@ -39,6 +41,7 @@ from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.memory import DEFAULT_BUDGET, variable_batches
 from pipeline.outputs import check_output, file_sha256, study_inputs
 from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
+from pipeline.staging.replicate_columns import staged_columns
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.staging.wave_columns import wave_signature
@@ -56,7 +59,8 @@ from pipeline.tables import (
     write_exports,
     write_workbook,
 )
-from pipeline.weighting import WeightingReport
+from pipeline.weighting import FittedRecipe, WeightingReport
+from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.store import fit_wave, store, weighting_columns
 
 
@@ -138,6 +142,7 @@ def weigh_and_estimate(
     timings: dict[str, float] | None = None,
     memory_budget: int = DEFAULT_BUDGET,
     tabulation: Tabulation | None = None,
+    supplied: dict[str, SuppliedWave] | None = None,
 ) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]], BannerTables]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
@@ -156,6 +161,10 @@ def weigh_and_estimate(
     three frames: the two waves and the stacked one).
     timings: when given, receives the seconds spent weighting ("weigh") and estimating
     ("estimates", banner tables included), summed over the waves (`bench/bench_study_run.py` reads them).
+    supplied: when given and the replicate weights are supplied (`[variance] method = "supplied"`),
+    receives each wave's number of replicates and how far the study's weighting moved the data's
+    own weight (`supplied_weight_change`); a warning goes to stderr when that is beyond
+    SUPPLIED_WEIGHT_TOLERANCE, since the replicates do not carry the study's weighting.
     """
     clock = timings if timings is not None else {}
     clock.setdefault("weigh", 0.0)
@@ -165,7 +174,8 @@ def weigh_and_estimate(
     reports: dict[str, WeightingReport] = {}
     adjustments: dict[str, dict[str, int]] = {}
     estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
-    kept_columns = list(dict.fromkeys(weighting_columns(study) + tabulation.held_columns()))
+    replicate_columns = staged_columns(study) if options.supplied else []
+    kept_columns = list(dict.fromkeys(weighting_columns(study) + replicate_columns + tabulation.held_columns()))
     con = open_database(study)
     try:
         for wave_id in wave_ids:
@@ -175,6 +185,12 @@ def weigh_and_estimate(
                 recipe, report = fit_wave(study, wave_id, con=con, data=held)
                 store(con, recipe, report)
             clock["weigh"] += time.perf_counter() - start
+            if options.supplied:
+                change = supplied_weight_change(held, study, recipe)
+                if supplied is not None:
+                    supplied[wave_id] = SuppliedWave(replicates=len(replicate_columns), weight_change=change)
+                if change > SUPPLIED_WEIGHT_TOLERANCE:
+                    print(_supplied_warning(study, wave_id, change).render(), file=sys.stderr)
             for warning in report.warnings:
                 print(warning.render(), file=sys.stderr)
             reports[wave_id] = report
@@ -197,7 +213,7 @@ def weigh_and_estimate(
             clock["estimates"] += time.perf_counter() - start
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
-            if options.method != "taylor":
+            if options.method not in ("taylor", "supplied"):  # supplied replicates replay no recipe
                 adjustments[wave_id] = recipe.replicate_adjustments()
     finally:
         con.close()
@@ -206,6 +222,30 @@ def weigh_and_estimate(
     clock["estimates"] += time.perf_counter() - start
     joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")
     return joined, reports, adjustments, tables
+
+
+def supplied_weight_change(held: pl.DataFrame, study: Study, recipe: FittedRecipe) -> float:
+    """max_i |w_i / b_i - 1| over the weighted respondents: how far the study's final weight w moved
+    the data's own weight b (the base weight column, or 1 / the selection probability), the weight
+    supplied replicate weights were made for. 0 when the spec has no weighting steps."""
+    base, _ = design_base_weights(held, study)
+    kept = base[recipe.kept]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(kept > 0, recipe.weights / kept, np.where(recipe.weights > 0, np.inf, 1.0))
+    return float(np.max(np.abs(ratio - 1.0))) if len(ratio) else 0.0
+
+
+def _supplied_warning(study: Study, wave_id: str, change: float) -> Problem:
+    weight = study.design.base_weight or f"1 / {study.design.selection_probability}"
+    return Problem(
+        "supplied-replicates-weighting",
+        f"wave {wave_id}: the study's weighting steps change the data's own weight ({weight}) by up to "
+        f"{100 * change:.3g}%; the supplied replicate weights were made for that weight and do not carry the "
+        "study's weighting, so the standard errors may be too large or too small (above all for the variables "
+        "the weighting controls). Drop the [[weighting]] steps to estimate with the weight the replicates were "
+        "made for, or use a replicate method wavebook generates (it replays the weighting in every replicate)",
+        severity="warning", file=str(study.path), column=study.design.base_weight, value=f"{100 * change:.3g}%",
+    )
 
 
 def _with_columns(
@@ -276,14 +316,17 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
+    supplied: dict[str, SuppliedWave] = {}
     cells, reports, adjustments, tables = weigh_and_estimate(
-        study, cells, options, quiet=quiet, memory_budget=memory_budget, tabulation=Tabulation(study, spec, options)
+        study, cells, options, quiet=quiet, memory_budget=memory_budget, tabulation=Tabulation(study, spec, options),
+        supplied=supplied,
     )
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     weighting = weighting_section(study, reports)
     variance = variance_lines(
         options, study, calibrated=calibrated, replicate_adjustments=adjustments,
         replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
+        supplied=supplied,
     )
     export = export_cells(cells, tables)
     if spec is not None:

@@ -31,6 +31,7 @@ from pipeline.errors import SpecError
 from pipeline.estimation.api import FPC_REPLICATE_METHODS
 from pipeline.estimation.design import SampleDesign
 from pipeline.estimation.options import VarianceOptions
+from pipeline.staging.replicate_columns import staged_columns
 from pipeline.staging.spec import Study
 from pipeline.tables.banners import Banner, build_banner
 from pipeline.tables.cells import WavePlan, cell_frame, plan_wave
@@ -81,6 +82,7 @@ def design_inputs(study: Study, recipe: FittedRecipe, options: VarianceOptions,
         reweight=recipe.replay if replay is None else replay,
         calibration_matrix=None if calibration.shape[1] == 0 else calibration,
         final_weight=_FINAL,
+        replicate_columns=tuple(staged_columns(study)) if options.supplied else (),
     )
 
 
