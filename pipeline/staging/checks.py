@@ -2,12 +2,16 @@
 
 Each rule is one query in `sql/check_*.sql` returning rows of (col, value, n, examples, detail);
 this module turns them into `Problem`s with readable messages. Errors stop staging; warnings are
-printed and recorded. Speed: the per-respondent work is a few grouped passes over the raw text
-table (see pipeline.staging.readers). The coded columns are counted once per distinct value
-(`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items, integer codes) and the
-drift rules then work on that small table, and example ids are looked up in one more pass
-(`check_examples.sql`) only when a rule found something. Numeric and design columns are checked
-with one filtered pass per column, all in one query per rule.
+printed and recorded. The checks read one relation with the wave's columns under their spec
+names: the raw temp table's wave view, or (staging a CSV file straight from the file) the wave's
+rows just inserted into `responses`; the `wb_*` macros read text and typed columns alike.
+Speed: the per-respondent work is a few passes. The row rules (missing and repeated ids,
+missing design values, non-numbers, bounds, design weights) are counted for every column at
+once by one screening pass (`check_screen.sql`), and a rule's own query, with its values,
+counts and example ids, runs only where that count is not 0. The coded columns are counted once
+per distinct value (`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items,
+integer codes) and the drift rules then work on that small table, and example ids are looked up
+in one more pass (`check_examples.sql`) only when a rule found something.
 
 Rules (severity): missing-column (error), extra-column (warning), empty-file (error),
 missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
@@ -279,7 +283,7 @@ class _Context:
     def routing_problems(self, present: set[str]) -> list[Problem]:
         """answered-not-asked: respondents outside a variable's `asked_if` who answered it anyway.
 
-        The condition is compiled to a DuckDB expression over the raw text columns read through the
+        The condition is compiled to a DuckDB expression over the raw columns read through the
         typing macros (pipeline.staging.conditions.to_duckdb), never to SQL text.
         """
         import duckdb
@@ -292,7 +296,7 @@ class _Context:
             columns = [c for c in variable.columns if c in present]
             if condition is None or not columns or not set(condition.names) <= present:
                 continue
-            answered = [duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(c)).isnotnull() for c in columns]
+            answered = [~duckdb.FunctionExpression("wb_blank", duckdb.ColumnExpression(c)) for c in columns]
             any_answer = answered[0]
             for more in answered[1:]:
                 any_answer = any_answer | more

@@ -191,7 +191,11 @@ def _stage_direct(
             relation, header = csv_relation(con, wave.file, typed)
             con.register(RAW_TABLE, relation)
             replaced, added = _replace_start(con, study, wave)
-            _insert_rows(con, study, wave, strict=True)
+            con.execute(sql("stage_insert_order.sql", keep=False))
+            try:
+                _insert_rows(con, study, wave, strict=True)
+            finally:
+                con.execute(sql("stage_insert_order.sql", keep=True))
             if rejected_lines(con):
                 raise _Fallback
         with step(f"{wave.id}: checking", quiet=quiet):
