@@ -39,6 +39,7 @@ from pipeline.staging.database import (
     table_columns,
 )
 from pipeline.staging.readers import csv_relation, file_format, prepare_connection, read_raw, rejected_lines
+from pipeline.staging.replicate_columns import wave_replicates
 from pipeline.staging.spec import Study, Wave
 from pipeline.staging.wave_columns import typed_file_columns, wave_signature, wave_sources, wave_view
 
@@ -180,9 +181,14 @@ def _stage_direct(
 ) -> tuple[str, list[Problem], tuple[int, int, list[str]]] | None:
     """Stage a CSV wave straight from its file and check the inserted rows, in one transaction;
     (digest, warnings, (rows, replaced, added)) when it is committed, None (rolled back, nothing
-    changed) when the exact path must decide: not a CSV file, a shared file, a rejected value,
-    a failed insert or an error found by a check."""
-    if not wave.file.is_file() or file_format(wave.file) != "csv" or shared_file_problems(study, wave):
+    changed) when the exact path must decide: not a CSV file, a shared file, supplied replicate
+    weights, a rejected value, a failed insert or an error found by a check."""
+    if (
+        not wave.file.is_file()
+        or file_format(wave.file) != "csv"
+        or shared_file_problems(study, wave)
+        or wave_replicates(study, wave.id)  # their checks report file lines: the exact path's row numbers
+    ):
         return None
     typed = typed_file_columns(study, wave.id)
     con.begin()

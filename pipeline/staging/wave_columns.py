@@ -20,6 +20,7 @@ from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 from pipeline.staging.conditions import to_duckdb
+from pipeline.staging.replicate_columns import wave_replicates
 
 if TYPE_CHECKING:
     import duckdb
@@ -30,28 +31,31 @@ WAVE_VIEW = "__wavebook_wave"
 
 
 def wave_sources(study: Study, wave_id: str) -> dict[str, str]:
-    """Spec column -> its name in the wave's file, for every codebook column the wave asked."""
+    """Spec column -> its name in the wave's file, for every codebook column the wave asked and every
+    supplied replicate weight (`replicate_weight_<r>` -> the file's column, `replicate_columns`)."""
     out: dict[str, str] = {}
     for variable in study.variables.values():
         for column in variable.wave_columns(wave_id):
             out[column] = variable.column.get(wave_id, column) if variable.type != "multi" else column
-    return out
+    return {**out, **wave_replicates(study, wave_id)}
 
 
 def typed_file_columns(study: Study, wave_id: str) -> dict[str, str]:
     """File column -> "code", "item" or "number" for the columns of a wave's file the spec reads as
     numbers (integer-coded single/rating, multi items, numeric variables, base weight, selection
     probability): pipeline.staging.readers reads them typed. Text codes, strata and PSU ids (unless
-    a codebook variable types them) and the respondent id stay text."""
+    a codebook variable types them), the respondent id and supplied replicate weights (whose
+    checks report values and lines as written) stay text."""
     out: dict[str, str] = {}
-    for column, source in wave_sources(study, wave_id).items():
-        variable = study.variables.get(column)
-        if variable is None:  # a multi item
-            out[source] = "item"
-        elif variable.type == "numeric":
-            out[source] = "number"
-        elif variable.int_coded:
-            out[source] = "code"
+    for variable in study.variables.values():
+        for column in variable.wave_columns(wave_id):
+            source = variable.column.get(wave_id, column) if variable.type != "multi" else column
+            if variable.type == "multi":
+                out[source] = "item"
+            elif variable.type == "numeric":
+                out[source] = "number"
+            elif variable.int_coded:
+                out[source] = "code"
     design = study.design
     for column in (design.base_weight, design.selection_probability):
         if column is not None and column not in study.variables and column != study.respondent_id:
@@ -158,4 +162,7 @@ def wave_signature(study: Study, wave_id: str, types: dict[str, str]) -> str:
         "recodes": wave_recodes(study, wave_id),
         "derived": {v.name: {str(c): w.text for c, w in v.when.items()} for v in study.variables.values() if v.derived},
     }
+    replicates = wave_replicates(study, wave_id)
+    if replicates:  # only then, so the signatures of studies without supplied replicates stay as they were
+        content["replicates"] = replicates
     return hashlib.sha256(json.dumps(content, sort_keys=True).encode()).hexdigest()
