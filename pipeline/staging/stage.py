@@ -191,17 +191,14 @@ def _stage_direct(
     ):
         return None
     typed = typed_file_columns(study, wave.id)
+    con.execute(sql("stage_insert_order.sql", keep=False))
     con.begin()
     try:
         with step(f"{wave.id}: reading {wave.file.name} into {study.database_path.name}", quiet=quiet):
             relation, header = csv_relation(con, wave.file, typed)
             con.register(RAW_TABLE, relation)
             replaced, added = _replace_start(con, study, wave)
-            con.execute(sql("stage_insert_order.sql", keep=False))
-            try:
-                _insert_rows(con, study, wave, strict=True)
-            finally:
-                con.execute(sql("stage_insert_order.sql", keep=True))
+            _insert_rows(con, study, wave, strict=True)
             if rejected_lines(con):
                 raise _Fallback
         with step(f"{wave.id}: checking", quiet=quiet):
@@ -232,6 +229,7 @@ def _stage_direct(
         raise
     finally:
         _unregister(con, RAW_TABLE, STAGED_VIEW)
+        con.execute(sql("stage_insert_order.sql", keep=True))
     return digest, problems, (rows, replaced, added)
 
 
@@ -258,10 +256,7 @@ def _staged_view(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, colum
 
 def _unregister(con: duckdb.DuckDBPyConnection, *names: str) -> None:
     for name in names:
-        try:
-            con.unregister(name)
-        except duckdb.Error:
-            pass
+        con.unregister(name)  # a name never registered is no error
 
 
 def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool) -> list[Problem]:
