@@ -150,6 +150,22 @@ def _reference(task: str, wave: str, spec_path: str, results: multiprocessing.Qu
     results.put((seconds, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, "typed by DuckDB's sniffer"))
 
 
+def _write_study_child(folder: str, rows: int, results: multiprocessing.Queue) -> None:
+    results.put(str(write_study(Path(folder), rows)))
+
+
+def _generate(folder: Path, rows: int) -> Path:
+    """`write_study` in a child process: a process's peak RSS survives into the children it starts
+    (Linux keeps ru_maxrss across exec), so the parent must never hold the generated frames."""
+    context = multiprocessing.get_context("spawn")
+    results = context.Queue()
+    process = context.Process(target=_write_study_child, args=(str(folder), rows, results))
+    process.start()
+    spec_path = Path(results.get())
+    process.join()
+    return spec_path
+
+
 def run_child(task: str, wave: str, spec_path: Path) -> tuple[float, float, str]:
     """Run `task` ("stage", "check" or "reference") on `wave` in a fresh process; return its figures."""
     context = multiprocessing.get_context("spawn")
@@ -170,7 +186,7 @@ def main(argv: list[str] | None = None) -> int:
     with tempfile.TemporaryDirectory(prefix="wavebook-bench-") as tmp:
         folder = args.folder or Path(tmp)
         start = time.perf_counter()
-        spec_path = write_study(folder, args.rows)
+        spec_path = _generate(folder, args.rows)
         size_mib = (folder / "waves" / "wave1.csv").stat().st_size / 2**20
         print(f"generated {args.rows:,} rows x 60 columns ({size_mib:,.0f} MiB CSV) in {time.perf_counter() - start:.1f} s")
         steps = (
