@@ -203,17 +203,7 @@ def _stage_direct(
                 raise _Fallback
         with step(f"{wave.id}: checking", quiet=quiet):
             _, columns, ignored = wave_view(con, study, wave.id, RAW_TABLE, header)
-            problems = run_checks(
-                con,
-                study,
-                raw=_staged_view(con, study, wave, columns),
-                file_columns=columns,
-                file=str(wave.file),
-                previous=_earlier_staged(con, study, wave),
-                wave=wave.id,
-                sources=wave_sources(study, wave.id),
-                ignored=tuple(ignored),
-            )
+            problems = _wave_checks(con, study, wave, _staged_view(con, study, wave, columns), columns, ignored)
         if any(p.severity == "error" for p in problems):
             raise _Fallback
         with step(f"{wave.id}: hashing {wave.file.name}", quiet=quiet):
@@ -270,17 +260,24 @@ def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet:
         return shared + exc.problems
     view, columns, ignored = wave_view(con, study, wave.id, RAW_TABLE, file_columns)
     with step(f"{wave.id}: checking", quiet=quiet):
-        return shared + run_checks(
-            con,
-            study,
-            raw=view,
-            file_columns=columns,
-            file=str(wave.file),
-            previous=_earlier_staged(con, study, wave),
-            wave=wave.id,
-            sources=wave_sources(study, wave.id),
-            ignored=tuple(ignored),
-        )
+        return shared + _wave_checks(con, study, wave, view, columns, ignored)
+
+
+def _wave_checks(
+    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, raw: str, columns: list[str], ignored: list[str]
+) -> list[Problem]:
+    """Every check of the wave on the relation `raw` (its columns under their spec names)."""
+    return run_checks(
+        con,
+        study,
+        raw=raw,
+        file_columns=columns,
+        file=str(wave.file),
+        previous=_earlier_staged(con, study, wave),
+        wave=wave.id,
+        sources=wave_sources(study, wave.id),
+        ignored=tuple(ignored),
+    )
 
 
 def _earlier_staged(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> list[str]:
