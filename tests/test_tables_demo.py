@@ -128,14 +128,22 @@ def test_demo_run_writes_exports_and_suppressed_cells_hold_no_number(tmp_path):
     _check_workbook(Path(f"{stem}_tables.xlsx"), cells)
 
 
-def test_demo_results_do_not_depend_on_the_batching_banner_cells_and_tests_included(tmp_path):
+@pytest.mark.parametrize("shared_psus", [False, True])
+def test_demo_results_do_not_depend_on_the_batching_banner_cells_and_tests_included(tmp_path, shared_psus):
     """One variable per batch (a 1-byte budget: each stub's banner cells in a pass of their own) gives the
     cells and tests of one pass for everything, to 1e-12: every cell, test and variance reads only its own
-    stub's quantities."""
+    stub's quantities. With `same_psus_across_waves` (the demo's area numbers recur across waves) each
+    batch is stacked with the same batch of the previous wave, read again."""
     frames = []
     for name, budget in (("one", None), ("many", 1)):
         folder = tmp_path / name
         shutil.copytree(DEMO, folder, ignore=shutil.ignore_patterns("*.duckdb", "book"))
+        if shared_psus:
+            spec = folder / "study.toml"
+            text = spec.read_text(encoding="utf-8")
+            assert 'single_psu = "error"\n' in text
+            spec.write_text(text.replace('single_psu = "error"\n', 'single_psu = "error"\nsame_psus_across_waves = true\n'),
+                            encoding="utf-8")
         book = run_study(folder / "study.toml", quiet=True, **({} if budget is None else {"memory_budget": budget}))
         frames.append([read_export(book.parent / f"{book.stem}_{kind}.parquet") for kind in ("cells", "tests")])
     key = ["comparison", "wave", "wave_b", "table", "row", "banner", "column_a", "column_b"]
@@ -143,6 +151,15 @@ def test_demo_results_do_not_depend_on_the_batching_banner_cells_and_tests_inclu
     for one, many in zip(*frames, strict=True):
         assert one.height == many.height > 1000
         pl.testing.assert_frame_equal(one, many, check_exact=False, rel_tol=1e-12, abs_tol=1e-12)
+    total = frames[1][0].filter((pl.col("banner") == "total") & pl.col("se_change").is_not_null())
+    previous = frames[1][0].filter((pl.col("banner") == "total") & (pl.col("wave") != "W3")).select(
+        pl.col("wave").replace({"W1": "W2", "W2": "W3"}).alias("wave"), "table", "row", "statistic",
+        pl.col("se").alias("se_b"))
+    joined = total.join(previous, on=["wave", "table", "row", "statistic"])
+    independent = (joined["se"] ** 2 + joined["se_b"] ** 2).sqrt()
+    assert joined.height > 50
+    # independent waves: the sum of the variances; stacked: a PSU in both waves adds its covariance
+    assert ((joined["se_change"] - independent).abs() > 1e-9).any() == shared_psus
 
 
 def _check_workbook(path: Path, cells: pl.DataFrame) -> None:
