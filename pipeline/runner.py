@@ -32,6 +32,7 @@ import polars as pl
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
 from pipeline.book.manifest import run_manifest
+from pipeline.book.source import unified_cells
 from pipeline.book.store import load_results, save_results
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
@@ -277,6 +278,7 @@ def run_study(
         options, study, calibrated=calibrated, replicate_adjustments=adjustments,
         replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
     )
+    tables = None
     if tabulation is not None:
         tables = tabulation.finish()
         with progress.step("writing the banner exports", quiet=quiet):
@@ -285,12 +287,16 @@ def run_study(
                 write_workbook(tables, study, exports[4])
         variance = (*variance, tables.chance.sentence(), *tables.notes)
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
-    save_results(study, cells, weighting=weighting, variance=variance, level=options.level, manifest=manifest)
+    book_cells = unified_cells(cells, tables.cells if tables is not None else None)
+    tests = tables.tests if tables is not None else None
+    save_results(study, book_cells, tests=tests, weighting=weighting, variance=variance, level=options.level,
+                 manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
         write_cells(tidy_cells(cells), out_path, study.path.stem)
         return render_book(
             study,
-            cells,
+            book_cells,
+            tests=tests,
             out_path=out_path,
             weighting=weighting,
             variance=variance,
@@ -317,6 +323,7 @@ def rebuild_book(
         return render_book(
             study,
             stored.cells,
+            tests=stored.tests,
             out_path=out_path,
             weighting=stored.weighting,
             variance=stored.variance,

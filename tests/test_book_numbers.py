@@ -59,9 +59,9 @@ def test_integer_valued_statistics_print_without_decimals() -> None:
 def test_balance_scores_print_signed_whole_points_with_their_interval() -> None:
     from pipeline.book.tables import format_cell
 
-    row = {"row_kind": "balance", "base": 200, "count": None, "estimate": 12.4, "ci_low": -3.6, "ci_high": 20.5,
-           "se": 4.1, "deff": 1.3, "value": None}
-    cell = format_cell(row, weighted=True)
+    row = {"statistic": "balance", "base_unweighted": 200, "estimate": 0.124, "ci_low": -0.036, "ci_high": 0.205,
+           "se": 0.041, "deff": 1.3, "flags": ""}  # an export row: shares, printed as points
+    cell = format_cell(row, None, "balance", weighted=True)
     assert (cell.text, cell.interval, cell.se, cell.deff) == ("+12", "-4 to +21", "4.10", "1.30")
-    assert format_cell({**row, "estimate": 0.2, "value": None}, weighted=True).text == "0"
-    assert format_cell({**row, "value": -7.0}, weighted=False).text == "-7"
+    assert format_cell({**row, "estimate": 0.002}, None, "balance", weighted=True).text == "0"
+    assert format_cell({**row, "estimate": -0.07, "se": None}, None, "balance", weighted=False).text == "-7"

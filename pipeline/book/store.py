@@ -1,8 +1,9 @@
 """What the book is rendered from, kept so `wavebook book` can re-render without recomputing.
 
 `save_results(study, ...)` writes, into `results_folder(study)` (`<database stem>_results/`
-beside the study database): `cells.parquet` (the tidy cell frame the book shows: aggregates
-only, no respondent rows or ids) and `book.json` (the weighting summary, the standard-error
+beside the study database): `cells.parquet` (the unified cells frame the book shows,
+`pipeline.book.source`: aggregates only, no respondent rows or ids), `tests.parquet` (the tests
+export, when the run made banner tables) and `book.json` (the weighting summary, the standard-error
 sentences, the confidence level and the run manifest). Both are written atomically through
 `pipeline.outputs` (a failed write is a cannot-write error naming the file).
 `load_results(study)` reads them back; a missing or unreadable folder is a named DataError.
@@ -22,6 +23,7 @@ from pipeline.errors import DataError, Problem
 from pipeline.staging.spec import Study
 
 CELLS_FILE = "cells.parquet"
+TESTS_FILE = "tests.parquet"
 BOOK_FILE = "book.json"
 
 
@@ -30,6 +32,7 @@ class StoredResults:
     """The stored inputs of the book."""
 
     cells: pl.DataFrame
+    tests: pl.DataFrame | None
     weighting: WeightingSection | None
     variance: tuple[str, ...]
     level: float
@@ -46,6 +49,7 @@ def save_results(
     study: Study,
     cells: pl.DataFrame,
     *,
+    tests: pl.DataFrame | None = None,
     weighting: WeightingSection | None,
     variance: tuple[str, ...],
     level: float,
@@ -54,6 +58,10 @@ def save_results(
     """Store the book's inputs; returns the folder."""
     folder = results_folder(study)
     write_output(folder / CELLS_FILE, cells.write_parquet)
+    if tests is not None:
+        write_output(folder / TESTS_FILE, tests.write_parquet)
+    elif (folder / TESTS_FILE).exists():
+        (folder / TESTS_FILE).unlink()
     payload = {
         "weighting": asdict(weighting) if weighting is not None else None,
         "variance": list(variance),
@@ -75,6 +83,7 @@ def load_results(study: Study) -> StoredResults:
         )
     try:
         cells = pl.read_parquet(cells_path)
+        tests = pl.read_parquet(folder / TESTS_FILE) if (folder / TESTS_FILE).is_file() else None
         payload = json.loads(book_path.read_text(encoding="utf-8"))
     except (OSError, ValueError, pl.exceptions.PolarsError) as exc:
         raise DataError(
@@ -96,6 +105,7 @@ def load_results(study: Study) -> StoredResults:
         )
     return StoredResults(
         cells=cells,
+        tests=tests,
         weighting=weighting,
         variance=tuple(payload.get("variance", ())),
         level=float(payload.get("level", 0.95)),
