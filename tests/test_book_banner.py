@@ -240,3 +240,35 @@ def test_hostile_banner_labels_render_as_text(demo_study: Path, tmp_path: Path) 
     heads = [_text(th) for th in table.find("thead").iter("th")]
     assert f"Sex {image}" in heads and f"Man {script} A" in heads
     assert "<img src=x" not in path.read_text(encoding="utf-8")
+
+
+def _svg(element: Element, name: str) -> list[Element]:
+    return [e for e in element.iter() if isinstance(e.tag, str) and e.tag == f"{{http://www.w3.org/2000/svg}}{name}"]
+
+
+def test_trend_panels_mark_the_exported_wave_changes_and_a_mean_has_a_visible_band(root: Element, export,
+                                                                                  demo_study: Path) -> None:
+    study = load_spec(demo_study)
+    (trends,) = [s for s in root.iter("section") if s.get("id") == "trends"]
+    groups = {_text(g.find("h3")): g for g in trends.iter("div") if "trend-group" in _classes(g)}
+    total = export.filter((pl.col("banner") == TOTAL) & pl.col("statistic").is_in(["percent", "mean"]))
+    marks_seen = 0
+    for name, variable in study.variables.items():
+        if variable.label not in groups:
+            continue
+        for panel in groups[variable.label].iter("figure"):
+            title = _text(panel.find("figcaption").find("span"))
+            rows = total.filter((pl.col("table") == name) & (pl.col("row_label") == title)).sort(
+                pl.col("wave").replace_strict({w.id: i for i, w in enumerate(study.waves)}))
+            expected = [{"up": UP, "down": DOWN}.get(m or "", "") for m in rows["change_mark"].to_list()]
+            shown = []
+            for point in _svg(panel, "g"):
+                texts = [t for t in _svg(point, "text") if t.get("class") == "mark"]
+                shown.append(_text(texts[0]) if texts else "")
+            assert shown == expected, (name, title)
+            marks_seen += sum(1 for m in shown if m)
+            if title == "Mean":
+                (band,) = _svg(panel, "polygon")
+                ys = [float(p.split(",")[1]) for p in band.get("points").split()]
+                assert max(ys) - min(ys) >= 8  # the interval band is visible, not a hairline
+    assert marks_seen > 0
