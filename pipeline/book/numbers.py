@@ -26,6 +26,8 @@ def half_up(number: float, decimals: int = 0) -> float:
 
     The scaled value is first rounded to 9 places so that binary noise (0.25 stored a hair under)
     does not flip a half down."""
+    if decimals == 0:
+        return float(math.floor(round(number, 9) + 0.5))
     scale = 10**decimals
     return math.floor(round(number * scale, 9) + 0.5) / scale
 
@@ -35,9 +37,10 @@ def percent_decimals(*values: float | None) -> int:
 
     One decimal when a value strictly between 0 and 100 would round to 0 or 100, or when the
     first two values given after the estimate (the interval's ends) differ but round equal."""
-    present = [v for v in values if v is not None and math.isfinite(v)]
-    if any(half_up(v) in (0.0, 100.0) and 0.0 < v < 100.0 for v in present):
-        return 1
+    for v in values:
+        # half_up(v) is 0 or 100 exactly when round(v, 9) < 0.5 or >= 99.5 (for 0 < v < 100)
+        if v is not None and 0.0 < v < 100.0 and not 0.5 <= round(v, 9) < 99.5:
+            return 1
     if len(values) == 3 and values[1] is not None and values[2] is not None:
         low, high = values[1], values[2]
         if low < high and half_up(low) == half_up(high):

@@ -262,7 +262,8 @@ def build_context(
     marks = _marks(study) if (cells["banner"] != TOTAL).any() else None
     labels = {name: v.label for name, v in study.variables.items()}
     independence = _independence_lines(tests, labels, marks)
-    by_table = {key[0]: frame.to_dicts() for key, frame in cells.partition_by("table", as_dict=True).items()}
+    by_table = {key[0]: frame.to_dicts() for key, frame in _shown(cells, wave_order).partition_by(
+        "table", as_dict=True).items()}
     sections = []
     for index, (name, variable) in enumerate(study.variables.items()):
         frame_rows = by_table.get(name, [])
@@ -318,6 +319,16 @@ def build_context(
         marks=marks,
     )
     return paged(context, single_file=single_file)
+
+
+def _shown(cells: pl.DataFrame, wave_order: Sequence[str]) -> pl.DataFrame:
+    """The rows the book shows: the Total of every wave, and each table's banner columns in the
+    latest wave that has them (earlier waves' banner columns are in the export, not the book)."""
+    position = pl.col("wave").replace_strict({w: i for i, w in enumerate(wave_order)}, default=-1,
+                                             return_dtype=pl.Int64)
+    banner = pl.col("banner") != TOTAL
+    latest = pl.when(banner).then(position).max().over("table", "banner")
+    return cells.filter(~banner | (position == latest))
 
 
 def _banner_tables(

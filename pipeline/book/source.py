@@ -16,6 +16,7 @@ stage writes it itself.
 from __future__ import annotations
 
 import re
+from functools import lru_cache
 
 import polars as pl
 
@@ -54,6 +55,7 @@ def check_cells(cells: pl.DataFrame) -> pl.DataFrame:
     return out.with_columns(pl.col(*TEXT_DEFAULTS, "flags").fill_null(""))
 
 
+@lru_cache(maxsize=256)
 def flag_set(flags: str | None) -> frozenset[str]:
     """The flags of a cell as a set of names with underscores ("low-base;set-by-weighting" and
     "low_base,set_by_weighting" give the same set)."""

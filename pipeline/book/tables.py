@@ -215,16 +215,8 @@ def _se_text(kind: str, se: float | None) -> str | None:
     return f"{se:,.2f}"
 
 
-def _scaled(row: Mapping, name: str) -> float | None:
-    """A number of an export row in the book's units: shares as percent (or points), else as is."""
-    value = row.get(name)
-    if value is None:
-        return None
-    return 100 * value if row["statistic"] in ("percent", "balance") else value
-
-
 def _marks(row: Mapping) -> dict:
-    change = row.get("change_mark") or None
+    change = row.get("change_mark")
     return {
         "letters": row.get("sig_higher_than") or None,
         "lighter": (row.get("sig_higher_than_lighter") or "").lower() or None,
@@ -234,25 +226,32 @@ def _marks(row: Mapping) -> dict:
 
 def format_cell(row: Mapping | None, count: Mapping | None, kind: str, *, weighted: bool) -> Cell:
     """Format one cell from its export row (None: no figures for that column) and the row of its
-    unweighted count (statistic "count" of the same row and column, when there is one)."""
+    unweighted count (statistic "count" of the same row and column, when there is one). Shares
+    (percentages, balance scores) print as percent and points."""
     if row is None:
         return Cell(text=NO_DATA)
     flags = flag_set(row.get("flags"))
+    estimate = row.get("estimate")
     if "suppressed" in flags:
         return Cell(text=SUPPRESSED, suppressed=True)
-    if "empty_column" in flags or row.get("estimate") is None:
+    if estimate is None or "empty_column" in flags:
         return Cell(text=NO_DATA)
-    flag = base_flag(flags)
-    marks = _marks(row)
-    count_shown = count_text(count["estimate"]) if count is not None and count.get("estimate") is not None else None
-    effective = count_text(row["base_effective"]) if row.get("base_effective") is not None else None
     statistic = row["statistic"]
-    estimate, low, high, se = (_scaled(row, k) for k in ("estimate", "ci_low", "ci_high", "se"))
-    precise = weighted and se is not None
     if kind == "base":
         return Cell(text=count_text(estimate))
+    flag = base_flag(flags) if flags else None
     if statistic == "count":
         return Cell(text=count_text(estimate), base_flag=flag)
+    marks = _marks(row)
+    low, high, se = row.get("ci_low"), row.get("ci_high"), row.get("se")
+    if statistic in ("percent", "balance"):
+        estimate = 100 * estimate
+        low = None if low is None else 100 * low
+        high = None if high is None else 100 * high
+        se = None if se is None else 100 * se
+    precise = weighted and se is not None
+    base_effective = row.get("base_effective")
+    effective = count_text(base_effective) if base_effective is not None else None
     if statistic == "balance":
         interval = f"{balance_text(low)} to {balance_text(high)}" if precise and low is not None and high is not None else None
         return Cell(
@@ -261,6 +260,8 @@ def format_cell(row: Mapping | None, count: Mapping | None, kind: str, *, weight
             low=low if precise else None, high=high if precise else None, **marks,
         )
     if statistic == "percent":
+        shown = count.get("estimate") if count is not None else None
+        count_shown = count_text(shown) if shown is not None else None
         if kind in UNTESTED_KINDS or not precise:
             text, _ = percent_texts(estimate)
             return Cell(text=text, base_flag=flag, count=count_shown, estimate=estimate, **marks)
