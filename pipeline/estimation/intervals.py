@@ -15,15 +15,15 @@ import numpy as np
 
 def critical_value(level: float, df: float | np.ndarray | None) -> np.ndarray:
     """Two-sided critical value t_{df, 1-(1-level)/2} (normal quantile when df is None, inf or <= 0)."""
-    from scipy import stats
+    from scipy import special  # the distribution functions themselves (scipy.stats is slow to import)
 
     _check_level(level)
     p = 1.0 - (1.0 - level) / 2.0
     if df is None:
-        return np.asarray(stats.norm.ppf(p))
+        return np.asarray(special.ndtri(p))
     df_arr = np.asarray(df, dtype=np.float64)
     usable = np.isfinite(df_arr) & (df_arr > 0)
-    return np.where(usable, stats.t.ppf(p, np.where(usable, df_arr, 1.0)), stats.norm.ppf(p))
+    return np.where(usable, special.stdtrit(np.where(usable, df_arr, 1.0), p), special.ndtri(p))
 
 
 def t_interval(
@@ -92,7 +92,7 @@ def korn_graubard_interval(
     limit is 1 - (alpha/2)^(1/n*_df), the Beta(1, n*_df) quantile. NaN when p, se or n is missing
     or n < 1.
     """
-    from scipy import stats
+    from scipy import special
 
     _check_level(level)
     p = np.asarray(p, dtype=np.float64)
@@ -106,8 +106,8 @@ def korn_graubard_interval(
     x = np.where(bad, 0.5, np.clip(p, 0.0, 1.0) * n_df)
     alpha = 1.0 - level
     at_zero, at_one = x <= 0, x >= n_df
-    low = np.where(at_zero, 0.0, stats.beta.ppf(alpha / 2, np.where(at_zero, 1.0, x), n_df - x + 1))
-    high = np.where(at_one, 1.0, stats.beta.ppf(1 - alpha / 2, x + 1, np.where(at_one, 1.0, n_df - x)))
+    low = np.where(at_zero, 0.0, special.betaincinv(np.where(at_zero, 1.0, x), n_df - x + 1, alpha / 2))
+    high = np.where(at_one, 1.0, special.betaincinv(x + 1, np.where(at_one, 1.0, n_df - x), 1 - alpha / 2))
     return np.where(bad, np.nan, low), np.where(bad, np.nan, high)
 
 

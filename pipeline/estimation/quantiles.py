@@ -71,18 +71,32 @@ class WeightedCdf:
 def weighted_cdfs(
     frame: pl.DataFrame, *, value: str, weight: str, domains: dict[str, pl.Expr]
 ) -> dict[str, WeightedCdf]:
-    """The weighted CDF of `value` in each domain (label -> 0/1 expression); rows with y missing are left out of F."""
+    """The weighted CDF of `value` in each domain (label -> boolean expression; a null counts as
+    outside); rows with y missing or a weight that is not positive are left out of F.
+
+    One grouped pass for all domains: the rows are grouped by the value once and each domain's
+    weight is summed per value, W_d(y) = sum_i w_i d_i 1[y_i = y]; each domain keeps the values it
+    holds (W_d(y) > 0) and its CDF is their running sum.
+    """
+    if not domains:
+        return {}
+    names = {label: f"__domain_{k}" for k, label in enumerate(domains)}
+    w = pl.col(weight).cast(pl.Float64)
+    agg = (
+        frame.lazy()
+        .filter(pl.col(value).is_not_null() & (pl.col(weight) > 0))
+        .group_by(value)
+        .agg(pl.when(expr.fill_null(False)).then(w).otherwise(0.0).sum().alias(names[label])
+             for label, expr in domains.items())
+        .sort(value)
+        .collect()
+    )
+    values = agg[value].cast(pl.Float64).to_numpy()
     out = {}
-    for label, expr in domains.items():
-        agg = (
-            frame.filter(expr & pl.col(value).is_not_null() & (pl.col(weight) > 0))
-            .group_by(value)
-            .agg(pl.col(weight).cast(pl.Float64).sum().alias("w"))
-            .sort(value)
-        )
-        out[label] = WeightedCdf(
-            values=agg[value].cast(pl.Float64).to_numpy(), cumulative=np.cumsum(agg["w"].to_numpy())
-        )
+    for label, name in names.items():
+        weights = agg[name].to_numpy()
+        held = weights > 0
+        out[label] = WeightedCdf(values=values[held], cumulative=np.cumsum(weights[held]))
     return out
 
 

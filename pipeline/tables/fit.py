@@ -183,9 +183,14 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
     cdfs: dict[str, dict[str, object]] = {}
     if medians:
         cdf_weight = inputs.final_weight or weight
+        wanted: dict[str, dict[str, pl.Expr]] = {}  # column -> domain -> indicator: one CDF pass per column
+        for k, (column, d, _) in medians.items():
+            wanted.setdefault(column, {})[plan.cells[k].domain] = d
+        found = {column: weighted_cdfs(frame, value=column, weight=cdf_weight, domains=domains)
+                 for column, domains in wanted.items()}
         for k, (column, d, interpolated) in medians.items():
             cell = plan.cells[k]
-            cdf = weighted_cdfs(frame, value=column, weight=cdf_weight, domains={cell.domain: d})[cell.domain]
+            cdf = found[column][cell.domain]
             cdfs.setdefault(cell.variable, {})[cell.domain] = cdf
             y = pl.col(column)
             if interpolated and cdf.total > 0:

@@ -28,7 +28,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 
 # a mean generalized design effect below this is a table the weighting calibrates to (e.g. the cells of
@@ -92,5 +92,5 @@ def rao_scott(p: np.ndarray, cov: np.ndarray, n: int, design_df: float) -> RaoSc
     a2 = max(float(np.trace(deffs @ deffs)) / k / mean_deff**2 - 1.0, 0.0)
     nu = k / (1.0 + a2)
     statistic = pearson / (k * mean_deff)
-    p_value = float(stats.f.sf(statistic, nu, nu * design_df))
+    p_value = float(special.fdtrc(nu, nu * design_df, statistic))  # F survival function
     return RaoScott(pearson, mean_deff, a2, statistic, nu, nu * design_df, p_value)
