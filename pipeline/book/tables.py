@@ -12,7 +12,7 @@ Each table section has up to two tables:
   mark against the previous wave; under it the Rao-Scott test of independence of each break.
 
 A row's `Cell` is one line, the figure; its precision (interval, standard error, design effect,
-count or effective base) sits in the row's `DetailRow`s, which the page hides until the reader
+count) sits in the row's `DetailRow`s, which the page hides until the reader
 switches them on. The legend under each table explains every symbol the table uses, once, and
 the banner table's legend always states the test level(s) and adjustment.
 
@@ -95,8 +95,7 @@ class ColumnGroup:
 class Cell:
     """One cell: the figure as text (one line) and what the detail rows and charts need.
 
-    base_flag: None, "low" or "very-low"; interval, se, deff, count, effective: text for the detail
-    rows; letters: the letters of the columns this cell is significantly higher than at the first
+    base_flag: None, "low" or "very-low"; interval, se, deff, count: text for the detail rows; letters: the letters of the columns this cell is significantly higher than at the first
     level, lighter: those at the second level only (printed lowercase); change: "up" or "down"
     against the wave before; estimate, low, high: the numbers behind the figure (for the charts,
     in percent for percentages); suppressed: the figure is withheld."""
@@ -107,7 +106,6 @@ class Cell:
     se: str | None = None
     deff: str | None = None
     count: str | None = None
-    effective: str | None = None
     letters: str | None = None
     lighter: str | None = None
     change: str | None = None
@@ -119,7 +117,7 @@ class Cell:
 
 @dataclass(frozen=True)
 class DetailRow:
-    """A precision row under a table row: kind ("interval", "se", "deff", "count", "effective"), label, texts per column."""
+    """A precision row under a table row: kind ("interval", "se", "deff", "count"), label, texts per column."""
 
     kind: str
     label: str
@@ -250,13 +248,11 @@ def format_cell(row: Mapping | None, count: Mapping | None, kind: str, *, weight
         high = None if high is None else 100 * high
         se = None if se is None else 100 * se
     precise = weighted and se is not None
-    base_effective = row.get("base_effective")
-    effective = count_text(base_effective) if base_effective is not None else None
     if statistic == "balance":
         interval = f"{balance_text(low)} to {balance_text(high)}" if precise and low is not None and high is not None else None
         return Cell(
             text=balance_text(estimate), base_flag=flag, interval=interval, se=_se_text("balance", se) if precise else None,
-            deff=ratio_text(row.get("deff")), effective=effective, estimate=estimate,
+            deff=ratio_text(row.get("deff")), estimate=estimate,
             low=low if precise else None, high=high if precise else None, **marks,
         )
     if statistic == "percent":
@@ -272,14 +268,14 @@ def format_cell(row: Mapping | None, count: Mapping | None, kind: str, *, weight
         text, interval = percent_texts(estimate, low, high)
         return Cell(
             text=text, base_flag=flag, interval=interval, se=_se_text(kind, se), deff=ratio_text(row.get("deff")),
-            count=count_shown, effective=effective, estimate=estimate, low=low, high=high, **marks,
+            count=count_shown, estimate=estimate, low=low, high=high, **marks,
         )
     code = STATISTIC_CODES.get(statistic, statistic)
     if precise and code in ESTIMATED_STATISTICS:
         interval = statistic_interval(code, low, high) if low is not None and high is not None else None
         return Cell(
             text=statistic_number(code, estimate), base_flag=flag, interval=interval, se=_se_text(kind, se),
-            deff=ratio_text(row.get("deff")), effective=effective, estimate=estimate, low=low, high=high, **marks,
+            deff=ratio_text(row.get("deff")), estimate=estimate, low=low, high=high, **marks,
         )
     return Cell(text=statistic_number(code, estimate), base_flag=flag, estimate=estimate, **marks)
 
@@ -295,7 +291,6 @@ DETAIL_KINDS = (
     ("se", "Standard error", "se"),
     ("deff", "Design effect", "deff"),
     ("count", "Respondents (n)", "count"),
-    ("effective", "Effective base (n ÷ design effect)", "effective"),
 )
 
 
@@ -485,7 +480,7 @@ def banner_table(
         row_cells = tuple(
             format_cell(cells.get(wave, b, c, row, statistic), None, kind, weighted=weighted) for b, c in spec.keys
         )
-        details = _details(row_cells, level_label=level_label, kinds=("interval", "se", "deff", "effective"))
+        details = _details(row_cells, level_label=level_label, kinds=("interval", "se", "deff"))
         rows.append(TableRow(kind=kind, label=label, cells=row_cells, details=details))
     legend = _banner_legend(rows, spec, wave_label, previous_label, weighted=weighted, level_label=level_label,
                             marks=marks)
@@ -506,7 +501,7 @@ def _banner_legend(rows: Sequence[TableRow], spec: BannerColumns, wave_label: st
         (f"{wave_label}: weighted percentages of each column's base" if weighted else
          f"{wave_label}: unweighted percentages of each column's base")
         + "; bases count respondents. “Show precision” adds each figure's "
-        + f"{level_label} interval, standard error, design effect and effective base.",
+        + f"{level_label} interval, standard error and design effect (n is the column's base).",
         f"Each column has a letter. Within each break every pair of columns is tested (two-sided t test on "
         f"the design-based standard error of the difference), at the {first} level"
         + (f" and, lighter, at the {marks.level_text(1)} level" if len(marks.levels) > 1 else "")
