@@ -1,7 +1,7 @@
 """Benchmark: the whole study run (stage, weigh, estimates, book) against DuckDB's typed load of the same file.
 
 Usage: python bench/bench_study_run.py [--rows 1000000] [--waves 1] [--variance taylor]
-                                       [--memory-budget 2GB] [--folder DIR]
+                                       [--memory-budget 2GB] [--folder DIR] [--banner]
 
 Generates a seeded invented study (the staging benchmark's 60 columns and 56 codebook variables,
 `bench_staging.write_study`, one file per wave with its own seed), a 3-margin rake step (region,
@@ -13,9 +13,9 @@ fresh child process so its peak resident memory (ru_maxrss, DuckDB included) is 
                 sniffer): the reference every other figure is divided by
   stage         `stage_wave` of every wave
   weigh         `fit_wave` + `store` of every wave (as `wavebook weigh`)
-  estimates     the estimation part of `runner.weigh_and_estimate` (its own timing; the process
-                also weighs, so its peak RSS covers both)
-  book          the tidy export and the book, in the same process (peak RSS up to its end)
+  estimates     the estimation part of `runner.weigh_and_estimate` (its own timing, the banner
+                tables included with --banner; the process also weighs, so its peak RSS covers both)
+  book          the cells export and the book, in the same process (peak RSS up to its end)
   run           `wavebook run --restage --quiet` as a command (everything, from the raw files)
 
 Prints figures and ratios only; nothing is asserted (the targets of issue 10 are printed beside
@@ -48,8 +48,12 @@ TARGETS = {  # issue 10
 }
 
 
-def write_run_study(folder: Path, rows: int, waves: int, *, variance: str) -> Path:
-    """The staging benchmark's study with `waves` waves (seeds 20260301 + k), a rake step and [variance]."""
+BANNER = ("q02", "q03", "q04", "q05", "aware")  # 4 single-choice breaks of 5 codes and 5 items: 25 columns
+
+
+def write_run_study(folder: Path, rows: int, waves: int, *, variance: str, banner: bool = False) -> Path:
+    """The staging benchmark's study with `waves` waves (seeds 20260301 + k), a rake step and [variance];
+    with `banner`, a `[tables]` banner of `BANNER` (every other variable a stub, every test)."""
     import numpy as np
     import polars as pl
 
@@ -75,6 +79,8 @@ def write_run_study(folder: Path, rows: int, waves: int, *, variance: str) -> Pa
         'targets = "targets.csv"\ntolerance = 1e-8\nmax_iterations = 200\n'
         f'[variance]\nmethod = "{variance}"\nlevel = 0.95\n'
     )
+    if banner:
+        extra += f"[tables]\nbanner = [{', '.join(chr(34) + b + chr(34) for b in BANNER)}]\nsignificance = 0.05\n"
     spec_path.write_text(head + wave_tables + design + extra, encoding="utf-8")
     return spec_path
 
@@ -124,14 +130,14 @@ def _weigh(spec_path: str, results: multiprocessing.Queue) -> None:
 
 
 def _estimates_and_book(spec_path: str, memory_budget: str | None, results: multiprocessing.Queue) -> None:
-    """Toplines, weighting and estimates (`runner.weigh_and_estimate`), then the export and the book."""
+    """Toplines, weighting and estimates (`runner.weigh_and_estimate`, banner tables included), then the
+    export and the book."""
     from pipeline import runner
     from pipeline.book import render_book
     from pipeline.book import variance_lines, weighting_section
-    from pipeline.tables.cells_export import tidy_cells, write_cells
     from pipeline.staging.database import open_database
     from pipeline.staging.spec import load_spec
-    from pipeline.tables.topline import unweighted_toplines
+    from pipeline.tables import export_cells, unweighted_toplines, write_cells
 
     study = load_spec(spec_path)
     options = runner.variance_options(study)
@@ -142,13 +148,14 @@ def _estimates_and_book(spec_path: str, memory_budget: str | None, results: mult
     from pipeline.memory import parse_size
 
     budget = {} if memory_budget is None else {"memory_budget": parse_size(memory_budget)}
-    cells, reports, adjustments = runner.weigh_and_estimate(study, cells, options, quiet=True, timings=timings,
-                                                            **budget)
+    cells, reports, _, tables = runner.weigh_and_estimate(study, cells, options, quiet=True, timings=timings,
+                                                          **budget)
     figures = {"estimates": (timings["estimates"], _peak_mib())}
     start = time.perf_counter()
     out = runner.default_book_path(study)
-    write_cells(tidy_cells(cells), out, study.path.stem)
-    render_book(study, cells, out_path=out, weighting=weighting_section(study, reports),
+    export = export_cells(cells, tables)
+    write_cells(export, out, study.path.stem)
+    render_book(study, export, tests=tables.tests, out_path=out, weighting=weighting_section(study, reports),
                 variance=variance_lines(options, study, calibrated=True), level=options.level)
     figures["book"] = (time.perf_counter() - start, _peak_mib())
     results.put(figures)
@@ -211,13 +218,16 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--memory-budget", help="passed to `wavebook run --memory-budget` (default: its own)")
     parser.add_argument("--folder", type=Path, help="where to write the study (default: a temp folder)")
     parser.add_argument("--run-only", action="store_true", help="time the DuckDB load and the whole run only")
+    parser.add_argument("--banner", action="store_true",
+                        help=f"add a [tables] banner of {', '.join(BANNER)} (25 columns, every test) to the study")
     args = parser.parse_args(argv)
     with tempfile.TemporaryDirectory(prefix="wavebook-run-bench-") as tmp:
         folder = args.folder or Path(tmp)
         start = time.perf_counter()
-        spec_path = write_run_study(folder, args.rows, args.waves, variance=args.variance)
+        spec_path = write_run_study(folder, args.rows, args.waves, variance=args.variance, banner=args.banner)
         print(f"generated {args.waves} wave(s) of {args.rows:,} rows x 60 columns in {time.perf_counter() - start:.1f} s;"
-              f" variance {args.variance}")
+              f" variance {args.variance}"
+              + (f"; banner {', '.join(BANNER)}" if args.banner else ""))
         print(report(measure(spec_path, memory_budget=args.memory_budget, run_only=args.run_only)))
     return 0
 

@@ -7,15 +7,16 @@ order, are small functions so later stages slot in between staging and rendering
   2. `waves_to_stage` + `stage_wave`     each wave whose raw file changed (SHA-256) or all with restage
   3. `unweighted_toplines`               the tidy long cell frame (counts and bases)
   4. `fit_wave` + `store`                each staged wave weighted; weights and diagnostics stored
-  5. `wave_estimates`                    weighted estimates, standard errors, intervals and design
-                                         effects joined onto the same cells
-  5b. `pipeline.tables.Tabulation`       with `[tables]`: banner cells and tests of each wave from
-                                         the same weighted rows; `<stem>_banner_cells` / `<stem>_tests`
-                                         exports beside the book
-  6. `tidy_cells` + `write_cells`        the tidy export, `<spec stem>_cells.parquet` / `.csv`
-                                         beside the book (`pipeline.tables.cells_export`)
-  7. `save_results`                      the cells and the book's other inputs stored
-                                         (`wavebook book` re-renders from them)
+  5. `pipeline.tables.Tabulation`       per wave and batch of variables, from one read of the
+                                         batch's columns: weighted estimates, standard errors,
+                                         intervals and design effects joined onto the same cells;
+                                         with `[tables]` the banner cells and tests; across waves
+                                         the Total's (and each banner cell's) change
+  6. `export_cells` + `write_cells`      the one cells export, `<spec stem>_cells.parquet` / `.csv`
+                                         beside the book (`pipeline.tables.cells_export`); with
+                                         `[tables]` also `<stem>_tests` (and the workbook)
+  7. `save_results`                      the cells, the export, the tests and the book's other
+                                         inputs stored (`wavebook book` re-renders from them)
   8. `render_book`                       the HTML book and its manifest.json, written atomically
 """
 
@@ -27,36 +28,39 @@ import time
 from pathlib import Path
 
 import duckdb
+import numpy as np
 import polars as pl
 
 from pipeline import progress
 from pipeline.book import render_book, variance_lines, weighting_section
+from pipeline.book.weighting import SUPPLIED_WEIGHT_TOLERANCE, SuppliedWave
 from pipeline.book.manifest import run_manifest
-from pipeline.book.source import unified_cells
 from pipeline.book.store import load_results, save_results
 from pipeline.errors import DataError, Problem, SpecError
 from pipeline.estimation.options import VarianceOptions, parse_variance
 from pipeline.memory import DEFAULT_BUDGET, variable_batches
 from pipeline.outputs import check_output, file_sha256, study_inputs
 from pipeline.staging.database import column_types, load_responses, open_database, staged_waves
+from pipeline.staging.replicate_columns import staged_columns
 from pipeline.staging.spec import Study, load_spec
 from pipeline.staging.stage import stage_wave
 from pipeline.staging.wave_columns import wave_signature
 from pipeline.tables import (
     ESTIMATE_SCHEMA,
+    BannerTables,
     RememberedReplay,
     Tabulation,
     cells_export_paths,
+    export_cells,
     export_paths,
     tables_spec,
-    tidy_cells,
     unweighted_toplines,
-    wave_estimates,
     write_cells,
     write_exports,
     write_workbook,
 )
-from pipeline.weighting import WeightingReport
+from pipeline.weighting import FittedRecipe, WeightingReport
+from pipeline.weighting.base import design_base_weights
 from pipeline.weighting.store import fit_wave, store, weighting_columns
 
 
@@ -138,74 +142,115 @@ def weigh_and_estimate(
     timings: dict[str, float] | None = None,
     memory_budget: int = DEFAULT_BUDGET,
     tabulation: Tabulation | None = None,
-) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]]]:
+    supplied: dict[str, SuppliedWave] | None = None,
+) -> tuple[pl.DataFrame, dict[str, WeightingReport], dict[str, dict[str, int]], BannerTables]:
     """Weight every staged wave (weights and diagnostics stored), then estimate every cell.
 
-    With `tabulation`, each weighted wave is also given to it (banner tables, `pipeline.tables`).
-
     Returns the cells with the estimate columns of `pipeline.tables.weighted_cells` joined on
-    (wave, variable, row_order), the weighting report of each wave, and for replicate methods
-    each wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`). Weighting
-    warnings go to stderr. Each wave's rows are read from the database once: the weighting columns
-    first (`weighting_columns`, kept for the whole wave), then the answer columns in the batches of
-    variables that fit `memory_budget` bytes (`pipeline.memory.variable_batches`), each batch
-    estimated in one grouped pass over the wave's respondents.
+    (wave, variable, row_order), the weighting report of each wave, for replicate methods each
+    wave's replicate re-weighting counts (`FittedRecipe.replicate_adjustments`), and the tables
+    (`Tabulation.finish`: the Total's changes, and with `[tables]` the banner cells and tests).
+    Weighting warnings go to stderr. Each wave's rows are read from the database once: the
+    weighting columns and the banner's break columns first (kept for the whole wave), then the
+    answer columns in the batches of variables that fit `memory_budget` bytes
+    (`pipeline.memory.variable_batches`); each batch is given to `tabulation` (default: a new
+    `Tabulation` of the study's `[tables]`), which estimates its toplines in one grouped pass and
+    its banner cells in another. With `design.same_psus_across_waves` each batch's columns of the
+    earlier wave it is stacked with are read again beside it (and the batches are sized for the
+    three frames: the two waves and the stacked one).
     timings: when given, receives the seconds spent weighting ("weigh") and estimating
-    ("estimates"), summed over the waves (`bench/bench_study_run.py` reads them).
+    ("estimates", banner tables included), summed over the waves (`bench/bench_study_run.py` reads them).
+    supplied: when given and the replicate weights are supplied (`[variance] method = "supplied"`),
+    receives each wave's number of replicates and how far the study's weighting moved the data's
+    own weight (`supplied_weight_change`); a warning goes to stderr when that is beyond
+    SUPPLIED_WEIGHT_TOLERANCE, since the replicates do not carry the study's weighting.
     """
     clock = timings if timings is not None else {}
     clock.setdefault("weigh", 0.0)
     clock.setdefault("estimates", 0.0)
+    tabulation = tabulation if tabulation is not None else Tabulation(study, tables_spec(study), options)
     wave_ids = [w.id for w in study.waves if w.id in set(cells["wave"].to_list())]
     reports: dict[str, WeightingReport] = {}
     adjustments: dict[str, dict[str, int]] = {}
     estimates = [pl.DataFrame(schema=ESTIMATE_SCHEMA)]
+    replicate_columns = staged_columns(study) if options.supplied else []
+    kept_columns = list(dict.fromkeys(weighting_columns(study) + replicate_columns + tabulation.held_columns()))
     con = open_database(study)
     try:
         for wave_id in wave_ids:
             start = time.perf_counter()
             with progress.step(f"weighting wave {wave_id}", quiet=quiet):
-                held = load_responses(con, study, [wave_id], columns=weighting_columns(study))
+                held = load_responses(con, study, [wave_id], columns=kept_columns)
                 recipe, report = fit_wave(study, wave_id, con=con, data=held)
                 store(con, recipe, report)
             clock["weigh"] += time.perf_counter() - start
+            if options.supplied:
+                change = supplied_weight_change(held, study, recipe)
+                if supplied is not None:
+                    supplied[wave_id] = SuppliedWave(replicates=len(replicate_columns), weight_change=change)
+                if change > SUPPLIED_WEIGHT_TOLERANCE:
+                    print(_supplied_warning(study, wave_id, change).render(), file=sys.stderr)
             for warning in report.warnings:
                 print(warning.render(), file=sys.stderr)
             reports[wave_id] = report
             start = time.perf_counter()
             layout = cells.filter(pl.col("wave") == wave_id)
-            batches = variable_batches(study, held.height, memory_budget, held_columns=held.width)
+            frames = 3 if study.design.same_psus_across_waves else 1
+            batches = variable_batches(study, held.height * frames, memory_budget, held_columns=held.width)
             replay = RememberedReplay(recipe.replay)
             for k, names in enumerate(batches):
                 label = f"estimating wave {wave_id}" + (f" ({k + 1} of {len(batches)})" if len(batches) > 1 else "")
                 with progress.step(label, quiet=quiet):
                     part = _with_columns(con, study, wave_id, held, names)
-                    estimates.append(
-                        wave_estimates(part, study, recipe, layout, options, wave=wave_id, variables=names, replay=replay)
-                    )
-                    del part
+                    columns = list(dict.fromkeys(kept_columns + [c for n in names for c in study.variables[n].columns]))
+                    earlier = {w: load_responses(con, study, [w], columns=columns) for w in tabulation.stack_with(wave_id)}
+                    estimates.append(tabulation.add_wave(wave_id, part, recipe, layout, variables=names,
+                                                         replay=replay, earlier=earlier))
+                    del part, earlier
             del held
             clock["estimates"] += time.perf_counter() - start
-            if tabulation is not None:  # banner tables read the wave's rows whole (outside the memory budget)
-                with progress.step(f"banner tables of wave {wave_id}", quiet=quiet):
-                    responses = load_responses(con, study, [wave_id])
-                    tabulation.add_wave(wave_id, responses, recipe, layout)
-                    del responses
             for warning in recipe.warnings[len(report.warnings):]:  # raised while replaying replicates
                 print(warning.render(), file=sys.stderr)
-            if options.method != "taylor":
+            if options.method not in ("taylor", "supplied"):  # supplied replicates replay no recipe
                 adjustments[wave_id] = recipe.replicate_adjustments()
     finally:
         con.close()
+    start = time.perf_counter()
+    tables = tabulation.finish()
+    clock["estimates"] += time.perf_counter() - start
     joined = cells.join(pl.concat(estimates), on=["wave", "variable", "row_order"], how="left")
-    return joined, reports, adjustments
+    return joined, reports, adjustments, tables
+
+
+def supplied_weight_change(held: pl.DataFrame, study: Study, recipe: FittedRecipe) -> float:
+    """max_i |w_i / b_i - 1| over the weighted respondents: how far the study's final weight w moved
+    the data's own weight b (the base weight column, or 1 / the selection probability), the weight
+    supplied replicate weights were made for. 0 when the spec has no weighting steps."""
+    base, _ = design_base_weights(held, study)
+    kept = base[recipe.kept]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(kept > 0, recipe.weights / kept, np.where(recipe.weights > 0, np.inf, 1.0))
+    return float(np.max(np.abs(ratio - 1.0))) if len(ratio) else 0.0
+
+
+def _supplied_warning(study: Study, wave_id: str, change: float) -> Problem:
+    weight = study.design.base_weight or f"1 / {study.design.selection_probability}"
+    return Problem(
+        "supplied-replicates-weighting",
+        f"wave {wave_id}: the study's weighting steps change the data's own weight ({weight}) by up to "
+        f"{100 * change:.3g}%; the supplied replicate weights were made for that weight and do not carry the "
+        "study's weighting, so the standard errors may be too large or too small (above all for the variables "
+        "the weighting controls). Drop the [[weighting]] steps to estimate with the weight the replicates were "
+        "made for, or use a replicate method wavebook generates (it replays the weighting in every replicate)",
+        severity="warning", file=str(study.path), column=study.design.base_weight, value=f"{100 * change:.3g}%",
+    )
 
 
 def _with_columns(
     con: duckdb.DuckDBPyConnection, study: Study, wave_id: str, held: pl.DataFrame, names: list[str]
 ) -> pl.DataFrame:
-    """`held` (the wave's weighting columns) beside the columns of the variables `names` it lacks,
-    read from the database in the same row order (checked on the respondent ids)."""
+    """`held` (the wave's weighting and break columns) beside the columns of the variables `names`
+    it lacks, read from the database in the same row order (checked on the respondent ids)."""
     wanted = [c for n in names for c in study.variables[n].columns if c not in held.columns]
     # (routing flags come with every read: `load_responses` adds them)
     if not wanted:
@@ -233,16 +278,17 @@ def run_study(
     staging warning, go to stderr), computes the toplines of every staged wave, weights each
     wave and estimates every cell with its standard error, interval and design effect
     (`weigh_and_estimate`, within `memory_budget` bytes of respondent-level work), writes the tidy
-    cells export beside the book, stores the book's inputs (`save_results`) and renders the book to
-    `book_path(study, out, force=force)`, which is checked first (`single_file` as in
-    `render_book`), with the run manifest. With `[tables]`, the banner exports `<book stem>_banner_cells` / `_tests`
-    are written beside the book (checked first too), and with `xlsx` the workbook
+    cells export (`pipeline.tables.export_cells`: the Total of every variable and, with `[tables]`,
+    every banner cell) beside the book, stores the book's inputs (`save_results`) and renders the
+    book to `book_path(study, out, force=force)`, which is checked first (`single_file` as in
+    `render_book`), with the run manifest. With `[tables]`, the tests export `<book stem>_tests`
+    is written beside the book (checked first too), and with `xlsx` the workbook
     `<book stem>_tables.xlsx` (`pipeline.tables.workbook`). Raises SpecError / DataError with every problem found.
     """
     started = dt.datetime.now(dt.UTC)
     study = load_spec(spec_path)
     out_path = book_path(study, out, force=force)
-    for path in cells_export_paths(out_path, study.path.stem):  # the tidy export beside the book
+    for path in cells_export_paths(out_path, study.path.stem):  # the cells export beside the book
         check_output(path, study_inputs(study), force=force, option="--out")
     options = variance_options(study)
     spec = tables_spec(study)
@@ -268,34 +314,34 @@ def run_study(
             cells = unweighted_toplines(con, study)
         finally:
             con.close()
-    tabulation = Tabulation(study, spec, options) if spec is not None else None
-    cells, reports, adjustments = weigh_and_estimate(
-        study, cells, options, quiet=quiet, memory_budget=memory_budget, tabulation=tabulation
+    supplied: dict[str, SuppliedWave] = {}
+    cells, reports, adjustments, tables = weigh_and_estimate(
+        study, cells, options, quiet=quiet, memory_budget=memory_budget, tabulation=Tabulation(study, spec, options),
+        supplied=supplied,
     )
     calibrated = any(s.kind in ("poststratify", "rake", "calibrate") for r in reports.values() for s in r.steps)
     weighting = weighting_section(study, reports)
     variance = variance_lines(
         options, study, calibrated=calibrated, replicate_adjustments=adjustments,
         replicates={w: options.replicates or 500 for w in adjustments} if options.method == "bootstrap" else None,
+        supplied=supplied,
     )
-    tables = None
-    if tabulation is not None:
-        tables = tabulation.finish()
-        with progress.step("writing the banner exports", quiet=quiet):
-            write_exports(tables, exports[:4])
+    export = export_cells(cells, tables)
+    if spec is not None:
+        with progress.step("writing the tests export", quiet=quiet):
+            write_exports(tables, exports[:2])
             if xlsx:
-                write_workbook(tables, study, exports[4])
+                write_workbook(export, tables, study, exports[2])
         variance = (*variance, tables.chance.sentence(), *tables.notes)
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
-    book_cells = unified_cells(cells, tables.cells if tables is not None else None)
-    tests = tables.tests if tables is not None else None
-    save_results(study, book_cells, tests=tests, weighting=weighting, variance=variance, level=options.level,
-                 manifest=manifest)
+    tests = tables.tests if spec is not None else None
+    save_results(study, cells, export=export, tests=tests, weighting=weighting, variance=variance,
+                 level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
-        write_cells(tidy_cells(cells), out_path, study.path.stem)
+        write_cells(export, out_path, study.path.stem)
         return render_book(
             study,
-            book_cells,
+            export,
             tests=tests,
             out_path=out_path,
             weighting=weighting,
@@ -322,7 +368,7 @@ def rebuild_book(
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
-            stored.cells,
+            stored.export if stored.export is not None else export_cells(stored.cells),
             tests=stored.tests,
             out_path=out_path,
             weighting=stored.weighting,

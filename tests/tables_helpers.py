@@ -15,10 +15,13 @@ from pipeline.tables.topline import CELL_SCHEMA
 from pipeline.weighting import fit_recipe
 
 
-def layout_rows(study: Study, wave: str = "W1") -> pl.DataFrame:
-    """The topline layout rows (row_order, row_kind, code, row_label) of every variable, as `pipeline.tables.topline` orders them."""
+def layout_rows(study: Study, wave: str = "W1", frame: pl.DataFrame | None = None) -> pl.DataFrame:
+    """The topline layout rows (row_order, row_kind, code, row_label) of every variable, as `pipeline.tables.topline`
+    orders them; with `frame`, each row's base (respondents answering; all of them for the missing row)."""
     records = []
     for name, v in study.variables.items():
+        columns = list(v.items) if v.type == "multi" else [name]
+        answered = None if frame is None else int(frame.select(pl.any_horizontal(pl.col(columns).is_not_null()).sum()).item())
         rows: list[tuple[str, str, str | None]] = [("base", "Base: answered", None)]
         if v.type == "multi":
             rows += [("item", label, col) for col, label in v.items.items()]
@@ -31,7 +34,8 @@ def layout_rows(study: Study, wave: str = "W1") -> pl.DataFrame:
                 rows += [("statistic", s, s) for s in ("n", "mean", "median", "min", "max")]
             rows.append(("missing", "No answer", None))
         for order, (kind, label, code) in enumerate(rows):
-            records.append((wave, name, kind, order, label, code, None, None, None, None, None))
+            base = None if frame is None else frame.height if kind == "missing" else answered
+            records.append((wave, name, kind, order, label, code, None, base, None, None, None))
     return pl.DataFrame(records, schema=CELL_SCHEMA, orient="row")
 
 
@@ -43,13 +47,15 @@ def make_study(variables: dict[str, Variable], *, strata: str | None = "h", psu:
 
 def tabulate(frame: pl.DataFrame, study: Study, breaks: tuple[str, ...], *, options: VarianceOptions | None = None,
              weight: str = "w", low_base: int = 0, suppress_below: int = 0, adjust: str = "none",
-             levels: tuple[float, ...] = (0.05,), wave: str = "W1", tabulation: Tabulation | None = None) -> Tabulation:
-    """Tabulate one wave of `frame` (columns respondent_id, the weight, design and variables) with no weighting steps."""
+             levels: tuple[float, ...] = (0.05,), wave: str = "W1", tabulation: Tabulation | None = None,
+             earlier: dict[str, pl.DataFrame] | None = None) -> Tabulation:
+    """Tabulate one wave of `frame` (columns respondent_id, the weight, design and variables) with no weighting steps;
+    `earlier`: the rows of the earlier waves a shared-PSU design stacks it with."""
     spec = TablesSpec(levels=levels, low_base=low_base, suppress_below=suppress_below, adjust=adjust,
                       banners={"default": BannerSpec("default", breaks)})
     tab = tabulation or Tabulation(study, spec, options or VarianceOptions())
     recipe = fit_recipe(frame, [], base_weights=frame[weight].to_numpy().astype(float))
-    tab.add_wave(wave, frame, recipe, layout_rows(study, wave))
+    tab.add_wave(wave, frame, recipe, layout_rows(study, wave, frame), earlier=earlier)
     return tab
 
 

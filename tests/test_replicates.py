@@ -291,7 +291,7 @@ def test_supplied_multipliers():
     # successive differences: 4/R (Fay & Train 1995; ACS PUMS User Guide VII.B); jackknife (R-1)/R; Fay 1/(R(1-rho)^2)
     assert supplied_factors("sdr", 80).multiplier == pytest.approx(0.05)
     assert supplied_factors("jackknife", 10).multiplier == pytest.approx(0.9)
-    assert supplied_factors("fay", 16, fay=0.5).multiplier == pytest.approx(1 / 4)
+    assert supplied_factors("fay", 16, fay=0.5, df=8).multiplier == pytest.approx(1 / 4)
     assert replicate_df(supplied_factors("sdr", 80)) == 79
     with pytest.raises(SpecError):
         supplied_factors("stratified-jackknife", 10)

@@ -45,7 +45,7 @@ def test_cells_equal_an_independent_numpy_domain_computation(seed, strata, psus)
     frame = cluster_sample(rng, strata=strata, psus=psus, per_psu=12, categories=4, groups=3)
     cells = tabulate(frame, STUDY, ("g",)).finish().cells
     g = frame["g"].to_numpy()
-    domains = {"Total": np.ones(frame.height), "g=1": g == 1, "g=2": g == 2, "g=3": g == 3,
+    domains = {"total": np.ones(frame.height), "g=1": g == 1, "g=2": g == 2, "g=3": g == 3,
                "g:g1 or g2": (g == 1) | (g == 2)}
     y = frame["y"].to_numpy()
     x = frame["x"].to_numpy()
@@ -72,7 +72,7 @@ def test_domain_df_counts_psus_and_strata_with_members():
     frame = frame.with_columns(g=pl.when(pl.col("h") == "0").then(1).otherwise(pl.col("g").clip(2, 3)))
     cells = tabulate(frame, STUDY, ("g",)).finish().cells
     df = dict(cells.filter((pl.col("variable") == "y") & (pl.col("row") == 1)).select("column", "df").iter_rows())
-    assert df["Total"] == 12 - 3  # design df: PSUs minus strata
+    assert df["total"] == 12 - 3  # design df: PSUs minus strata
     assert df["g=1"] == 4 - 1  # only stratum 0's four PSUs
     assert df["g=2"] == 8 - 2
 
@@ -85,7 +85,7 @@ def test_empty_banner_column_is_an_empty_column_with_a_note():
     empty = cells.filter(pl.col("column") == "g=3")
     assert empty.height > 0
     assert empty["estimate"].null_count() == empty.height
-    assert set(empty["flags"]) == {"empty_column"}
+    assert set(empty["flags"]) == {"empty-column"}
     assert set(empty["note"]) == {"no respondents in this column"}
 
 
@@ -98,7 +98,7 @@ def test_suppressed_and_low_base_flags():
         if n is None:
             assert "suppressed" in flags and est is None
         else:
-            assert ("low_base" in flags) == (n < 60)
+            assert ("low-base" in flags) == (n < 60)
             assert n >= 30
     numbers = ["estimate", "se", "ci_low", "ci_high", "df", "deff", "base_unweighted", "base_weighted",
                "base_effective"]

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 import polars as pl
+import polars.testing
 import pytest
 
 from pipeline.staging.database import load_responses, open_database
@@ -56,7 +57,7 @@ def test_demo_declares_a_banner():
 
 def test_total_column_equals_the_weighted_topline(demo_wave):
     tables, topline, _ = demo_wave
-    total = tables.cells.filter(pl.col("column") == "Total").select(
+    total = tables.cells.filter(pl.col("column") == "total").select(
         "variable", pl.col("row").alias("row_order"), "estimate", "se", "deff", "flags")
     joined = total.join(topline, on=["variable", "row_order"], suffix="_topline")
     assert joined.height == topline.height > 50
@@ -68,7 +69,7 @@ def test_total_column_equals_the_weighted_topline(demo_wave):
 def test_multi_response_columns_may_add_past_100_percent(demo_wave):
     tables, _, _ = demo_wave
     items = tables.cells.filter((pl.col("variable") == "aware") & (pl.col("row_label") != "Any of these")
-                                & (pl.col("row_label") != "Not asked") & (pl.col("column") == "Total"))
+                                & (pl.col("row_label") != "Not asked") & (pl.col("column") == "total"))
     assert items["estimate"].sum() > 100
 
 
@@ -103,19 +104,17 @@ def test_demo_run_writes_exports_and_suppressed_cells_hold_no_number(tmp_path):
     spec.write_text(text.replace("suppress_below = 20", "suppress_below = 150"), encoding="utf-8")
     book = run_study(folder / "study.toml", quiet=True, xlsx=True)
     stem = book.parent / book.stem
-    cells = read_export(Path(f"{stem}_banner_cells.parquet"))
+    export = read_export(Path(f"{stem}_cells.parquet"))
+    cells = export.filter(pl.col("banner") != "total")
     tests = read_export(Path(f"{stem}_tests.parquet"))
-    assert read_export(Path(f"{stem}_banner_cells.csv")).height == cells.height
+    assert read_export(Path(f"{stem}_cells.csv")).height == export.height
     assert read_export(Path(f"{stem}_tests.csv")).height == tests.height
-    for column in ("wave", "table", "variable", "row", "row_label", "banner", "column", "column_label", "statistic",
-                   "estimate", "se", "ci_low", "ci_high", "df", "deff", "base_unweighted", "base_weighted",
-                   "base_effective", "flags", "sig_higher_than"):
-        assert column in cells.columns
+    assert not Path(f"{stem}_banner_cells.parquet").exists()
     for column in ("comparison", "wave", "table", "variable", "row", "banner", "column_a", "column_b", "difference",
                    "se_difference", "statistic", "df_num", "df_den", "p_value", "p_adjusted", "significant"):
         assert column in tests.columns
-    hidden = cells.filter(pl.col("flags").str.contains("suppressed"))
-    assert hidden.height > 0
+    hidden = export.filter(pl.col("flags").str.contains("suppressed"))
+    assert hidden.height > 0 and set(hidden["banner"]) == {"default"}
     assert hidden.select(pl.sum_horizontal(pl.col(NUMBERS).is_not_null())).to_series().sum() == 0
     keys = hidden.select("wave", "table", "row", "banner", "column")
     for side in ("column_a", "column_b"):
@@ -127,6 +126,23 @@ def test_demo_run_writes_exports_and_suppressed_cells_hold_no_number(tmp_path):
     assert set(tests["comparison"]) >= {"columns", "total", "waves", "independence"}
     assert tests.filter(pl.col("comparison") == "columns")["p_value"].is_not_null().sum() > 100
     _check_workbook(Path(f"{stem}_tables.xlsx"), cells)
+
+
+def test_demo_results_do_not_depend_on_the_batching_banner_cells_and_tests_included(tmp_path):
+    """One variable per batch (a 1-byte budget: each stub's banner cells in a pass of their own) gives the
+    cells and tests of one pass for everything, to 1e-12: every cell, test and variance reads only its own
+    stub's quantities."""
+    frames = []
+    for name, budget in (("one", None), ("many", 1)):
+        folder = tmp_path / name
+        shutil.copytree(DEMO, folder, ignore=shutil.ignore_patterns("*.duckdb", "book"))
+        book = run_study(folder / "study.toml", quiet=True, **({} if budget is None else {"memory_budget": budget}))
+        frames.append([read_export(book.parent / f"{book.stem}_{kind}.parquet") for kind in ("cells", "tests")])
+    key = ["comparison", "wave", "wave_b", "table", "row", "banner", "column_a", "column_b"]
+    frames[0][1], frames[1][1] = (t.sort(key, nulls_last=True) for t in (frames[0][1], frames[1][1]))
+    for one, many in zip(*frames, strict=True):
+        assert one.height == many.height > 1000
+        pl.testing.assert_frame_equal(one, many, check_exact=False, rel_tol=1e-12, abs_tol=1e-12)
 
 
 def _check_workbook(path: Path, cells: pl.DataFrame) -> None:

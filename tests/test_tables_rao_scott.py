@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import polars as pl
+import pytest
 from scipy import stats
 from tables_helpers import cluster_sample, make_study, tabulate
 
@@ -68,3 +69,19 @@ def test_clustered_design_corrects_the_statistic_downwards():
     k = (p.shape[0] - 1) * (p.shape[1] - 1)
     assert got["statistic"] * k < 0.9 * pearson
     assert 0 < got["df_num"] <= k
+
+
+def test_empty_cells_leave_the_srs_design_effects_at_one():
+    """Two empty cells inside a 3 x 4 table make H P H' singular; with V = P (SRS, equal weights) every
+    generalized design effect of the contrasts P identifies is still exactly 1 (an identity), so the
+    statistic is Pearson's X2 over their number, never noise amplified by a singular solve."""
+    p = np.array([[0.10, 0.0, 0.08, 0.12], [0.05, 0.15, 0.0, 0.10], [0.10, 0.05, 0.12, 0.13]])
+    n = 400
+    flat = p.ravel()
+    result = rao_scott(p, (np.diag(flat) - np.outer(flat, flat)) / (n - 1), n, 30.0)
+    assert result is not None
+    assert result.mean_deff == pytest.approx(1.0, rel=1e-9) and result.a2 == pytest.approx(0.0, abs=1e-9)
+    expected = np.outer(p.sum(axis=1), p.sum(axis=0))
+    pearson = n * ((p - expected) ** 2 / expected).sum()
+    assert result.pearson == pytest.approx(pearson, rel=1e-12)
+    assert 1 <= result.df_num <= 6 and result.statistic == pytest.approx(pearson / result.df_num, rel=1e-9)

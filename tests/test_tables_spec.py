@@ -45,7 +45,7 @@ columns = ["aware", "channel"]
     assert spec.banner_of("spend").name == "brands" and spec.banner_of("channel").name == "default"
     banner = build_banner(study, spec.banners["brands"])
     keys = [c.key for c in banner.columns]
-    assert keys == ["Total", "aware=aware_kestrel", "aware=aware_lumen", "channel=shop", "channel=web"]
+    assert keys == ["total", "aware=aware_kestrel", "aware=aware_lumen", "channel=shop", "channel=web"]
     assert [c.letter for c in banner.columns] == ["", "A", "B", "C", "D"]
     assert [c.key for c in banner.for_stub("channel")] == keys[:3]  # its own break dropped
 

@@ -96,7 +96,8 @@ def test_shared_psus_change_variance_equals_a_direct_stacked_computation():
     w1, w2 = _panel_waves()
     study = dc_replace(STUDY, design=dc_replace(STUDY.design, same_psus_across_waves=True))
     tab = tabulate(w1, study, ("g",), wave="W1")
-    tab = tabulate(w2, study, ("g",), wave="W2", tabulation=tab)
+    assert tab.stack_with("W2") == ["W1"]
+    tab = tabulate(w2, study, ("g",), wave="W2", tabulation=tab, earlier={"W1": w1})
     result = tab.finish()
     got = result.tests.filter((pl.col("comparison") == "waves") & (pl.col("variable") == "y") & (pl.col("row") == 2))
     both = pl.concat([w1.with_columns(wave=pl.lit("W1")), w2.with_columns(wave=pl.lit("W2"))])
@@ -104,7 +105,7 @@ def test_shared_psus_change_variance_equals_a_direct_stacked_computation():
     later = (both["wave"] == "W2").to_numpy()
     psu = (both["h"] + "/" + both["psu"]).to_numpy()
     independent = []
-    for column, d in (("Total", np.ones(len(g), bool)), ("g=1", g == 1), ("g=2", g == 2)):
+    for column, d in (("total", np.ones(len(g), bool)), ("g=1", g == 1), ("g=2", g == 2)):
         z = np.zeros(len(w))
         for sign, in_wave in ((1.0, later), (-1.0, ~later)):
             m = d & in_wave

@@ -76,10 +76,10 @@ def test_difference_variances_add_the_within_psu_covariance():
     result = tab.finish()
     g, y = frame["g"].to_numpy(), frame["y"].to_numpy()
     m1, m2 = frame["m1"].to_numpy(), frame["m2"].to_numpy()
-    domains = {"Total": np.ones(len(g)), "g=1": g == 1, "g=2": g == 2, "g:g1 or g2": g <= 2, "g:g2 or g3": g >= 2,
+    domains = {"total": np.ones(len(g)), "g=1": g == 1, "g=2": g == 2, "g:g1 or g2": g <= 2, "g:g2 or g3": g >= 2,
                "m=m1": m1 == 1, "m=m2": m2 == 1}
-    cases = [("total", "g=1", "Total"), ("columns", "g=1", "g=2"), ("columns", "g=1", "g:g1 or g2"),
-             ("columns", "g:g1 or g2", "g:g2 or g3"), ("columns", "m=m1", "m=m2"), ("total", "m=m2", "Total")]
+    cases = [("total", "g=1", "total"), ("columns", "g=1", "g=2"), ("columns", "g=1", "g:g1 or g2"),
+             ("columns", "g:g1 or g2", "g:g2 or g3"), ("columns", "m=m1", "m=m2"), ("total", "m=m2", "total")]
     for comparison, a, b in cases:
         got = result.tests.filter((pl.col("comparison") == comparison) & (pl.col("variable") == "y")
                                   & (pl.col("row") == 2) & (pl.col("column_a") == a) & (pl.col("column_b") == b))

@@ -1,10 +1,11 @@
 """What the book is rendered from, kept so `wavebook book` can re-render without recomputing.
 
 `save_results(study, ...)` writes, into `results_folder(study)` (`<database stem>_results/`
-beside the study database): `cells.parquet` (the unified cells frame the book shows,
-`pipeline.book.source`: aggregates only, no respondent rows or ids), `tests.parquet` (the tests
-export, when the run made banner tables) and `book.json` (the weighting summary, the standard-error
-sentences, the confidence level and the run manifest). Both are written atomically through
+beside the study database): `cells.parquet` (the long cell frame of the toplines),
+`export.parquet` (the one cells export, `pipeline.tables.export_cells`: the Total and every banner
+cell with their marks), `tests.parquet` (the tests export; with `[tables]`) — aggregates only, no
+respondent rows or ids — and `book.json` (the weighting summary, the standard-error sentences,
+the confidence level and the run manifest). Both are written atomically through
 `pipeline.outputs` (a failed write is a cannot-write error naming the file).
 `load_results(study)` reads them back; a missing or unreadable folder is a named DataError.
 """
@@ -23,6 +24,7 @@ from pipeline.errors import DataError, Problem
 from pipeline.staging.spec import Study
 
 CELLS_FILE = "cells.parquet"
+EXPORT_FILE = "export.parquet"
 TESTS_FILE = "tests.parquet"
 BOOK_FILE = "book.json"
 
@@ -32,7 +34,8 @@ class StoredResults:
     """The stored inputs of the book."""
 
     cells: pl.DataFrame
-    tests: pl.DataFrame | None
+    export: pl.DataFrame | None  # None: stored by a run before the one cells export
+    tests: pl.DataFrame | None  # None: no [tables]
     weighting: WeightingSection | None
     variance: tuple[str, ...]
     level: float
@@ -49,19 +52,22 @@ def save_results(
     study: Study,
     cells: pl.DataFrame,
     *,
+    export: pl.DataFrame | None = None,
     tests: pl.DataFrame | None = None,
     weighting: WeightingSection | None,
     variance: tuple[str, ...],
     level: float,
     manifest: dict | None,
 ) -> Path:
-    """Store the book's inputs; returns the folder."""
+    """Store the book's inputs; returns the folder. A frame not given is not stored (and one stored
+    before is removed, so `load_results` never returns another run's)."""
     folder = results_folder(study)
     write_output(folder / CELLS_FILE, cells.write_parquet)
-    if tests is not None:
-        write_output(folder / TESTS_FILE, tests.write_parquet)
-    elif (folder / TESTS_FILE).exists():
-        (folder / TESTS_FILE).unlink()
+    for name, frame in ((EXPORT_FILE, export), (TESTS_FILE, tests)):
+        if frame is not None:
+            write_output(folder / name, frame.write_parquet)
+        else:
+            (folder / name).unlink(missing_ok=True)
     payload = {
         "weighting": asdict(weighting) if weighting is not None else None,
         "variance": list(variance),
@@ -83,7 +89,8 @@ def load_results(study: Study) -> StoredResults:
         )
     try:
         cells = pl.read_parquet(cells_path)
-        tests = pl.read_parquet(folder / TESTS_FILE) if (folder / TESTS_FILE).is_file() else None
+        export, tests = (pl.read_parquet(folder / n) if (folder / n).is_file() else None
+                         for n in (EXPORT_FILE, TESTS_FILE))
         payload = json.loads(book_path.read_text(encoding="utf-8"))
     except (OSError, ValueError, pl.exceptions.PolarsError) as exc:
         raise DataError(
@@ -105,6 +112,7 @@ def load_results(study: Study) -> StoredResults:
         )
     return StoredResults(
         cells=cells,
+        export=export,
         tests=tests,
         weighting=weighting,
         variance=tuple(payload.get("variance", ())),

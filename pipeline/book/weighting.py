@@ -19,6 +19,30 @@ from pipeline.staging.spec import Study
 from pipeline.weighting import WeightingReport
 from pipeline.weighting.targets import split_category, split_margin
 
+# The study's weighting moving the data's own weight by more than this share (for some respondent)
+# means supplied replicate weights, made for that weight, no longer describe the full-sample weight:
+# the book says so and the run warns. 1%: common practice, no source; it is well above the rounding
+# of published weights and well below what a real post-stratification or raking step changes.
+SUPPLIED_WEIGHT_TOLERANCE = 0.01
+SUPPLIED_NAMES = {
+    "sdr": "successive-difference replication",
+    "jackknife": "delete-one jackknife",
+    "stratified-jackknife": "stratified delete-one jackknife",
+    "brr": "balanced repeated replication",
+    "fay": "balanced repeated replication with Fay's coefficient",
+    "bootstrap": "bootstrap",
+}
+
+
+@dataclass(frozen=True)
+class SuppliedWave:
+    """One wave's supplied replicate weights: how many, and how far the study's weighting moved the
+    data's own weight (max_i |w_i / b_i - 1|, `runner.supplied_weight_change`)."""
+
+    replicates: int
+    weight_change: float
+
+
 STEP_NAMES = {
     "nonresponse": "nonresponse adjustment by weighting classes",
     "poststratify": "post-stratification",
@@ -180,6 +204,7 @@ def variance_lines(
     calibrated: bool,
     replicate_adjustments: Mapping[str, Mapping[str, int]] | None = None,
     replicates: Mapping[str, int] | None = None,
+    supplied: Mapping[str, SuppliedWave] | None = None,
 ) -> tuple[str, ...]:
     """How standard errors, design effects and intervals were computed, in plain sentences.
 
@@ -188,7 +213,9 @@ def variance_lines(
     the design has them, and, for replicate methods, how many replicates of each wave needed a
     per-replicate collapse of an empty margin category or stopped beyond the replicate tolerance
     (`replicate_adjustments`: wave -> `FittedRecipe.replicate_adjustments()`; `replicates`: wave ->
-    number of replicates).
+    number of replicates). Supplied replicate weights (`supplied`: wave -> `SuppliedWave`): how
+    many, their method, multiplier, centre and df, and which weight they were made for
+    (`_supplied_lines`).
     """
     design = study.design
     level = f"{100 * options.level:g}%"
@@ -198,7 +225,9 @@ def variance_lines(
     held = (f" The {' and '.join(fixed)} factors are held fixed at their full-sample values." if fixed else "")
     units = "primary sampling units" if design.psu else "respondents (each its own sampling unit)"
     within = " within strata" if design.strata else ""
-    if options.method == "taylor":
+    if options.supplied:
+        first, df = _supplied_lines(options, study, supplied or {})
+    elif options.method == "taylor":
         first = (
             f"Standard errors: Taylor linearization of each estimate, with the with-replacement variance between "
             f"{units}{within}"
@@ -244,6 +273,62 @@ def variance_lines(
         "its variance under a simple random sample of the same size. Effective base: the unweighted "
         "base divided by the design effect. Medians have no design effect.",
     )
+
+
+def _supplied_lines(options: VarianceOptions, study: Study, waves: Mapping[str, SuppliedWave]) -> tuple[str, str]:
+    """The standard-error and degrees-of-freedom sentences of supplied replicate weights.
+
+    The full-sample weight is the study's final weight: the data's own weight column when the spec
+    has no weighting steps, else the result of those steps. The replicates were made for the data's
+    own weight; when the steps move it by more than SUPPLIED_WEIGHT_TOLERANCE the text says that
+    the replicates do not carry the study's weighting.
+    """
+    from pipeline.estimation.replicates import SUPPLIED_MULTIPLIERS, supplied_factors
+
+    method = str(options.replicate_method)
+    name = SUPPLIED_NAMES[method] + (f" {options.fay:g}" if method == "fay" else "")
+    counts = sorted({w.replicates for w in waves.values()})
+    if len(counts) == 1 and counts[0] >= 2:
+        r = counts[0]
+        rf = supplied_factors(method, r, fay=options.fay, multiplier=options.multiplier,
+                              multipliers=options.multipliers, df=options.df, centre=options.centre)
+        how = (f"the declared multiplier {rf.multiplier:.6g}" if options.multiplier is not None
+               else f"the {method} multiplier {SUPPLIED_MULTIPLIERS[method]} = {rf.multiplier:.6g}")
+        if options.multipliers is not None:
+            how += " with the declared multiplier of each replicate"
+        many, df_value = f"the {r} replicate weights", int(rf.df if rf.df is not None else r - 1)
+    else:
+        how, many, df_value = f"the {method} multiplier {SUPPLIED_MULTIPLIERS[method]}", "the replicate weights", None
+    centre = ("the full-sample estimate" if options.centre == "full-sample"
+              else "the mean of the replicate estimates")
+    first = (f"Standard errors: {many} supplied with the data ({name}), used as supplied: the variance is "
+             f"{how} times the sum over the replicates of the squared difference between each replicate's "
+             f"estimate and {centre}.")
+    weight = study.design.base_weight or (f"1 / {study.design.selection_probability}"
+                                          if study.design.selection_probability else "equal weights")
+    if not study.weighting:
+        first += (f" The full-sample weight is the data's own weight ({weight}), the weight the replicates were "
+                  "made for; the study adds no weighting of its own.")
+    else:
+        moved = {w: s.weight_change for w, s in waves.items()}
+        largest = max(moved.values(), default=0.0)
+        if largest > SUPPLIED_WEIGHT_TOLERANCE:
+            where = ", ".join(w for w, c in moved.items() if c > SUPPLIED_WEIGHT_TOLERANCE)
+            first += (f" Caution: the full-sample weight is the study's own weighting of the data's weight ({weight}), "
+                      f"which it changes by up to {100 * largest:.3g}% (wave {where}); the supplied replicates were "
+                      "made for the data's weight and do not carry the study's weighting, so these standard errors "
+                      "may be too large or too small, above all for the variables the weighting controls.")
+        else:
+            first += (f" The full-sample weight is the study's own weighting of the data's weight ({weight}); it "
+                      f"changes that weight by at most {100 * largest:.3g}% for any respondent, so the supplied "
+                      "replicates, made for the data's weight, still describe it.")
+    if df_value is None:
+        df = "Degrees of freedom: those declared for the replicate weights, for every estimate, subgroups included."
+    else:
+        source = ("as declared (the number of half-sample pairs)" if method in ("brr", "fay")
+                  else "as declared" if options.df is not None else "the number of replicates minus one")
+        df = f"Degrees of freedom: {df_value}, {source}, for every estimate, subgroups included."
+    return first, df
 
 
 def _replicate_sentence(adjustments: Mapping[str, Mapping[str, int]], replicates: Mapping[str, int]) -> str:

@@ -115,21 +115,34 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         metavar="METHOD",
         help="with --variance supplied: how the replicate weights were made (default sdr): sdr, jackknife, "
         "stratified-jackknife, brr, fay or bootstrap; sets the default multiplier (Wolter 2007): sdr 4/R, "
-        "jackknife (R-1)/R, brr 1/R, fay 1/(R (1-RHO)^2), bootstrap 1/R (stratified-jackknife: give "
-        "--replicate-multiplier)",
+        "jackknife (R-1)/R, brr 1/R, fay 1/(R (1-RHO)^2, with --fay RHO), bootstrap 1/R, stratified-jackknife 1 "
+        "with --replicate-multipliers",
     )
     var.add_argument(
         "--replicate-df",
         type=int,
         metavar="N",
         help="with --variance supplied: degrees of freedom of the replicate weights (default R - 1; brr and fay "
-        "need it: the number of half-sample pairs)",
+        "need it: the number of half-sample pairs, not R - 1)",
     )
     var.add_argument(
         "--replicate-multiplier",
         type=float,
         metavar="X",
         help="variance multiplier of the replicate weights (default: that of the method)",
+    )
+    var.add_argument(
+        "--replicate-multipliers",
+        metavar="X,Y,...",
+        help="with --variance supplied and --replicate-method stratified-jackknife (required there, refused "
+        "otherwise): one multiplier per replicate column, in column order, (n_h-1)/n_h of each replicate's stratum",
+    )
+    var.add_argument(
+        "--replicate-centre",
+        choices=("full-sample", "replicate-mean"),
+        default="full-sample",
+        help="with --variance supplied: deviations of the replicate estimates from the full-sample estimate "
+        "(full-sample, default) or from the mean of the replicates (replicate-mean)",
     )
     var.add_argument(
         "--fay", type=float, default=0.0, metavar="RHO",
@@ -192,6 +205,13 @@ def run(args: argparse.Namespace) -> int:
             message = "--collapse-with takes STRATUM=PARTNER"
             problems.append(Problem(rule="bad-option", message=message, value=pair))
         collapse[stratum] = partner
+    multipliers = None
+    if args.replicate_multipliers is not None:
+        try:
+            multipliers = [float(x) for x in args.replicate_multipliers.split(",")]
+        except ValueError:
+            problems.append(Problem(rule="bad-option", message="--replicate-multipliers takes numbers separated by "
+                                    "commas", value=args.replicate_multipliers))
     if collapse and args.single_psu != "collapse":
         problems.append(Problem(rule="bad-option", message="--collapse-with needs --single-psu collapse"))
     if problems:
@@ -222,6 +242,8 @@ def run(args: argparse.Namespace) -> int:
             replicate_method=args.replicate_method,
             replicate_df=args.replicate_df,
             replicate_multiplier=args.replicate_multiplier,
+            replicate_multipliers=multipliers,
+            replicate_centre=args.replicate_centre,
             fay=args.fay,
             replicates=args.replicates,
             seed=args.seed,

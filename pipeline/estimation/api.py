@@ -18,6 +18,7 @@ from __future__ import annotations
 import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 import polars as pl
@@ -38,6 +39,9 @@ from pipeline.estimation.taylor import (
     within_psu_variance,
 )
 from pipeline.estimation.totals import GroupTotals, group_totals
+
+if TYPE_CHECKING:
+    from pipeline.estimation.replicates import ReplicateFactors
 
 VARIANCE_METHODS: tuple[str, ...] = (
     "taylor", "jackknife", "stratified-jackknife", "brr", "fay", "bootstrap", "supplied"
@@ -235,6 +239,8 @@ def estimate_table(
     replicate_multiplier: float | None = None,
     replicate_method: str | None = None,
     replicate_df: int | None = None,
+    replicate_multipliers: Sequence[float] | None = None,
+    replicate_centre: str = "full-sample",
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -270,7 +276,8 @@ def estimate_table(
                    by=by, variance=variance, replicate_cols=replicate_cols, classes=classes, source=source,
                    reweight=reweight, calibration_matrix=calibration_matrix, interval=interval,
                    replicate_method=replicate_method, replicate_df=replicate_df, fay=fay, replicates=replicates, seed=seed,
-                   means_of=means_of)
+                   replicate_multipliers=replicate_multipliers, replicate_centre=replicate_centre,
+                   replicate_multiplier=replicate_multiplier, means_of=means_of)
     domains = _domains(frame, by)
     plan = _Plan()
     for dom, d in domains.items():
@@ -325,7 +332,8 @@ def estimate_table(
         v, df = _replicate_variance(
             frame, gt, plan, ratios, theta, variance=variance, replicate_cols=replicate_cols,
             replicate_multiplier=replicate_multiplier, replicate_method=replicate_method or "sdr", fay=fay,
-            replicates=replicates, replicate_df=replicate_df, weight=weight,
+            replicates=replicates, replicate_df=replicate_df, replicate_multipliers=replicate_multipliers,
+            replicate_centre=replicate_centre, weight=weight,
             seed=seed, reweight=reweight, layout=layout, certainty=design.single_psu == "certainty", source=source,
         )
         has_fpc = layout is not None and layout.has_fpc
@@ -452,6 +460,8 @@ def estimate(
     replicate_multiplier: float | None = None,
     replicate_method: str | None = None,
     replicate_df: int | None = None,
+    replicate_multipliers: Sequence[float] | None = None,
+    replicate_centre: str = "full-sample",
     fay: float = 0.0,
     replicates: int | None = None,
     seed: int | None = None,
@@ -490,7 +500,10 @@ def estimate(
       sets the default multiplier (Wolter 2007: SDR 4/R, jackknife (R-1)/R, BRR 1/R, Fay
       1/(R (1-rho)^2), bootstrap 1/R); replicate_df: their degrees of freedom (required for "brr"
       and "fay": the number of half-sample pairs; default R - 1 otherwise);
-      replicate_multiplier: the variance multiplier, default that of the method); fay, replicates,
+      replicate_multiplier: the variance multiplier, default that of the method; replicate_multipliers:
+      one multiplier per replicate column, for "stratified-jackknife" only (required there);
+      replicate_centre: "full-sample" (default: deviations from the full-sample estimate) or
+      "replicate-mean"; the rules: `replicates.supplied_option_problems`); fay, replicates,
       seed for the replicate methods; level: interval level; interval: for proportions,
       "korn-graubard" (default), "logit" or "t" (means, totals and ratios: t intervals; quantiles:
       the Woodruff interval); interpolate_quantiles: columns of whole-number answers whose quantiles
@@ -513,7 +526,7 @@ def estimate(
         sampling_fraction=sampling_fraction, psu_ids=psu_ids, mean=mean, total=total, count=count,
         proportion=proportion, ratio=ratio, quantile=quantile, by=by, variance=variance,
         replicate_cols=replicate_cols, replicate_multiplier=replicate_multiplier, replicate_method=replicate_method,
-        replicate_df=replicate_df,
+        replicate_df=replicate_df, replicate_multipliers=replicate_multipliers, replicate_centre=replicate_centre,
         fay=fay, replicates=replicates, seed=seed, level=level, single_psu=single_psu,
         collapse_with=collapse_with, classes=classes, calibration_matrix=calibration_matrix,
         reweight=reweight, source=source, second_stage_fraction=second_stage_fraction, interval=interval,
@@ -553,15 +566,25 @@ def _check_request(frame: pl.DataFrame, design: SampleDesign, **req: object) -> 
         ("replicate_cols", req["replicate_cols"] is not None, supplied, 'variance = "supplied"'),
         ("replicate_method", req["replicate_method"] is not None, supplied, 'variance = "supplied"'),
         ("replicate_df", req["replicate_df"] is not None, supplied, 'variance = "supplied"'),
-        ("fay", bool(req["fay"]), made_with == "fay", "the fay method"),
+        ("replicate_multipliers", req["replicate_multipliers"] is not None, supplied, 'variance = "supplied"'),
+        ("replicate_centre", req["replicate_centre"] != "full-sample", supplied, 'variance = "supplied"'),
+        ("fay", bool(req["fay"]), supplied or made_with == "fay", "the fay method"),
         ("replicates", req["replicates"] is not None, req["variance"] == "bootstrap", 'variance = "bootstrap"'),
         ("seed", req["seed"] is not None, req["variance"] == "bootstrap", 'variance = "bootstrap"'),
     ):
         if given and not applies:
             options.append((f"{key} applies to {where} only; it does not apply to {made_with}", None))
-    if supplied and made_with in ("brr", "fay") and req["replicate_df"] is None:
-        options.append(("supplied brr or fay replicate weights need replicate_df, the number of half-sample pairs "
-                        "(their degrees of freedom; Wolter 2007 section 3.5, from memory)", None))
+    if supplied:  # the rules of supplied replicate weights (`replicates.supplied_option_problems`)
+        from pipeline.estimation.replicates import supplied_option_problems
+
+        names = {"replicate_method": "replicate_method", "fay": "fay", "multiplier": "replicate_multiplier",
+                 "multipliers": "replicate_multipliers", "df": "replicate_df", "centre": "replicate_centre"}
+        for key, message, value in supplied_option_problems(
+            made_with, fay=req["fay"], multiplier=req["replicate_multiplier"],
+            multipliers=None if req["replicate_multipliers"] is None else list(req["replicate_multipliers"]),  # type: ignore[call-overload]
+            df=req["replicate_df"], centre=req["replicate_centre"],
+        ):
+            options.append((f"{names[key]}: {message}", None if value is None else str(value)))
     if req["variance"] != "taylor" and design.psu_inclusion is not None:
         options.append(("the (1 - pi) approximation of a pps first stage is for Taylor linearization; replicate "
                         "methods use the with-replacement form: drop the PSU inclusion probabilities", None))
@@ -605,6 +628,8 @@ def _replicate_variance(
     replicates: int | None,
     seed: int | None,
     replicate_df: int | None,
+    replicate_multipliers: Sequence[float] | None,
+    replicate_centre: str,
     weight: str,
     reweight: Callable[[np.ndarray], np.ndarray] | None,
     layout: PsuLayout | None,
@@ -624,14 +649,11 @@ def _replicate_variance(
     from pipeline.estimation.replicate_variance import replicate_variance
 
     if variance == "supplied":
-        cols = _replicate_columns(frame, replicate_cols)
-        if weight in cols:
-            problem = Problem(rule="bad-option", message="the replicate columns include the full-sample weight",
-                              column=weight)
-            raise SpecError("the replicate columns are invalid", [problem])
-        rf = rep.supplied_factors(replicate_method, len(cols), fay=fay, multiplier=replicate_multiplier,
-                                  df=replicate_df)
-        rep_totals = rep.supplied_replicate_totals(frame, plan.quantities, cols, source=source)
+        rf, rep_totals = supplied_replicates(
+            frame, plan.quantities, replicate_cols, weight=weight, method=replicate_method, fay=fay,
+            multiplier=replicate_multiplier, multipliers=replicate_multipliers, df=replicate_df,
+            centre=replicate_centre, source=source,
+        )
     else:
         if layout is None:
             raise ValueError("generated replicates need the design's PSU layout")
@@ -645,6 +667,39 @@ def _replicate_variance(
         rep_totals = rep.replicate_totals(gt, rf, reweight=reweight, base=WEIGHT_QUANTITY if reweight else None)
     v = replicate_variance(theta, ratios.value(rep_totals), rf)
     return np.where(np.isfinite(theta), v, np.nan), df_of(rf)
+
+
+def supplied_replicates(
+    frame: pl.DataFrame,
+    quantities: Mapping[str, pl.Expr],
+    replicate_cols: str | Sequence[str] | None,
+    *,
+    weight: str,
+    method: str,
+    fay: float = 0.0,
+    multiplier: float | None = None,
+    multipliers: Sequence[float] | None = None,
+    df: int | None = None,
+    centre: str = "full-sample",
+    source: str | None = None,
+) -> tuple[ReplicateFactors, np.ndarray]:
+    """The variance recipe and the replicate totals (R, K) of `quantities` from replicate-weight columns
+    shipped with the data: `replicates.supplied_factors` and `replicates.supplied_replicate_totals`.
+
+    replicate_cols: a regular expression matched against whole column names, or a list of names;
+    SpecError when they include the full-sample `weight`. Used by `estimate_table` and by the banner
+    tables (`pipeline.tables.fit`), so both read the same replicates the same way.
+    """
+    from pipeline.estimation import replicates as rep
+
+    cols = _replicate_columns(frame, replicate_cols)
+    if weight in cols:
+        problem = Problem(rule="bad-option", message="the replicate columns include the full-sample weight",
+                          column=weight)
+        raise SpecError("the replicate columns are invalid", [problem])
+    rf = rep.supplied_factors(method, len(cols), fay=fay, multiplier=multiplier, df=df, centre=centre,
+                              multipliers=None if multipliers is None else np.asarray(multipliers, dtype=np.float64))
+    return rf, rep.supplied_replicate_totals(frame, dict(quantities), cols, source=source)
 
 
 def _replicate_columns(frame: pl.DataFrame, replicate_cols: str | Sequence[str] | None) -> list[str]:

@@ -349,43 +349,112 @@ def _bootstrap(
     )
 
 
+SUPPLIED_MULTIPLIERS = {  # default overall variance multiplier of supplied replicate weights, by method
+    "sdr": "4/R",
+    "jackknife": "(R-1)/R",
+    "stratified-jackknife": "1 (with the per-replicate multipliers)",
+    "brr": "1/R",
+    "fay": "1/(R (1-rho)^2)",
+    "bootstrap": "1/R",
+}
+
+
+def supplied_option_problems(
+    method: object,
+    *,
+    fay: object = 0.0,
+    multiplier: object = None,
+    multipliers: object = None,
+    df: object = None,
+    centre: object = "full-sample",
+) -> list[tuple[str, str, object]]:
+    """The rules of supplied replicate-weight options: (option, message, value) for each one broken.
+
+    The one statement of these rules: the `estimate` request (`api._check_request`), the study
+    spec's `[variance]` table (`options.parse_variance`) and `supplied_factors` all call it, each
+    naming the options its own way. Options: replicate_method (how the weights were made, one of
+    SUPPLIED_METHODS), fay (Fay's rho: required in (0, 1) for "fay", an error with any other
+    method), multiplier (overall, > 0; default from the method), multipliers (per replicate, > 0:
+    required for "stratified-jackknife", (n_h - 1)/n_h of each replicate's stratum, Wolter 2007
+    section 4.5; an error with any other method), df (a whole number >= 1; required for "brr" and
+    "fay": the number of half-sample pairs, Wolter 2007 section 3.5, from memory, not R - 1),
+    centre ("full-sample" or "replicate-mean", the mean of all the replicates; not with
+    "stratified-jackknife", whose replicate strata are not supplied).
+    """
+    out: list[tuple[str, str, object]] = []
+    if method not in SUPPLIED_METHODS:
+        out.append(("replicate_method", f"must be one of {', '.join(SUPPLIED_METHODS)}", method))
+        return out
+
+    def number(value: object) -> bool:
+        return isinstance(value, int | float) and not isinstance(value, bool) and bool(np.isfinite(value))
+
+    if not number(fay) or not 0.0 <= float(fay) < 1.0:  # type: ignore[arg-type]
+        out.append(("fay", "Fay's coefficient must be a number in [0, 1)", fay))
+    elif method == "fay" and float(fay) == 0.0:  # type: ignore[arg-type]
+        out.append(("fay", "the fay method needs Fay's coefficient rho in (0, 1) (its multiplier is "
+                    "1/(R (1-rho)^2)), e.g. 0.5", fay))
+    elif method != "fay" and float(fay) != 0.0:  # type: ignore[arg-type]
+        out.append(("fay", f"fay applies to the fay method only; it does not apply to {method}", fay))
+    if multiplier is not None and (not number(multiplier) or not float(multiplier) > 0):  # type: ignore[arg-type]
+        out.append(("multiplier", "must be a number > 0", multiplier))
+    if multipliers is not None and method != "stratified-jackknife":
+        out.append(("multipliers", "per-replicate multipliers apply to stratified-jackknife replicate weights only; "
+                    f"for {method} give the overall multiplier (default {SUPPLIED_MULTIPLIERS[method]})", multipliers))
+    elif multipliers is not None and (
+        not isinstance(multipliers, list | tuple)
+        or not all(number(m) and float(m) > 0 for m in multipliers)  # type: ignore[union-attr]
+    ):
+        out.append(("multipliers", "must be a list of numbers > 0, one per replicate", multipliers))
+    elif method == "stratified-jackknife" and multipliers is None:
+        out.append(("multipliers", "stratified-jackknife replicate weights need their per-replicate multipliers, "
+                    "(n_h - 1)/n_h of each replicate's stratum, one per replicate column in order", None))
+    if df is not None and (isinstance(df, bool) or not isinstance(df, int) or df < 1):
+        out.append(("df", "must be a whole number >= 1", df))
+    elif method in ("brr", "fay") and df is None:
+        out.append(("df", f"{method} replicate weights need their degrees of freedom, the number of half-sample "
+                    "pairs (strata), not R - 1 (Wolter 2007 section 3.5, from memory)", None))
+    if centre not in CENTRES:
+        out.append(("centre", f"must be one of {', '.join(CENTRES)}", centre))
+    elif centre == "replicate-mean" and method == "stratified-jackknife":
+        out.append(("centre", "stratified-jackknife replicates are centred on their stratum's mean, and the strata of "
+                    "supplied replicates are not known: use full-sample", centre))
+    return out
+
+
 def supplied_factors(
     method: str,
     replicates: int,
     *,
     fay: float = 0.0,
     multiplier: float | None = None,
-    multipliers: np.ndarray | None = None,
+    multipliers: np.ndarray | Sequence[float] | None = None,
     centre: str = "full-sample",
     df: int | None = None,
 ) -> ReplicateFactors:
     """The variance recipe of replicate-weight columns shipped with the data.
 
-    Default multipliers when `multiplier` is not declared: sdr 4/R (Fay & Train 1995; ACS PUMS User
-    Guide VII.B), jackknife (R-1)/R, brr 1/R, fay 1/(R (1-rho)^2), bootstrap 1/R;
-    stratified-jackknife needs the declared per-replicate `multipliers` ((n_h-1)/n_h of each
-    replicate's stratum). df: declared, else R - 1
-    (common practice, no source).
+    Default multipliers when `multiplier` is not declared (SUPPLIED_MULTIPLIERS; Wolter 2007,
+    Introduction to Variance Estimation): sdr 4/R (Fay & Train 1995; ACS PUMS User Guide VII.B),
+    jackknife (R-1)/R, brr 1/R, fay 1/(R (1-rho)^2), bootstrap 1/R; stratified-jackknife 1 with
+    the declared per-replicate `multipliers` ((n_h-1)/n_h of each replicate's stratum). df:
+    declared (brr and fay must declare it: the number of half-sample pairs), else R - 1 (common
+    practice, no source). The option rules are `supplied_option_problems`; SpecError lists every
+    rule broken, with the count of replicate columns.
     """
-    problems = []
-    if method not in SUPPLIED_METHODS:
-        problems.append(
-            Problem(
-                rule="bad-option",
-                message=f"unknown method {method!r} for supplied replicate weights; use one of {', '.join(SUPPLIED_METHODS)}",
-            )
+    problems = [
+        Problem(rule="bad-option", message=f"{key}: {message}", value=None if value is None else str(value))
+        for key, message, value in supplied_option_problems(
+            method, fay=fay, multiplier=multiplier, df=df, centre=centre,
+            multipliers=None if multipliers is None else [float(m) for m in np.ravel(multipliers)],
         )
+    ]
     if replicates < 2:
         problems.append(Problem(rule="bad-option", message=f"at least 2 replicate-weight columns are needed, not {replicates}"))
-    if method == "stratified-jackknife" and multipliers is None:
+    if multipliers is not None and np.size(multipliers) != replicates:
         problems.append(
-            Problem(rule="bad-option", message="supplied 'stratified-jackknife' replicate weights need their per-replicate multipliers")
-        )
-    if not 0.0 <= fay < 1.0:
-        problems.append(Problem(rule="bad-option", message=f"Fay's coefficient must be in [0, 1), not {fay}"))
-    if multipliers is not None and np.shape(multipliers) != (replicates,):
-        problems.append(
-            Problem(rule="bad-option", message=f"{np.size(multipliers)} per-replicate multipliers for {replicates} replicates")
+            Problem(rule="bad-option", message=f"multipliers: {np.size(multipliers)} per-replicate multipliers for "
+                    f"{replicates} replicate-weight columns")
         )
     if problems:
         raise SpecError("the supplied replicate-weight options are invalid", problems)
@@ -400,7 +469,7 @@ def supplied_factors(
     return ReplicateFactors(
         factors=np.empty((replicates, 0)),
         multiplier=defaults[method] if multiplier is None else float(multiplier),
-        multipliers=np.ones(replicates) if multipliers is None else np.asarray(multipliers, dtype=np.float64),
+        multipliers=np.ones(replicates) if multipliers is None else np.asarray(multipliers, dtype=np.float64).ravel(),
         method=method,
         centre=centre,
         df=replicates - 1 if df is None else df,

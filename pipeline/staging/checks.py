@@ -33,6 +33,7 @@ from pipeline.sqlfiles import sql
 from pipeline.staging.conditions import to_duckdb
 from pipeline.staging.wave_columns import typed_raw
 from pipeline.staging.database import table_columns
+from pipeline.staging.replicate_columns import replicate_problems, wave_replicates
 from pipeline.staging.spec import Study, Variable
 
 # No design weight above this: more people than the world holds (about 8e9), so the value is a
@@ -89,6 +90,8 @@ def expected_columns(study: Study, wave_id: str) -> dict[str, str]:
             if wave_id in variable.column:
                 where += f".column.{wave_id}"
             out.setdefault(column, where)
+    for column in wave_replicates(study, wave_id):
+        out.setdefault(column, "variance.replicate_columns")
     return out
 
 
@@ -142,6 +145,7 @@ def run_checks(
     if study.respondent_id not in present:
         return problems
     present &= set(expected)
+    problems += replicate_problems(con, study, raw=raw, present=present, file=file, wave=wave)
     columns = _present_columns(study, present)
     _setup_tables(con, study, raw, columns)
     context = _Context(con, study, file, raw, columns)

@@ -15,6 +15,7 @@ import polars as pl
 from pipeline.errors import DataError, Problem
 from pipeline.sqlfiles import sql
 from pipeline.staging.readers import prepare_connection
+from pipeline.staging.replicate_columns import staged_columns
 from pipeline.staging.routing import route_frame
 from pipeline.staging.spec import Study
 
@@ -24,8 +25,8 @@ DESIGN_TEXT = "VARCHAR"
 def column_types(study: Study) -> dict[str, str]:
     """The study's own columns of `responses` and their DuckDB types, in table order.
 
-    Design columns first (strata and PSU VARCHAR, base weight and selection probability DOUBLE),
-    then the codebook columns: single/rating BIGINT when every code is an integer else VARCHAR,
+    Design columns first (strata and PSU VARCHAR, base weight and selection probability DOUBLE,
+    then the supplied replicate weights `replicate_weight_1..R` DOUBLE), then the codebook columns: single/rating BIGINT when every code is an integer else VARCHAR,
     multi-response items TINYINT, numeric DOUBLE. A column that is both a design column and a
     codebook variable (e.g. region as strata) takes its codebook type. The respondent id column
     is stored as `respondent_id` and is not listed here.
@@ -48,6 +49,8 @@ def column_types(study: Study) -> dict[str, str]:
     ):
         if column is not None:
             types[column] = codebook.get(column, dtype)
+    for column in staged_columns(study):  # supplied replicate weights (pipeline.staging.replicate_columns)
+        types.setdefault(column, "DOUBLE")
     for column, dtype in codebook.items():
         types.setdefault(column, dtype)
     return types

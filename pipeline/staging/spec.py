@@ -225,6 +225,18 @@ class Study:
             waves=tuple(w.id for w in self.waves),
         )
 
+    def own_columns(self) -> dict[str, str]:
+        """Every column the spec names (respondent id, design, codebook) -> where it is declared."""
+        out = {self.respondent_id: "respondent_id"}
+        for key in ("strata", "psu", "base_weight", "selection_probability", "psu_inclusion_probability"):
+            column = getattr(self.design, key)
+            if column is not None:
+                out.setdefault(column, f"design.{key}")
+        for variable in self.variables.values():
+            for column in variable.columns:
+                out.setdefault(column, f"variables.{variable.name}")
+        return out
+
     def wave(self, wave_id: str) -> Wave:
         """The wave with id `wave_id` (KeyError naming the known ids otherwise)."""
         for w in self.waves:
@@ -355,7 +367,15 @@ def _section_problems(study: Study | None, data: dict) -> list[Problem]:
     problems: list[Problem] = []
     variance = data.get("variance", {})
     if isinstance(variance, dict):
-        problems += parse_variance(variance)[1]
+        problems += parse_variance(variance, columns=study.own_columns() if study is not None else None)[1]
+        if study is not None and variance.get("method") == "supplied":
+            design = study.design
+            for key, given in (("population", design.population), ("sampling_fraction", design.sampling_fraction),
+                               ("psu_inclusion_probability", design.psu_inclusion_probability)):
+                if given:
+                    problems.append(Problem("conflicting-keys", f"design.{key}: supplied replicate weights carry "
+                                            "their own variance recipe (a finite population correction included); "
+                                            "drop it"))
     if study is not None:
         try:
             parse_steps(study.weighting, study.step_context())

@@ -20,6 +20,7 @@ from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 from pipeline.staging.conditions import to_duckdb
+from pipeline.staging.replicate_columns import wave_replicates
 
 if TYPE_CHECKING:
     import duckdb
@@ -30,12 +31,13 @@ WAVE_VIEW = "__wavebook_wave"
 
 
 def wave_sources(study: Study, wave_id: str) -> dict[str, str]:
-    """Spec column -> its name in the wave's file, for every codebook column the wave asked."""
+    """Spec column -> its name in the wave's file, for every codebook column the wave asked and every
+    supplied replicate weight (`replicate_weight_<r>` -> the file's column, `replicate_columns`)."""
     out: dict[str, str] = {}
     for variable in study.variables.values():
         for column in variable.wave_columns(wave_id):
             out[column] = variable.column.get(wave_id, column) if variable.type != "multi" else column
-    return out
+    return {**out, **wave_replicates(study, wave_id)}
 
 
 def wave_recodes(study: Study, wave_id: str) -> dict[str, dict[str, str]]:
@@ -136,4 +138,7 @@ def wave_signature(study: Study, wave_id: str, types: dict[str, str]) -> str:
         "recodes": wave_recodes(study, wave_id),
         "derived": {v.name: {str(c): w.text for c, w in v.when.items()} for v in study.variables.values() if v.derived},
     }
+    replicates = wave_replicates(study, wave_id)
+    if replicates:  # only then, so the signatures of studies without supplied replicates stay as they were
+        content["replicates"] = replicates
     return hashlib.sha256(json.dumps(content, sort_keys=True).encode()).hexdigest()

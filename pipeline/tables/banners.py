@@ -18,9 +18,8 @@ from dataclasses import dataclass
 import polars as pl
 
 from pipeline.staging.spec import Study, Variable
+from pipeline.tables.cells_export import TOTAL, TOTAL_LABEL
 from pipeline.tables.spec import BannerSpec
-
-TOTAL = "Total"
 
 
 @dataclass(frozen=True)
@@ -83,7 +82,7 @@ def _break_columns(variable: Variable) -> list[tuple[str, str, str, pl.Expr, fro
 
 def build_banner(study: Study, spec: BannerSpec) -> Banner:
     """The columns of a banner spec (breaks validated by `pipeline.tables.spec`)."""
-    columns = [Column(TOTAL, TOTAL, "", "total", "", pl.lit(True))]
+    columns = [Column(TOTAL, TOTAL_LABEL, "", "total", "", pl.lit(True))]
     for name in spec.breaks:
         for key, label, kind, domain, codes in _break_columns(study.variables[name]):
             columns.append(Column(key, label, name, kind, letter(len(columns) - 1), domain, codes))

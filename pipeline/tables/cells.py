@@ -19,10 +19,11 @@ For the Rao-Scott test of a single-choice stub against a single-choice break the
 the joint proportions p_rc = t(y_r a d_c) / t(a D) (D: the respondent is in some category column
 of the break), whose numerators are the cells' own.
 
-Flags: "low_base" (unweighted base below `low_base`), "suppressed" (below `suppress_below`: the
-cell holds no number at all, its flag is explained in the legend), "empty_column" (no respondent
-in the column's base: an empty cell with a note), "set_by_weighting" (a percentage the weighting
-calibrates to a population figure: no sampling error to show or test).
+Flags (";"-separated, as in the export): "low-base" (unweighted base below `low_base`),
+"suppressed" (below `suppress_below`: the cell holds no number at all, its flag is explained in
+the legend), "empty-column" (no respondent in the column's base: an empty cell with a note),
+"set-by-weighting" (a percentage the weighting calibrates to a population figure: no sampling
+error to show or test).
 """
 
 from __future__ import annotations
@@ -41,13 +42,12 @@ from pipeline.tables.fit import Plan
 from pipeline.tables.spec import TablesSpec
 from pipeline.tables.weighted_cells import RATING_TYPES, SET_BY_WEIGHTING_SE, _row_expressions
 
-# The tidy export's columns (`pipeline.tables.cells_export.EXPORT_SCHEMA`) with the break variable and
-# the column's letter after `column_label`.
+# The export's columns (`pipeline.tables.cells_export.EXPORT_SCHEMA`) a banner cell has when it is
+# estimated; the marks, the changes and the note are added by the tests, `row_kind` by the export.
 CELL_COLUMNS: dict[str, pl.DataType] = {
-    name: dtype
-    for key, value in EXPORT_SCHEMA.items()
-    for name, dtype in ([(key, value), ("break_variable", pl.String()), ("letter", pl.String())]
-                        if key == "column_label" else [(key, value)])
+    name: dtype for name, dtype in EXPORT_SCHEMA.items()
+    if name not in ("row_kind", "sig_higher_than", "sig_higher_than_lighter", "vs_total", "change_from_previous",
+                    "se_change", "change_mark", "note")
 }
 NUMBERS = ("estimate", "se", "ci_low", "ci_high", "df", "deff", "base_unweighted", "base_weighted", "base_effective")
 EMPTY_NOTE = "no respondents in this column"
@@ -268,14 +268,14 @@ def cell_frame(wave: str, wp: WavePlan, state: object, spec: TablesSpec, *, leve
     for i in range(m):
         f = []
         if n[i] == 0:
-            f.append("empty_column")
+            f.append("empty-column")
         elif n[i] < spec.suppress_below:
             f.append("suppressed")
         if 0 < n[i] < spec.low_base:
-            f.append("low_base")
+            f.append("low-base")
         if fixed[i]:
-            f.append("set_by_weighting")
-        flags.append(",".join(f))
+            f.append("set-by-weighting")
+        flags.append(";".join(f))
     refs = wp.refs
     frame = pl.DataFrame(
         {
@@ -303,10 +303,10 @@ def cell_frame(wave: str, wp: WavePlan, state: object, spec: TablesSpec, *, leve
         },
         schema=CELL_COLUMNS,
     ).with_columns(pl.col(c).fill_nan(None) for c in NUMBERS if c != "base_unweighted")
-    hidden = pl.col("flags").str.contains("suppressed|empty_column")
+    hidden = pl.col("flags").str.contains("suppressed|empty-column")
     frame = frame.with_columns(
         [pl.when(hidden).then(None).otherwise(pl.col(c)).alias(c) for c in NUMBERS]
     ).with_columns(estimator=pl.Series(at))
     return frame.with_columns(
-        note=pl.when(pl.col("flags").str.contains("empty_column")).then(pl.lit(EMPTY_NOTE)).otherwise(None)
+        note=pl.when(pl.col("flags").str.contains("empty-column")).then(pl.lit(EMPTY_NOTE)).otherwise(None)
     )

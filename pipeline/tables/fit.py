@@ -12,7 +12,8 @@ combination of the estimators needs:
               theta_a - theta_b the variance is `PsuLayout.variance(z_a - z_b)`: the covariance of
               columns that share PSUs, of a column and the Total that contains it, and of
               overlapping columns is in it exactly (Binder 1983; Woodruff 1971);
-  replicates  the replicate estimates theta_r (R, m) (the weighting recipe replayed per replicate),
+  replicates  the replicate estimates theta_r (R, m) (the weighting recipe replayed per replicate;
+              supplied replicate weights, `DesignInputs.replicate_columns`, used as they are),
               so a difference has replicate estimates theta_ra - theta_rb (Wolter 2007 section 1.5,
               from memory).
 
@@ -80,6 +81,7 @@ class DesignInputs:
     reweight: Callable[[np.ndarray], np.ndarray] | None = None
     calibration_matrix: np.ndarray | None = None
     final_weight: str | None = None  # per-respondent final weights, for the weighted CDF of medians
+    replicate_columns: tuple[str, ...] = ()  # supplied replicate weights (options.method "supplied"), in order
 
 
 @dataclass
@@ -228,13 +230,20 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
         from pipeline.estimation import replicates as rep
         from pipeline.estimation.replicate_variance import replicate_df, replicate_variance
 
-        rf = rep.make_replicates(
-            method, layout.psu_stratum, fay=options.fay, replicates=options.replicates, seed=options.seed,
-            sampling_fraction=layout.fraction if layout.has_fpc else None, stratum_labels=layout.stratum_labels,
-            single_psu="certainty" if design.single_psu == "certainty" else "error",
-        )
-        rep_totals = rep.replicate_totals(gt, rf, reweight=inputs.reweight,
-                                          base=api.WEIGHT_QUANTITY if inputs.reweight else None)
+        if method == "supplied":  # the weights shipped with the data, used as they are (`api.supplied_replicates`)
+            rf, rep_totals = api.supplied_replicates(
+                frame, plan.quantities, list(inputs.replicate_columns), weight=weight,
+                method=str(options.replicate_method), fay=options.fay, multiplier=options.multiplier,
+                multipliers=options.multipliers, df=options.df, centre=options.centre,
+            )
+        else:
+            rf = rep.make_replicates(
+                method, layout.psu_stratum, fay=options.fay, replicates=options.replicates, seed=options.seed,
+                sampling_fraction=layout.fraction if layout.has_fpc else None, stratum_labels=layout.stratum_labels,
+                single_psu="certainty" if design.single_psu == "certainty" else "error",
+            )
+            rep_totals = rep.replicate_totals(gt, rf, reweight=inputs.reweight,
+                                              base=api.WEIGHT_QUANTITY if inputs.reweight else None)
         theta_r = ratios.value(rep_totals)
         v = np.where(np.isfinite(theta), replicate_variance(theta, theta_r, rf), np.nan)
         df = float(replicate_df(rf))
@@ -249,7 +258,8 @@ def fit_wave(frame: pl.DataFrame, plan: Plan, medians: Mapping[int, tuple[str, p
         within_own = within.covariance_terms(every, every, own)
         v = v + layout.second_stage(np.maximum(within_own, 0.0))
     table = api._table(plan, gt, ratios, t, theta, v, df, cdfs, level=options.level,  # type: ignore[arg-type]
-                       method=method, has_fpc=layout.has_fpc, df_layout=layout, interval_kind="t").frame
+                       method=method, has_fpc=layout.has_fpc, df_layout=None if method == "supplied" else layout,
+                       interval_kind="t").frame
     base_idx = np.array([gt.column(c.base) for c in plan.cells], dtype=np.int64)
     return FitState(
         table=table, theta=theta, variance=v, df=df, domain_df=table["df"].to_numpy().astype(np.float64),

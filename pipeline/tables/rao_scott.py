@@ -20,7 +20,9 @@ with mean delta. and a^2 = sum (delta_i - delta.)^2 / (k delta.^2) refers
 d the design degrees of freedom (the F form of Thomas and Rao 1987, JASA 82:630-636, from memory).
 Under SRS with equal weights every delta is 1, so F = X2 / k with X2 Pearson's chi-square
 (`tests/test_tables_rao_scott.py` checks it against scipy). Empty rows or columns are dropped first;
-the eigenvalues are invariant to the choice of independence contrasts.
+the eigenvalues are invariant to the choice of independence contrasts. Empty cells inside the table
+make H P H' singular: the deltas are then those of the contrasts it identifies, and k their number
+(`_generalized_deffs`).
 """
 
 from __future__ import annotations
@@ -63,6 +65,25 @@ def _jacobian(r: int, c: int, p: np.ndarray) -> np.ndarray:
     return out
 
 
+def _generalized_deffs(srs: np.ndarray, design: np.ndarray) -> np.ndarray:
+    """The eigenvalues of srs^-1 design (both symmetric, srs positive semi-definite) on the range of srs.
+
+    An empty cell (p_ij = 0 in a non-empty row and column) makes the SRS covariance P singular along
+    it, and with several such cells H P H' loses rank: `solve` would then return rounding noise
+    amplified without bound. The generalized design effects are taken on the contrasts P
+    identifies: with srs = U diag(l) U', the eigenvalues of L^-1/2 U' design U L^-1/2 over the
+    eigenvalues l above 1e-10 of the largest (our choice of tolerance: far above rounding, far below
+    any real variance ratio), so k is the number of those contrasts (equal to (r-1)(c-1) without
+    empty cells, where this is exactly `eig(solve(srs, design))`).
+    """
+    values, vectors = np.linalg.eigh((srs + srs.T) / 2)
+    keep = values > 1e-10 * max(float(values.max(initial=0.0)), 0.0)
+    if not keep.any():
+        return np.zeros(0)
+    scaled = vectors[:, keep] / np.sqrt(values[keep])
+    return np.linalg.eigvalsh(scaled.T @ ((design + design.T) / 2) @ scaled)
+
+
 def rao_scott(p: np.ndarray, cov: np.ndarray, n: int, design_df: float) -> RaoScott | None:
     """The test for joint proportions `p` (r, c) with design covariance `cov` (r c, r c) (module docstring).
 
@@ -84,12 +105,14 @@ def rao_scott(p: np.ndarray, cov: np.ndarray, n: int, design_df: float) -> RaoSc
     flat = p.ravel()
     srs = (np.diag(flat) - np.outer(flat, flat)) / (n - 1)
     h = _jacobian(r, c, p)
-    deffs = np.linalg.solve(h @ srs @ h.T, h @ cov @ h.T)
-    trace = float(np.trace(deffs))
-    mean_deff = trace / k
+    deffs = _generalized_deffs(h @ srs @ h.T, h @ cov @ h.T)
+    k = len(deffs)
+    if k == 0:
+        return None
+    mean_deff = float(deffs.sum()) / k
     if not mean_deff > SET_BY_WEIGHTING:
         return None
-    a2 = max(float(np.trace(deffs @ deffs)) / k / mean_deff**2 - 1.0, 0.0)
+    a2 = max(float((deffs**2).sum()) / k / mean_deff**2 - 1.0, 0.0)
     nu = k / (1.0 + a2)
     statistic = pearson / (k * mean_deff)
     p_value = float(special.fdtrc(nu, nu * design_df, statistic))  # F survival function

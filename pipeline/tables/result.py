@@ -1,8 +1,8 @@
-"""What the banner tables of a run come to: `BannerTables` (cells, tests, notes) and `ChanceMarks`."""
+"""What the tables of a run come to: `BannerTables` (cells, tests, notes, the Total's changes) and `ChanceMarks`."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import polars as pl
 
@@ -37,10 +37,13 @@ class ChanceMarks:
 
 @dataclass(frozen=True)
 class BannerTables:
-    """The result: cells (every wave, stub row and banner column, with marks), tests, chance marks, notes."""
+    """The result: cells (every wave, stub row and banner column, with marks; percentages 0-100), tests,
+    chance marks, notes, and the Total's change from the previous wave for every variable (`totals`:
+    wave, table, row, change_from_previous, se_change, change_mark). `spec` None: no `[tables]`."""
 
     cells: pl.DataFrame
     tests: pl.DataFrame
     chance: ChanceMarks
-    spec: TablesSpec
+    spec: TablesSpec | None
     notes: tuple[str, ...] = ()
+    totals: pl.DataFrame = field(default_factory=pl.DataFrame)

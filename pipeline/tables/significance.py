@@ -61,7 +61,7 @@ def testable(cells: pl.DataFrame, spec: TablesSpec) -> pl.Expr:
         pl.col("statistic").is_in(TESTED)
         & pl.col("estimate").is_not_null()
         & (pl.col("base_unweighted") >= max(spec.low_base, 1))
-        & ~pl.col("flags").str.contains("suppressed|empty_column|set_by_weighting")
+        & ~pl.col("flags").str.contains("suppressed|empty-column|set-by-weighting")
     )
 
 

@@ -31,7 +31,8 @@ Every estimate of a wave comes from ONE call of `pipeline.estimation.estimate_ta
 wave's rows: one grouped pass over respondents, the full design kept (rows outside a base get
 a_i = 0, they are never dropped before the variance), the weighting recipe's classes passed in so
 that Taylor linearization uses the calibration residuals (Deville & Sarndal 1992) and replicate
-methods replay the recipe in every replicate. Percentages get the Korn & Graubard (1998)
+methods replay the recipe in every replicate; supplied replicate weights (`variance_arguments`) are
+used as they are. Percentages get the Korn & Graubard (1998)
 interval (Clopper-Pearson on the effective sample size, which behaves near 0% and 100%), means
 the t interval with the design degrees of freedom.
 """
@@ -48,6 +49,7 @@ from pipeline.estimation import estimate_table
 from pipeline.estimation.api import MeanOf
 from pipeline.estimation.intervals import korn_graubard_interval
 from pipeline.estimation.options import VarianceOptions
+from pipeline.staging.replicate_columns import staged_columns
 from pipeline.staging.routing import asked_column, flagged
 from pipeline.staging.spec import Study, Variable
 from pipeline.weighting import FittedRecipe
@@ -201,6 +203,27 @@ class RememberedReplay:
         return self._results[key].copy()
 
 
+def variance_arguments(study: Study, options: VarianceOptions) -> dict[str, object]:
+    """The `estimate_table` arguments of the study's variance method (`[variance]`).
+
+    Supplied replicate weights are read from their staged columns `replicate_weight_1..R`
+    (`pipeline.staging.replicate_columns`) and used as they are: no replay of the weighting recipe
+    (they carry the weighting their producer gave them); the full-sample estimate uses the study's
+    final weights. Generated replicates: method, Fay coefficient, bootstrap size and seed."""
+    if not options.supplied:
+        return {"variance": options.method, "fay": options.fay, "replicates": options.replicates, "seed": options.seed}
+    return {
+        "variance": "supplied",
+        "replicate_cols": staged_columns(study),
+        "replicate_method": options.replicate_method,
+        "fay": options.fay,
+        "replicate_multiplier": options.multiplier,
+        "replicate_multipliers": options.multipliers,
+        "replicate_df": options.df,
+        "replicate_centre": options.centre,
+    }
+
+
 def wave_estimates(
     responses: pl.DataFrame,
     study: Study,
@@ -244,10 +267,7 @@ def wave_estimates(
         means_of=shares,
         quantile=[(c, 0.5) for c in medians] or None,
         interpolate_quantiles=[c for c in medians if study.variables[meaning[c][0]].type in RATING_TYPES],
-        variance=options.method,
-        fay=options.fay,
-        replicates=options.replicates,
-        seed=options.seed,
+        **variance_arguments(study, options),
         level=options.level,
         classes=_CLASS,
         reweight=recipe.replay if replay is None else replay,

@@ -1,6 +1,8 @@
 """The banner tables as a spreadsheet workbook (.xlsx, the open spreadsheet format): one sheet per table.
 
-Written with XlsxWriter (a maintained writer of the format; no hand-written XML). Each sheet holds
+Written with XlsxWriter (a maintained writer of the format; no hand-written XML) from the one
+cells export (`pipeline.tables.export_cells`): its Total rows are the Total column, its banner
+rows the other columns, so the workbook shows the export's numbers and no other. Each sheet holds
 one stub's table for every wave, one block per wave: a header of the break labels, the column
 labels and the column letters; the unweighted base of each column; then per stub row the
 estimates (percentages to one decimal, means to two) and, beneath, the letters of the columns each
@@ -19,6 +21,7 @@ import polars as pl
 from pipeline.errors import Problem, SpecError
 from pipeline.outputs import write_output
 from pipeline.staging.spec import Study
+from pipeline.tables.cells_export import SHARES, TOTAL
 from pipeline.tables.result import BannerTables
 
 SUPPRESSED = "*"
@@ -36,18 +39,32 @@ def _sheet_name(name: str, used: set[str]) -> str:
     return out
 
 
-def write_workbook(tables: BannerTables, study: Study, path: Path) -> Path:
-    """Write `path` (.xlsx): one formatted sheet per banner table (module docstring); returns `path`."""
+def write_workbook(export: pl.DataFrame, tables: BannerTables, study: Study, path: Path) -> Path:
+    """Write `path` (.xlsx): one formatted sheet per banner table of `export` (module docstring; `tables`
+    gives the levels, thresholds and the chance-marks sentence); returns `path`."""
     try:
         import xlsxwriter
     except ImportError:
         problem = Problem("missing-extra", "the workbook writer is not installed: pip install 'wavebook[xlsx]'")
         raise SpecError("cannot write the banner workbook", [problem]) from None
-    return write_output(Path(path), lambda tmp: _write(xlsxwriter, tables, study, Path(tmp)))
+    return write_output(Path(path), lambda tmp: _write(xlsxwriter, export, tables, study, Path(tmp)))
 
 
-def _write(xlsxwriter, tables: BannerTables, study: Study, tmp: Path) -> None:  # noqa: ANN001 - the module
-    cells = tables.cells
+def _banner_blocks(export: pl.DataFrame) -> pl.DataFrame:
+    """The rows of the banner tables: each table's banner rows, and its Total rows of the same
+    (wave, row, statistic) first; counts left out. Percentages and balances in points (0-100)."""
+    figures = export.filter(pl.col("statistic") != "count")
+    banner = figures.filter(pl.col("banner") != TOTAL)
+    shown = banner.select("wave", "table", "row", "statistic").unique()
+    total = figures.filter(pl.col("banner") == TOTAL).join(shown, on=["wave", "table", "row", "statistic"])
+    points = pl.col("statistic").is_in(SHARES)
+    return pl.concat([total, banner]).with_columns(
+        pl.when(points).then(pl.col("estimate") * 100).otherwise(pl.col("estimate")).alias("estimate"))
+
+
+def _write(xlsxwriter, export: pl.DataFrame, tables: BannerTables, study: Study,  # noqa: ANN001 - the module
+           tmp: Path) -> None:
+    cells = _banner_blocks(export)
     levels = tables.spec.levels
     book = xlsxwriter.Workbook(str(tmp), {"nan_inf_to_errors": True})
     try:
@@ -93,13 +110,13 @@ def _write(xlsxwriter, tables: BannerTables, study: Study, tmp: Path) -> None:  
                         c = by_column.get(key)
                         if c is None:
                             continue
-                        if "suppressed" in c["flags"] or "empty_column" in c["flags"]:
+                        if "suppressed" in c["flags"] or "empty-column" in c["flags"]:
                             sheet.write(r, j, SUPPRESSED, letter)
                         elif c["estimate"] is not None:
                             fmt = pct if c["statistic"] in ("percent", "balance") else num
                             sheet.write_number(r, j, c["estimate"], fmt)
                         marks = c["sig_higher_than"] + c["sig_higher_than_lighter"].lower()
-                        if "low_base" in c["flags"]:
+                        if "low-base" in c["flags"]:
                             marks += LOW_BASE
                         if marks:
                             sheet.write(r + 1, j, marks, mark)
