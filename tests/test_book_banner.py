@@ -203,7 +203,7 @@ def _pick(stored: pl.DataFrame, table: str, letter: str) -> pl.Expr:
 def test_suppressed_cells_show_no_number_even_when_the_frame_holds_one(demo_study: Path, tmp_path: Path) -> None:
     study = load_spec(demo_study)
     stored = load_results(study)
-    cells = stored.cells
+    cells = stored.export
     target = _pick(cells, "shop_freq", "C")
     withheld = cells.with_columns(pl.when(target).then(pl.lit("suppressed")).otherwise(pl.col("flags")).alias("flags"))
     numbers = {f"{100 * v:.0f}" for v in cells.filter(target & (pl.col("statistic") == "percent"))["estimate"]}
@@ -225,7 +225,7 @@ def test_hostile_banner_labels_render_as_text(demo_study: Path, tmp_path: Path) 
     study = load_spec(demo_study)
     stored = load_results(study)
     script, image = "<script>alert(1)</script>", '"><img src=x onerror=alert(1)>'
-    cells = stored.cells.with_columns(
+    cells = stored.export.with_columns(
         pl.when(pl.col("letter") == "A").then(pl.lit(f"Man {script}")).otherwise(pl.col("column_label"))
         .alias("column_label")
     )

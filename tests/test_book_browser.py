@@ -196,14 +196,14 @@ def _wide_banner_book(demo_study: Path, folder: Path) -> Path:
     into `folder`."""
     study = load_spec(demo_study)
     stored = load_results(study)
-    copy = stored.cells.filter((pl.col("table") == "shop_freq") & (pl.col("break_variable") == "age_band"))
+    copy = stored.export.filter((pl.col("table") == "shop_freq") & (pl.col("break_variable") == "age_band"))
     keys = copy["column"].unique(maintain_order=True).to_list()
     letters = {k: chr(ord("Q") + i) for i, k in enumerate(keys)}
     copy = copy.with_columns(
         pl.col("column").replace_strict(letters).alias("letter"), ("again-" + pl.col("column")).alias("column"),
         pl.lit("education").alias("break_variable"),
     )
-    cells = pl.concat([stored.cells, copy], how="vertical_relaxed")
+    cells = pl.concat([stored.export, copy], how="vertical_relaxed")
     return render_book(study, cells, tests=stored.tests, out_path=folder / "wide.html")
 
 
