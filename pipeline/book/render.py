@@ -24,7 +24,9 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
-from collections.abc import Mapping, Sequence
+import gc
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -34,6 +36,7 @@ import polars as pl
 
 from pipeline import __version__
 from pipeline.book.manifest import SHORT_HASH, manifest_hash, manifest_json
+from pipeline.book.numbers import percent_text_exprs
 from pipeline.book.pages import Page, plan_pages, write_book
 from pipeline.book.source import TOTAL, check_cells
 from pipeline.book.tables import (
@@ -41,6 +44,9 @@ from pipeline.book.tables import (
     VERY_LOW_BASE,
     Column,
     Marks,
+    TEXT_ALONE,
+    TEXT_INTERVAL,
+    TEXT_SHARED,
     Section,
     anchor_of,
     banner_table,
@@ -59,6 +65,11 @@ __all__ = ["LOW_BASE", "PAGE_LIMIT", "SINGLE_FILE_LIMIT", "VERY_LOW_BASE", "Book
 
 SINGLE_FILE_LIMIT = 100
 PAGE_LIMIT = 2_000_000  # bytes: a default one-file book larger than this becomes a folder
+# The columns of the cells export the book reads (the others stay in the export).
+READ_COLUMNS = ("wave", "table", "row", "row_label", "row_kind", "banner", "break_variable", "column",
+                "column_label", "letter", "statistic", "estimate", "se", "ci_low", "ci_high", "deff",
+                "base_unweighted", "base_weighted", "flags", "sig_higher_than", "sig_higher_than_lighter",
+                "change_mark", "note")
 
 
 @dataclass(frozen=True)
@@ -165,13 +176,28 @@ def render_book(
         single_file=single_file is not False and len(study.variables) < SINGLE_FILE_LIMIT, manifest=manifest,
     )
     env = _environment()
-    files = _render(env, context)
+    with _collector_paused():
+        files = _render(env, context)
     if single_file is None and len(context.pages) == 1 and len(files[""].encode("utf-8")) > PAGE_LIMIT:
         context = paged(context, single_file=False)
-        files = _render(env, context)
+        with _collector_paused():
+            files = _render(env, context)
     if manifest is not None:
         files["manifest.json"] = manifest_json(manifest)
     return write_book(out_path, files, single_file=len(context.pages) == 1)
+
+
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause Python's cycle collector while the book builds its many small objects, none of them
+    cyclic (the collector would only rescan them); restored afterwards."""
+    collecting = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if collecting:
+            gc.enable()
 
 
 def _render(env: jinja2.Environment, context: BookContext) -> dict[str, str]:
@@ -262,27 +288,12 @@ def build_context(
     marks = _marks(study) if (cells["banner"] != TOTAL).any() else None
     labels = {name: v.label for name, v in study.variables.items()}
     independence = _independence_lines(tests, labels, marks)
-    by_table = {key[0]: frame.to_dicts() for key, frame in _shown(cells, wave_order).partition_by(
-        "table", as_dict=True).items()}
-    sections = []
-    for index, (name, variable) in enumerate(study.variables.items()):
-        frame_rows = by_table.get(name, [])
-        indexed = table_cells(variable, frame_rows)
-        table, omitted = wave_table(
-            variable, columns, indexed, weighted=weighted, level_label=level_label, marks=marks or Marks()
-        )
-        banners = _banner_tables(
-            variable, indexed, frame_rows, wave_order=wave_order, wave_labels=wave_labels, labels=labels,
-            omitted=omitted, weighted=weighted, level_label=level_label, marks=marks or Marks(),
-            independence=independence,
-        )
-        sections.append(
-            Section(
-                anchor=anchor_of(index, name), page="", href="", name=name, label=variable.label,
-                type_label=type_label(variable), table=table, banners=banners, chart=chart_of(table),
-                has_low_base=any(c.base_flag for t in (table, *banners) for r in t.rows for c in r.cells),
-            )
-        )
+    shown = _shown(cells, wave_order).select(*READ_COLUMNS, TEXT_ALONE, TEXT_SHARED, TEXT_INTERVAL)
+    by_table = {key[0]: frame.to_dicts() for key, frame in shown.partition_by("table", as_dict=True).items()}
+    with _collector_paused():
+        sections = _sections(study, by_table, columns, wave_order=wave_order, wave_labels=wave_labels,
+                             labels=labels, weighted=weighted, level_label=level_label, marks=marks,
+                             independence=independence)
     sections_t = tuple(sections)
     staged = [w.respondents for w in waves if w.respondents is not None]
     generated = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
@@ -321,14 +332,50 @@ def build_context(
     return paged(context, single_file=single_file)
 
 
+def _sections(study: Study, by_table: Mapping[str, list[dict]], columns: tuple[Column, ...], *,
+              wave_order: Sequence[str], wave_labels: Mapping[str, str], labels: Mapping[str, str], weighted: bool,
+              level_label: str, marks: Marks | None,
+              independence: Mapping[tuple[str, str, str], tuple[str, ...]]) -> list[Section]:
+    """One section per codebook variable: its by-wave table, banner tables and chart (page and
+    href are filled in by `paged`)."""
+    sections = []
+    for index, (name, variable) in enumerate(study.variables.items()):
+        frame_rows = by_table.get(name, [])
+        indexed = table_cells(variable, frame_rows)
+        table, omitted = wave_table(
+            variable, columns, indexed, weighted=weighted, level_label=level_label, marks=marks or Marks()
+        )
+        banners = _banner_tables(
+            variable, indexed, frame_rows, wave_order=wave_order, wave_labels=wave_labels, labels=labels,
+            omitted=omitted, weighted=weighted, level_label=level_label, marks=marks or Marks(),
+            independence=independence,
+        )
+        sections.append(
+            Section(
+                anchor=anchor_of(index, name), page="", href="", name=name, label=variable.label,
+                type_label=type_label(variable), table=table, banners=banners, chart=chart_of(table),
+                has_low_base=any(c.base_flag for t in (table, *banners) for r in t.rows for c in r.cells),
+            )
+        )
+    return sections
+
+
 def _shown(cells: pl.DataFrame, wave_order: Sequence[str]) -> pl.DataFrame:
     """The rows the book shows: the Total of every wave, and each table's banner columns in the
-    latest wave that has them (earlier waves' banner columns are in the export, not the book)."""
+    latest wave that has them (earlier waves' banner columns are in the export, not the book),
+    with the percentages' texts (`numbers.percent_text_exprs`)."""
     position = pl.col("wave").replace_strict({w: i for i, w in enumerate(wave_order)}, default=-1,
                                              return_dtype=pl.Int64)
     banner = pl.col("banner") != TOTAL
     latest = pl.when(banner).then(position).max().over("table", "banner")
-    return cells.filter(~banner | (position == latest))
+    shown = cells.filter(~banner | (position == latest))
+    percent = pl.col("statistic") == "percent"
+    alone, shared, interval = percent_text_exprs(100 * pl.col("estimate"), 100 * pl.col("ci_low"),
+                                                 100 * pl.col("ci_high"))
+    return shown.with_columns(  # the percentages' texts for the whole frame at once (`tables.format_cell`)
+        pl.when(percent).then(alone).alias(TEXT_ALONE), pl.when(percent).then(shared).alias(TEXT_SHARED),
+        pl.when(percent).then(interval).alias(TEXT_INTERVAL),
+    )
 
 
 def _banner_tables(

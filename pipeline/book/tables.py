@@ -67,6 +67,10 @@ ADJUSTMENTS = {
     "bh": "p-values adjusted within each row (Benjamini and Hochberg's false discovery rate)",
 }
 
+# Optional row fields with a percentage's texts made for the whole frame at once
+# (`numbers.percent_text_exprs`, the same texts as `percent_texts`; `render._shown` adds them).
+TEXT_ALONE, TEXT_SHARED, TEXT_INTERVAL = "__text", "__text_shared", "__interval"
+
 Key = tuple[str, str, str, int, str]  # (wave, banner, column, row, statistic)
 
 
@@ -258,14 +262,15 @@ def format_cell(row: Mapping | None, count: Mapping | None, kind: str, *, weight
     if statistic == "percent":
         shown = count.get("estimate") if count is not None else None
         count_shown = count_text(shown) if shown is not None else None
+        alone = row.get(TEXT_ALONE) or percent_texts(estimate)[0]
         if kind in UNTESTED_KINDS or not precise:
-            text, _ = percent_texts(estimate)
-            return Cell(text=text, base_flag=flag, count=count_shown, estimate=estimate, **marks)
+            return Cell(text=alone, base_flag=flag, count=count_shown, estimate=estimate, **marks)
         if "set_by_weighting" in flags:
-            text, _ = percent_texts(estimate)
-            return Cell(text=text, base_flag=flag, interval=SET_BY_WEIGHTING, count=count_shown, estimate=estimate,
+            return Cell(text=alone, base_flag=flag, interval=SET_BY_WEIGHTING, count=count_shown, estimate=estimate,
                         **marks)
-        text, interval = percent_texts(estimate, low, high)
+        text, interval = row.get(TEXT_SHARED), row.get(TEXT_INTERVAL)
+        if text is None or (interval is None and low is not None and high is not None):
+            text, interval = percent_texts(estimate, low, high)
         return Cell(
             text=text, base_flag=flag, interval=interval, se=_se_text(kind, se), deff=ratio_text(row.get("deff")),
             count=count_shown, estimate=estimate, low=low, high=high, **marks,
