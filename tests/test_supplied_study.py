@@ -289,7 +289,7 @@ replicate_method = "sdr"
 
 
 @pytest.mark.skipif(not FOLDER.is_dir(), reason=f"reference folder {FOLDER} is absent")
-def test_acs_verification_table_from_a_study_spec(tmp_path: Path) -> None:
+def test_acs_verification_table_from_a_study_spec(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     waves = ""
     for state in sorted(STATES):
         persons = pl.read_csv(FOLDER / f"acs_pums_2017_2021_5yr_person_{state}.csv", infer_schema_length=None)
@@ -327,6 +327,20 @@ def test_acs_verification_table_from_a_study_spec(tmp_path: Path) -> None:
                                                                              row["PUMS_SE_17_TO_21"])
     # Census "PUMS Estimates for User Verification" 2017-2021: estimate and SE equal after rounding, 48 of 48
     assert (checked, mismatched) == (48, 0)
+    # the run's book numbers on the same staged waves equal `estimate` on the file (identity: the same formula)
+    book = run_study(spec, quiet=True)
+    cells = pl.read_parquet(book.parent / "acs_cells.parquet").filter(
+        (pl.col("banner") == "total") & (pl.col("variable") == "SEX") & (pl.col("statistic") == "percent")
+        & pl.col("row_label").is_in(["Male", "Female"]))
+    assert cells.height == 2 * len(STATES)
+    for state in STATES:
+        capsys.readouterr()
+        assert main(["estimate", str(tmp_path / f"{state}.csv"), "--weight", "PWGTP", "--proportion", "SEX",
+                     "--variance", "supplied", "--replicate-cols", r"PWGTP\d+", "--format", "json", "--quiet"]) == 0
+        cli = {r["category"]: r for r in json.loads(capsys.readouterr().out)}
+        for row in cells.filter(pl.col("wave") == state).iter_rows(named=True):
+            want = cli["1" if row["row_label"] == "Male" else "2"]
+            assert row["se"] == pytest.approx(want["se"], rel=1e-10) and row["df"] == 79 == want["df"]
 
 
 RAKE = '''
@@ -415,3 +429,24 @@ def test_help_and_readme_state_each_default(capsys: pytest.CaptureFixture[str]) 
     for default in ('method = "supplied"', "sdr 4/R, jackknife (R-1)/R,", "default R - 1; brr and fay must give it",
                     'centre = "full-sample"', "required: sdr, jackknife"):
         assert default in readme, default
+
+
+def test_supplied_replicate_totals_in_blocks_equal_one_product() -> None:
+    from pipeline.estimation.replicates import supplied_replicate_totals
+
+    frame, r = _with_replicates(_respondents(PSUS), "jackknife", np.zeros(PSUS, dtype=np.int64))
+    quantities = {f"q{k}": (pl.col("spend") * (pl.col("q1") == 1 + k % 3)) for k in range(7)}
+    weights = [f"rw{k}" for k in range(1, r + 1)]
+    blocks = supplied_replicate_totals(frame, quantities, weights, chunk_bytes=8 * frame.height * 2)  # 2 per block
+    direct = frame.select(weights).to_numpy().T @ frame.select(**quantities).cast(pl.Float64).to_numpy()
+    np.testing.assert_allclose(blocks, direct, rtol=1e-12)  # identity: the same sums, blocked by quantity
+
+
+def test_a_finite_population_correction_beside_supplied_replicates_is_refused(tmp_path: Path) -> None:
+    frame, _ = _with_replicates(_respondents(PSUS), "jackknife", np.zeros(PSUS, dtype=np.int64))
+    spec = _study(tmp_path, frame, variance='replicate_method = "jackknife"')
+    spec.write_text(spec.read_text().replace('base_weight = "wt"', 'base_weight = "wt"\npopulation = { all = 5000 }'),
+                    encoding="utf-8")
+    with pytest.raises(SpecError) as info:
+        load_spec(spec)
+    assert [p.message.split(":")[0] for p in info.value.problems] == ["design.population"]

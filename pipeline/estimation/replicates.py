@@ -484,8 +484,10 @@ def supplied_replicate_totals(
     weights: Sequence[str],
     *,
     source: str | None = None,
+    chunk_bytes: int = 256 * 2**20,
 ) -> np.ndarray:
-    """Replicate totals t_rk = sum_i W_ir y_ik from replicate-weight columns: one product W^T Y.
+    """Replicate totals t_rk = sum_i W_ir y_ik from replicate-weight columns: products W^T Y, the
+    quantities Y evaluated in blocks of at most `chunk_bytes` of (respondent, quantity) values.
 
     weights: the R replicate-weight columns, in replicate order. Raises DataError naming every
     missing column and every column with missing or non-finite weights (with counts); `source`
@@ -511,8 +513,15 @@ def supplied_replicate_totals(
     ]
     if problems:
         raise DataError("the replicate-weight columns are invalid", problems)
-    y = frame.select(expr.cast(pl.Float64).alias(name) for name, expr in quantities.items()).to_numpy()
-    return w.to_numpy().T @ y
+    wt = w.to_numpy().T  # (R, n)
+    names = list(quantities)
+    step = max(1, chunk_bytes // (8 * max(frame.height, 1)))  # quantities per block of (n, k) values
+    out = np.empty((len(weights), len(names)))
+    for lo in range(0, len(names), step):
+        block = names[lo : lo + step]
+        y = frame.select(quantities[name].cast(pl.Float64).alias(name) for name in block).to_numpy()
+        out[:, lo : lo + len(block)] = wt @ y
+    return out
 
 
 def _class_by_psu(gt: GroupTotals, values: np.ndarray) -> np.ndarray:
