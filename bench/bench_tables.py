@@ -11,8 +11,10 @@ What each timing counts (per variance method, Taylor and the stratified jackknif
 PSUs in 20 strata give 400 replicates):
   topline   `pipeline.tables.weighted_cells.wave_estimates` for both waves: the 60 stubs' weighted rows
             with standard errors, intervals and design effects, one grouped pass per wave;
-  tables    `pipeline.tables.Tabulation` for both waves (one grouped pass per wave for all cells,
-            then the tests) and `finish` (wave-over-wave tests, chance marks).
+  tables    `pipeline.tables.Tabulation` for both waves, as the runner uses it: the same topline
+            estimates and the banner cells (two grouped passes per wave), the tests, and `finish`
+            (wave-over-wave tests of the Total and of every cell, chance marks); so the ratio is the
+            run with banner tables against the run without.
 Each method runs in its own process; the tables run first, so the peak resident set size after
 them is theirs (with the generated data, also reported alone), then the topline's. Figures and ratios are printed; nothing is asserted. The
 target of issue 12: tables at most 3x the topline's time, peak RSS at most 4 GB.

@@ -153,7 +153,8 @@ def weigh_and_estimate(
     Weighting warnings go to stderr. Each wave's rows are read from the database once: the
     weighting columns and the banner's break columns first (kept for the whole wave), then the
     answer columns in the batches of variables that fit `memory_budget` bytes
-    (`pipeline.memory.variable_batches`); each batch is given to `tabulation` (default: a new
+    (`pipeline.memory.variable_batches`, the banner fit's matrices counted: `Tabulation.batch_bytes`);
+    each batch is given to `tabulation` (default: a new
     `Tabulation` of the study's `[tables]`), which estimates its toplines in one grouped pass and
     its banner cells in another. With `design.same_psus_across_waves` each batch's columns of the
     earlier wave it is stacked with are read again beside it (and the batches are sized for the
@@ -196,7 +197,8 @@ def weigh_and_estimate(
             start = time.perf_counter()
             layout = cells.filter(pl.col("wave") == wave_id)
             frames = 3 if study.design.same_psus_across_waves else 1
-            batches = variable_batches(study, held.height * frames, memory_budget, held_columns=held.width)
+            batches = variable_batches(study, held.height * frames, memory_budget, held_columns=held.width,
+                                       extra=tabulation.batch_bytes(held, recipe, layout))
             replay = RememberedReplay(recipe.replay)
             for k, names in enumerate(batches):
                 label = f"estimating wave {wave_id}" + (f" ({k + 1} of {len(batches)})" if len(batches) > 1 else "")

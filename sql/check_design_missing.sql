@@ -7,7 +7,7 @@ select
     min(wb_text({{ id|ident }}), 5) as examples,
     null as detail
 from {{ raw|ident }}
-where wb_text({{ c|ident }}) is null
+where wb_blank({{ c|ident }})
 having count(*) > 0
 {% if not loop.last %}union all
 {% endif %}

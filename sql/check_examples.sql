@@ -3,7 +3,7 @@
 {% for c in columns -%}
 select b.key, min(wb_text(r.{{ id|ident }}), 5) as examples
 from {{ raw|ident }} as r
-join wb_bad as b on b.col = $names[{{ loop.index }}] and b.val = r.{{ c|ident }}
+join wb_bad as b on b.col = $names[{{ loop.index }}] and b.val = wb_value(r.{{ c|ident }})
 group by b.key
 {% if not loop.last %}union all
 {% endif %}

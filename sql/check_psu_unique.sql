@@ -2,7 +2,7 @@
 with spread as (
     select wb_text({{ psu|ident }}) as psu
     from {{ raw|ident }}
-    where wb_text({{ psu|ident }}) is not null and wb_text({{ strata|ident }}) is not null
+    where not wb_blank({{ psu|ident }}) and not wb_blank({{ strata|ident }})
     group by all
     having count(distinct wb_text({{ strata|ident }})) > 1
 )

@@ -10,7 +10,7 @@ from (
         {% if int_keys %}wb_code(wb_text({{ strata|ident }})){% else %}wb_text({{ strata|ident }}){% endif %} as stratum,
         wb_text({{ id|ident }}) as id
     from {{ raw|ident }}
-    where wb_text({{ strata|ident }}) is not null
+    where not wb_blank({{ strata|ident }})
 ) as r
 anti join wb_strata as p on p.code = r.stratum
 group by r.stratum

@@ -1,17 +1,7 @@
--- A CSV wave file as a temp table of text columns, exactly as written (no type guessing:
--- the checks see the raw text; empty fields are NULL). rowid + 1 is the data row number.
--- The dialect is fixed (comma, double quotes, a header line) and strict: a row with more or
--- fewer fields than the header is an error, never padded or read as one wide column. The
--- column names come from the header as pipeline.readers read it ($columns: name -> VARCHAR).
+-- A CSV wave file as a temp table in the strict dialect of load_csv_read.sql: text columns exactly
+-- as written, and the columns the spec reads as numbers typed DOUBLE (pipeline.staging.readers).
+-- rowid + 1 is the data row number. Identifiers: table, rejects (record conversion failures in
+-- wb_rejects instead of failing).
+{% from "load_csv_read.sql" import read_csv %}
 create or replace temp table {{ table|ident }} as
-select * from read_csv(
-    $path,
-    auto_detect = false,
-    header = true,
-    delim = ',',
-    quote = '"',
-    escape = '"',
-    strict_mode = true,
-    null_padding = false,
-    columns = $columns
-)
+select * from {{ read_csv(rejects) }}

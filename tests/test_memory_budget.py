@@ -59,6 +59,15 @@ def test_batches_hold_every_variable_once_in_spec_order_within_the_budget() -> N
     assert len(variable_batches(study, rows, budget, held_columns=6)) > len(batches)
 
 
+def test_a_variables_extra_bytes_come_off_its_batch() -> None:
+    """The banner fit's working set of a stub (`Tabulation.batch_bytes`) counts like its columns."""
+    study = _study()
+    names = list(study.variables)
+    assert variable_batches(study, 1_000, DEFAULT_BUDGET, extra={names[0]: DEFAULT_BUDGET}) == [[names[0]], names[1:]]
+    half = {n: DEFAULT_BUDGET // 2 - 10**6 for n in names}  # two variables per batch
+    assert variable_batches(study, 1_000, DEFAULT_BUDGET, extra=half) == [names[i:i + 2] for i in range(0, len(names), 2)]
+
+
 def test_demo_results_do_not_depend_on_the_batching(tmp_path: Path) -> None:
     """One variable per batch (a 1-byte budget) gives the figures of one batch for everything: each
     estimate reads only its own quantities (rel 1e-12: the same sums; nothing is reordered across batches)."""

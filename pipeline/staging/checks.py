@@ -2,12 +2,16 @@
 
 Each rule is one query in `sql/check_*.sql` returning rows of (col, value, n, examples, detail);
 this module turns them into `Problem`s with readable messages. Errors stop staging; warnings are
-printed and recorded. Speed: the per-respondent work is a few grouped passes over the raw text
-table (see pipeline.staging.readers). The coded columns are counted once per distinct value
-(`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items, integer codes) and the
-drift rules then work on that small table, and example ids are looked up in one more pass
-(`check_examples.sql`) only when a rule found something. Numeric and design columns are checked
-with one filtered pass per column, all in one query per rule.
+printed and recorded. The checks read one relation with the wave's columns under their spec
+names: the raw temp table's wave view, or (staging a CSV file straight from the file) the wave's
+rows just inserted into `responses`; the `wb_*` macros read text and typed columns alike.
+Speed: the per-respondent work is a few passes. The row rules (missing and repeated ids,
+missing design values, non-numbers, bounds, design weights) are counted for every column at
+once by one screening pass (`check_screen.sql`), and a rule's own query, with its values,
+counts and example ids, runs only where that count is not 0. The coded columns are counted once
+per distinct value (`check_values.sql` -> wb_values); the code rules (codebook, 0/1 items,
+integer codes) and the drift rules then work on that small table, and example ids are looked up
+in one more pass (`check_examples.sql`) only when a rule found something.
 
 Rules (severity): missing-column (error), extra-column (warning), empty-file (error),
 missing-id, duplicate-id, code-outside-codebook, not-a-number, multi-not-binary,
@@ -283,7 +287,7 @@ class _Context:
     def routing_problems(self, present: set[str]) -> list[Problem]:
         """answered-not-asked: respondents outside a variable's `asked_if` who answered it anyway.
 
-        The condition is compiled to a DuckDB expression over the raw text columns read through the
+        The condition is compiled to a DuckDB expression over the raw columns read through the
         typing macros (pipeline.staging.conditions.to_duckdb), never to SQL text.
         """
         import duckdb
@@ -296,7 +300,7 @@ class _Context:
             columns = [c for c in variable.columns if c in present]
             if condition is None or not columns or not set(condition.names) <= present:
                 continue
-            answered = [duckdb.FunctionExpression("wb_text", duckdb.ColumnExpression(c)).isnotnull() for c in columns]
+            answered = [~duckdb.FunctionExpression("wb_blank", duckdb.ColumnExpression(c)) for c in columns]
             any_answer = answered[0]
             for more in answered[1:]:
                 any_answer = any_answer | more
@@ -350,30 +354,69 @@ class _Context:
             ))
         return problems
 
-    def rule_problems(self) -> list[Problem]:
-        """The error rules, each one query over all the columns it concerns."""
+    def screen(self) -> dict[tuple[str, str], int]:
+        """(rule, column) -> how many rows the rule's query would report, for every row rule and
+        column, from one pass over the wave (`sql/check_screen.sql`)."""
         study, cols, design = self.study, self.columns, self.study.design
         id_col = study.respondent_id
-        found = self.run(
-            _Rule("missing-id", "error", lambda r: f"{r[2]} rows have no respondent id; every row needs one"),
-            "check_missing_id.sql",
-            {"column": id_col},
-            id=id_col,
-        )
-        found = [replace(p, examples=tuple(f"row {e}" for e in p.examples)) for p in found]
-        found += self.run(
-            _Rule(
-                "duplicate-id",
-                "error",
-                lambda r: (
-                    "1 respondent id appears" if r[4] == "1" else f"{r[4]} respondent ids appear"
-                )
-                + " on more than one row (ids must be unique within a wave)",
+        numbers = _unique([*cols.numbers, *cols.weights])
+        bounds = [self.owner[c] for c in cols.bounded]
+        keys = [("missing-id", id_col), ("duplicate-id", id_col)]
+        keys += [("missing-design-value", c) for c in cols.design]
+        keys += [("not-a-number", c) for c in numbers]
+        keys += [("out-of-bounds", c) for c in cols.bounded]
+        keys += [(rule, c) for c in cols.weights for rule in ("bad-design-weight", "weight-out-of-range")]
+        params: dict[str, object] = {"largest": LARGEST_WEIGHT} if cols.weights else {}
+        if bounds:
+            params["minimum"] = [v.minimum if v.minimum is not None else -math.inf for v in bounds]
+            params["maximum"] = [v.maximum if v.maximum is not None else math.inf for v in bounds]
+        counts = self.con.execute(
+            sql(
+                "check_screen.sql",
+                raw=self.raw,
+                id=id_col,
+                design=cols.design,
+                numbers=numbers,
+                bounded=cols.bounded,
+                weights=[{"name": c, "probability": c == design.selection_probability} for c in cols.weights],
             ),
-            "check_duplicate_id.sql",
-            {"column": id_col},
-            id=id_col,
-        )
+            params,
+        ).fetchall()[0]
+        return dict(zip(keys, counts, strict=True))
+
+    def rule_problems(self) -> list[Problem]:
+        """The error rules, each one query over all the columns it concerns; the row rules only
+        where the screen (one pass for them all) found something."""
+        study, cols, design = self.study, self.columns, self.study.design
+        id_col = study.respondent_id
+        screen = self.screen()
+
+        def failing(rule: str, columns: list[str]) -> list[str]:
+            return [c for c in columns if screen[(rule, c)]]
+
+        found: list[Problem] = []
+        if screen[("missing-id", id_col)]:
+            found = self.run(
+                _Rule("missing-id", "error", lambda r: f"{r[2]} rows have no respondent id; every row needs one"),
+                "check_missing_id.sql",
+                {"column": id_col},
+                id=id_col,
+            )
+            found = [replace(p, examples=tuple(f"row {e}" for e in p.examples)) for p in found]
+        if screen[("duplicate-id", id_col)]:
+            found += self.run(
+                _Rule(
+                    "duplicate-id",
+                    "error",
+                    lambda r: (
+                        "1 respondent id appears" if r[4] == "1" else f"{r[4]} respondent ids appear"
+                    )
+                    + " on more than one row (ids must be unique within a wave)",
+                ),
+                "check_duplicate_id.sql",
+                {"column": id_col},
+                id=id_col,
+            )
         if cols.codes:
             found += self.run(
                 _Rule(
@@ -389,7 +432,7 @@ class _Context:
         )
         if cols.int_codes:
             found += self.run(not_a_number, "check_codes_not_numeric.sql")
-        numbers = _unique([*cols.numbers, *cols.weights])
+        numbers = failing("not-a-number", _unique([*cols.numbers, *cols.weights]))
         if numbers:
             found += self.run(not_a_number, "check_not_numeric.sql", {"names": numbers}, id=id_col, columns=numbers)
         if cols.items:
@@ -402,20 +445,22 @@ class _Context:
                 ),
                 "check_multi_binary.sql",
             )
-        if cols.bounded:
-            bounds = [self.owner[c] for c in cols.bounded]
+        bounded = failing("out-of-bounds", cols.bounded)
+        if bounded:
+            bounds = [self.owner[c] for c in bounded]
             found += self.run(
                 _Rule("out-of-bounds", "error", self.bounds_message),
                 "check_bounds.sql",
                 {
-                    "names": cols.bounded,
+                    "names": bounded,
                     "minimum": [v.minimum if v.minimum is not None else -math.inf for v in bounds],
                     "maximum": [v.maximum if v.maximum is not None else math.inf for v in bounds],
                 },
                 id=id_col,
-                columns=cols.bounded,
+                columns=bounded,
             )
-        if cols.design:
+        missing = failing("missing-design-value", cols.design)
+        if missing:
             found += self.run(
                 _Rule(
                     "missing-design-value",
@@ -423,11 +468,12 @@ class _Context:
                     lambda r: f"{r[2]} rows have no {self.design_key(r[0])} value; every respondent needs one",
                 ),
                 "check_design_missing.sql",
-                {"names": cols.design},
+                {"names": missing},
                 id=id_col,
-                columns=cols.design,
+                columns=missing,
             )
-        if cols.weights:
+        weights = failing("bad-design-weight", cols.weights)
+        if weights:
             found += self.run(
                 _Rule(
                     "bad-design-weight",
@@ -440,17 +486,18 @@ class _Context:
                     + f" ({r[4]})",
                 ),
                 "check_weights.sql",
-                {"names": cols.weights},
+                {"names": weights},
                 id=id_col,
-                columns=[{"name": c, "probability": c == design.selection_probability} for c in cols.weights],
+                columns=[{"name": c, "probability": c == design.selection_probability} for c in weights],
             )
-        found += self.weight_size_problems()
+        found += self.weight_size_problems(failing("weight-out-of-range", cols.weights))
         found += self.strata_problems()
         return found
 
-    def weight_size_problems(self) -> list[Problem]:
+    def weight_size_problems(self, out_of_range: list[str]) -> list[Problem]:
         """Design weights (base weight or 1 / selection probability) too large to compute with
-        (error weight-out-of-range, above LARGEST_WEIGHT or not finite) and those above
+        (error weight-out-of-range, above LARGEST_WEIGHT or not finite; queried for the columns
+        `out_of_range` only, where the screen found some) and those above
         `design.extreme_weight_ratio` times the median weight (warning extreme-weight, with ids)."""
         design, id_col = self.study.design, self.study.respondent_id
         found: list[Problem] = []
@@ -458,7 +505,7 @@ class _Context:
             context = {"id": id_col, "column": column, "probability": column == design.selection_probability}
             params = {"column": column, "largest": LARGEST_WEIGHT}
             weight = "1 / the selection probability" if context["probability"] else "the base weight"
-            found += self.run(
+            found += [] if column not in out_of_range else self.run(
                 _Rule(
                     "weight-out-of-range",
                     "error",

@@ -1,10 +1,19 @@
-"""Read a raw wave file (CSV or Parquet) into a DuckDB temp table of text columns.
+"""Read a raw wave file (CSV or Parquet) into a DuckDB temp table, close to the reader's own speed.
 
-Every column arrives as text, exactly as the file holds it, so the staging checks see what was
-written (a '3,5' in a numeric column is reported, not silently turned into NULL); the SQL reads
-it through the `wb_text` (trimmed, empty -> NULL), `wb_number` and `wb_code` macros. Whole floats
-from Parquet's typed columns are written as integer text ('3.0' -> '3'), so both formats stage
-identical rows. The table's rowid + 1 is the data row number (rows keep the file's order).
+A CSV file is read once, typed: the columns the spec reads as numbers (integer codes, 0/1 items,
+numeric variables, design weights; `typed`, from pipeline.staging.wave_columns.typed_file_columns)
+as DOUBLE, every other column as text exactly as written. A value that does not convert is not
+lost: the typed read records it in DuckDB's rejects table (`store_rejects`) instead of failing,
+and the columns it names, with the typed columns holding a value whose spelling the checks must
+report as written (not finite; a fraction or a huge number in a code column; anything but 0/1 in
+an item: `sql/load_text_needed.sql`, one pass), are read again as text, so the staging checks see
+what was written there (a '3,5' in a numeric column is reported, not silently turned into NULL).
+A structural error (ragged row, non-UTF-8 line) fails the second, strict read and is reported as
+before. The SQL reads every column through the `wb_text` (trimmed, empty -> NULL), `wb_number`,
+`wb_code` and `wb_value` macros, which take text or typed numbers alike. Parquet files arrive as
+text; whole floats from their typed columns are written as integer text ('3.0' -> '3'), so both
+formats stage identical rows. The table's rowid + 1 is the data row number (rows keep the file's
+order).
 """
 
 from __future__ import annotations
@@ -12,6 +21,7 @@ from __future__ import annotations
 import csv
 import io
 import re
+from collections.abc import Mapping
 from pathlib import Path
 
 import duckdb
@@ -21,6 +31,7 @@ from pipeline.sqlfiles import sql
 
 FORMATS = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
 _FLOAT_TYPES = ("DOUBLE", "FLOAT", "REAL")
+REJECTS_TABLES = ("wb_rejects", "wb_reject_scans")  # named in sql/load_csv_read.sql
 MAX_LISTED = 20  # rows listed one by one in a file's problems; the rest are counted
 
 
@@ -43,11 +54,13 @@ def file_format(path: Path) -> str:
 
 def prepare_connection(con: duckdb.DuckDBPyConnection) -> None:
     """Set a connection up for wavebook: no progress bar on the terminal (wavebook shows its own),
-    and the text macros the load, check and stage SQL use (`wb_text`, `wb_number`, `wb_code`)."""
+    and the macros the load, check and stage SQL read values with (`wb_number`, `wb_code`, `wb_text`, `wb_value`, `wb_blank`)."""
     con.execute(sql("load_settings.sql"))
-    con.execute(sql("load_macro_text.sql"))
     con.execute(sql("load_macro_number.sql"))
     con.execute(sql("load_macro_code.sql"))
+    con.execute(sql("load_macro_text.sql"))
+    con.execute(sql("load_macro_value.sql"))
+    con.execute(sql("load_macro_blank.sql"))
 
 
 def literal_path(path: Path) -> str:
@@ -56,8 +69,14 @@ def literal_path(path: Path) -> str:
     return re.sub(r"([*?\[])", r"[\1]", str(path))
 
 
-def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str]:
-    """Load `path` into the temp table `table` (text columns); return the file's column names in order.
+def read_raw(
+    con: duckdb.DuckDBPyConnection, path: Path, table: str, typed: Mapping[str, str] | None = None
+) -> list[str]:
+    """Load `path` into the temp table `table`; return the file's column names in order.
+
+    typed: file column -> "number", "code" or "item" for the columns a CSV file is read typed
+    (DOUBLE); every other column, every column of a Parquet file, and a typed column with a value
+    that must be seen as written (see the module docstring) is text.
 
     Raises DataError naming the file when it cannot be read: missing-file, empty-file,
     duplicate-column (with the 1-based positions), not-utf8 and ragged-row (with the line numbers
@@ -81,8 +100,7 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
             con.execute(sql("load_parquet.sql", table=table, columns=columns), params)
         else:
             header = csv_header(path)
-            params = {"path": literal_path(path), "columns": dict.fromkeys(header, "VARCHAR")}
-            con.execute(sql("load_csv.sql", table=table), params)
+            _read_csv(con, path, table, header, {c: kind for c, kind in (typed or {}).items() if c in header})
             columns = _columns(con.execute(sql("load_describe_table.sql", table=table)).fetchall())
     except duckdb.Error as exc:
         problems = csv_problems(path, len(header)) if fmt == "csv" else []
@@ -91,6 +109,62 @@ def read_raw(con: duckdb.DuckDBPyConnection, path: Path, table: str) -> list[str
             problems or [Problem("unreadable-file", f"the {fmt} file cannot be read: {_reader_message(exc)}", file=str(path))],
         ) from None
     return [c["name"] for c in columns]
+
+
+def _read_csv(con: duckdb.DuckDBPyConnection, path: Path, table: str, header: list[str], typed: dict[str, str]) -> None:
+    """The CSV file into `table`, the `typed` columns as DOUBLE; a column with a value that does
+    not convert or must be seen as written is read again as text (each round only moves columns
+    to text, so this ends; a clean file is read once). A structural error ends in the strict
+    read, which raises as an all-text read would."""
+    path_text = literal_path(path)
+    typed = dict(typed)
+    while typed:
+        params = {"path": path_text, "columns": {c: "DOUBLE" if c in typed else "VARCHAR" for c in header}}
+        _drop_rejects(con)
+        try:
+            con.execute(sql("load_csv.sql", table=table, rejects=True), params)
+            lines, structural, text = con.execute(sql("load_rejected.sql")).fetchall()[0]
+        except duckdb.Error:  # what the typed read cannot get past, the strict text read names
+            lines, structural, text = 1, 1, []
+        finally:
+            _drop_rejects(con)
+        if structural or (lines and not text):  # a bad row, not a bad value: the strict read says which
+            typed = {}
+            break
+        kept = [{"name": c, "kind": kind} for c, kind in typed.items() if c not in text]
+        if kept:
+            flags = con.execute(sql("load_text_needed.sql", table=table, columns=kept)).fetchall()[0]
+            text = [*text, *(c["name"] for c, flag in zip(kept, flags, strict=True) if flag)]
+        if not lines and not text:
+            return
+        typed = {c: kind for c, kind in typed.items() if c not in text}
+    params = {"path": path_text, "columns": {c: "DOUBLE" if c in typed else "VARCHAR" for c in header}}
+    con.execute(sql("load_csv.sql", table=table, rejects=False), params)
+
+
+def csv_relation(
+    con: duckdb.DuckDBPyConnection, path: Path, typed: Mapping[str, str]
+) -> tuple[duckdb.DuckDBPyRelation, list[str]]:
+    """A lazy relation reading the CSV file `path` typed (the `typed` columns as DOUBLE) with its
+    conversion failures recorded rather than raised (`rejected_lines` counts them afterwards), and
+    the file's column names. For staging straight from the file; DataError as `csv_header`."""
+    path = Path(path)
+    header = csv_header(path)
+    prepare_connection(con)
+    _drop_rejects(con)
+    columns = {c: "DOUBLE" if c in typed else "VARCHAR" for c in header}
+    return con.sql(sql("load_csv_relation.sql"), params={"path": literal_path(path), "columns": columns}), header
+
+
+def rejected_lines(con: duckdb.DuckDBPyConnection) -> int:
+    """How many lines the last typed read (`csv_relation`) skipped; 1 when it left no rejects
+    table (so the caller never takes an unread file for a clean one)."""
+    try:
+        lines = int(con.execute(sql("load_rejected.sql")).fetchall()[0][0])
+    except duckdb.CatalogException:
+        return 1
+    _drop_rejects(con)
+    return lines
 
 
 def checked_csv_header(path: Path) -> list[str]:
@@ -198,6 +272,11 @@ def _not_utf8(path: Path, lines: list[int], count: int) -> Problem:
         line=lines[0],
         count=count,
     )
+
+
+def _drop_rejects(con: duckdb.DuckDBPyConnection) -> None:
+    for table in REJECTS_TABLES:
+        con.execute(sql("load_drop_rejects.sql", table=table))
 
 
 def _reader_message(exc: duckdb.Error) -> str:

@@ -21,6 +21,7 @@ from pipeline.staging.database import load_responses
 from pipeline.staging.readers import prepare_connection, read_raw
 from pipeline.staging.spec import Study, Wave
 from pipeline.staging.stage import RAW_TABLE, _write
+from pipeline.staging.wave_columns import typed_file_columns
 
 PSU_KEY = "__wavebook_psu"
 
@@ -34,7 +35,7 @@ def weighting_rehearsal(study: Study, wave: Wave) -> list[Problem]:
     con = duckdb.connect()
     try:
         prepare_connection(con)
-        read_raw(con, wave.file, RAW_TABLE)
+        read_raw(con, wave.file, RAW_TABLE, typed_file_columns(study, wave.id))
         _write(con, study, wave, digest="", warnings=[])
         recipe, _ = fit_wave(study, wave.id, con=con)
         options, _ = parse_variance(study.variance)

@@ -1,10 +1,18 @@
 """Stage a wave: read its raw file, check it, and replace the wave in the study database atomically.
 
-`stage_wave` reads the file into a temp table of text (pipeline.staging.readers), runs every check
-(pipeline.staging.checks) and, only when no check fails, writes the wave in ONE transaction: add the
-columns the spec gained, delete the wave's old rows and their weights, insert the typed rows,
-record the wave in `waves` and its warnings in `problems`. Any failure rolls the transaction
-back, so the database is exactly as it was. Staging one wave never touches another wave's rows.
+Everything happens in ONE transaction: add the columns the spec gained, delete the wave's old rows
+and their weights, insert the typed rows, record the wave in `waves` and its warnings in
+`problems`. Any failure rolls the transaction back, so the database is exactly as it was.
+Staging one wave never touches another wave's rows.
+
+A CSV wave is staged straight from the file (`_stage_direct`): the typed read
+(pipeline.staging.readers.csv_relation) feeds the insert, with every value that would not be
+stored as the checks read it failing the insert (`strict`), and the checks
+(pipeline.staging.checks) then run on the inserted rows inside the transaction. A clean file is
+so read once, at the reader's speed. Anything else (a rejected value, a failed insert, an error
+found by a check, a Parquet file) rolls that back and takes the exact path: the file into a temp
+table (text where a value must be seen as written), every check on it, and the write only when
+no check fails, so a bad file's problems are those of the raw values, with their spellings.
 """
 
 from __future__ import annotations
@@ -30,9 +38,10 @@ from pipeline.staging.database import (
     staged_waves,
     table_columns,
 )
-from pipeline.staging.readers import prepare_connection, read_raw
+from pipeline.staging.readers import csv_relation, file_format, prepare_connection, read_raw, rejected_lines
+from pipeline.staging.replicate_columns import wave_replicates
 from pipeline.staging.spec import Study, Wave
-from pipeline.staging.wave_columns import wave_signature, wave_sources, wave_view
+from pipeline.staging.wave_columns import typed_file_columns, wave_signature, wave_sources, wave_view
 
 RAW_TABLE = "__wavebook_raw"
 
@@ -98,19 +107,23 @@ def stage_wave(study: Study, wave_id: str, *, quiet: bool = False) -> StageRepor
     con = connect(path)
     try:
         prepare_connection(con)
-        problems = _inspect(con, study, wave, quiet=quiet)
-        errors = [p for p in problems if p.severity == "error"]
-        if errors:
-            raise DataError(
-                f"wave {wave.id}: {len(errors)} error{'s' if len(errors) != 1 else ''} in {wave.file}; "
-                "nothing was staged",
-                problems,
-            )
-        warnings = [p for p in problems if p.severity != "error"]
-        with step(f"{wave.id}: hashing {wave.file.name}", quiet=quiet):
-            digest = file_sha256(wave.file)
-        with step(f"{wave.id}: writing to {path.name}", quiet=quiet):
-            rows, replaced, added = _write(con, study, wave, digest=digest, warnings=warnings)
+        direct = _stage_direct(con, study, wave, quiet=quiet)
+        if direct is not None:
+            digest, warnings, (rows, replaced, added) = direct
+        else:
+            problems = _inspect(con, study, wave, quiet=quiet)
+            errors = [p for p in problems if p.severity == "error"]
+            if errors:
+                raise DataError(
+                    f"wave {wave.id}: {len(errors)} error{'s' if len(errors) != 1 else ''} in {wave.file}; "
+                    "nothing was staged",
+                    problems,
+                )
+            warnings = [p for p in problems if p.severity != "error"]
+            with step(f"{wave.id}: hashing {wave.file.name}", quiet=quiet):
+                digest = file_sha256(wave.file)
+            with step(f"{wave.id}: writing to {path.name}", quiet=quiet):
+                rows, replaced, added = _write(con, study, wave, digest=digest, warnings=warnings)
     except BaseException:
         con.close()
         if created:  # the failed first staging leaves no empty database behind
@@ -163,28 +176,108 @@ def shared_file_problems(study: Study, wave: Wave) -> list[Problem]:
     return problems
 
 
+def _stage_direct(
+    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool
+) -> tuple[str, list[Problem], tuple[int, int, list[str]]] | None:
+    """Stage a CSV wave straight from its file and check the inserted rows, in one transaction;
+    (digest, warnings, (rows, replaced, added)) when it is committed, None (rolled back, nothing
+    changed) when the exact path must decide: not a CSV file, a shared file, supplied replicate
+    weights, a rejected value, a failed insert or an error found by a check."""
+    if (
+        not wave.file.is_file()
+        or file_format(wave.file) != "csv"
+        or shared_file_problems(study, wave)
+        or wave_replicates(study, wave.id)  # their checks report file lines: the exact path's row numbers
+    ):
+        return None
+    typed = typed_file_columns(study, wave.id)
+    con.execute(sql("stage_insert_order.sql", keep=False))
+    con.begin()
+    try:
+        with step(f"{wave.id}: reading {wave.file.name} into {study.database_path.name}", quiet=quiet):
+            relation, header = csv_relation(con, wave.file, typed)
+            con.register(RAW_TABLE, relation)
+            replaced, added = _replace_start(con, study, wave)
+            _insert_rows(con, study, wave, strict=True)
+            if rejected_lines(con):
+                raise _Fallback
+        with step(f"{wave.id}: checking", quiet=quiet):
+            _, columns, ignored = wave_view(con, study, wave.id, RAW_TABLE, header)
+            problems = _wave_checks(con, study, wave, _staged_view(con, study, wave, columns), columns, ignored)
+        if any(p.severity == "error" for p in problems):
+            raise _Fallback
+        with step(f"{wave.id}: hashing {wave.file.name}", quiet=quiet):
+            digest = file_sha256(wave.file)
+        with step(f"{wave.id}: writing to {study.database_path.name}", quiet=quiet):
+            rows = _replace_finish(con, study, wave, digest=digest, warnings=problems)
+            con.commit()
+    except (_Fallback, duckdb.Error, DataError):
+        con.rollback()
+        return None
+    except BaseException:
+        con.rollback()
+        raise
+    finally:
+        _unregister(con, RAW_TABLE, STAGED_VIEW)
+        con.execute(sql("stage_insert_order.sql", keep=True))
+    return digest, problems, (rows, replaced, added)
+
+
+class _Fallback(Exception):
+    """The direct path gives way to the exact path (see the module docstring)."""
+
+
+STAGED_VIEW = "__wavebook_staged"
+
+
+def _staged_view(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, columns: list[str]) -> str:
+    """Register STAGED_VIEW: the wave's rows of `responses` (inserted, not yet committed) under the
+    names the checks read (the respondent id under its spec name), the wave view's columns only."""
+    staged = set(table_columns(con, "responses"))
+    relation = con.table("responses").filter(
+        duckdb.ColumnExpression("wave") == duckdb.ConstantExpression(wave.id)
+    ).select(
+        duckdb.ColumnExpression("respondent_id").alias(study.respondent_id),
+        *(duckdb.ColumnExpression(c) for c in columns if c in staged and c != study.respondent_id),
+    )
+    con.register(STAGED_VIEW, relation)
+    return STAGED_VIEW
+
+
+def _unregister(con: duckdb.DuckDBPyConnection, *names: str) -> None:
+    for name in names:
+        con.unregister(name)  # a name never registered is no error
+
+
 def _inspect(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, quiet: bool) -> list[Problem]:
     """Check the wave's file is its own, read it into the raw temp table and run every check;
     return the problems."""
     shared = shared_file_problems(study, wave)
     try:
         with step(f"{wave.id}: reading {wave.file.name}", quiet=quiet):
-            file_columns = read_raw(con, wave.file, RAW_TABLE)
+            file_columns = read_raw(con, wave.file, RAW_TABLE, typed_file_columns(study, wave.id))
     except DataError as exc:
         return shared + exc.problems
     view, columns, ignored = wave_view(con, study, wave.id, RAW_TABLE, file_columns)
     with step(f"{wave.id}: checking", quiet=quiet):
-        return shared + run_checks(
-            con,
-            study,
-            raw=view,
-            file_columns=columns,
-            file=str(wave.file),
-            previous=_earlier_staged(con, study, wave),
-            wave=wave.id,
-            sources=wave_sources(study, wave.id),
-            ignored=tuple(ignored),
-        )
+        return shared + _wave_checks(con, study, wave, view, columns, ignored)
+
+
+def _wave_checks(
+    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, raw: str, columns: list[str], ignored: list[str]
+) -> list[Problem]:
+    """Every check of the wave on the relation `raw` (its columns under their spec names)."""
+    return run_checks(
+        con,
+        study,
+        raw=raw,
+        file_columns=columns,
+        file=str(wave.file),
+        previous=_earlier_staged(con, study, wave),
+        wave=wave.id,
+        sources=wave_sources(study, wave.id),
+        ignored=tuple(ignored),
+    )
 
 
 def _earlier_staged(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> list[str]:
@@ -204,47 +297,9 @@ def _write(
     it; (rows, replaced, added)."""
     con.begin()
     try:
-        create_tables(con, study)
-        added = add_new_columns(con, study)
-        params = {"wave": wave.id}
-        replaced = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
-        con.execute(sql("stage_delete_wave.sql"), params)
-        for (table,) in con.execute(sql("stage_weighting_tables.sql")).fetchall():
-            con.execute(sql("weighting_delete_wave.sql", table=table), params)
+        replaced, added = _replace_start(con, study, wave)
         _insert_rows(con, study, wave)
-        rows = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
-        now = dt.datetime.now(dt.UTC).replace(tzinfo=None)
-        con.execute(
-            sql("stage_upsert_wave.sql"),
-            {
-                "wave": wave.id,
-                "position": [w.id for w in study.waves].index(wave.id),
-                "label": wave.label,
-                "fieldwork_start": wave.fieldwork_start,
-                "fieldwork_end": wave.fieldwork_end,
-                "source_file": str(wave.file),
-                "sha256": digest,
-                "row_count": rows,
-                "staged_at": now,
-                "spec_signature": wave_signature(study, wave.id, column_types(study)),
-            },
-        )
-        con.execute(sql("stage_delete_problems.sql"), params)
-        for p in warnings:
-            con.execute(
-                sql("stage_insert_problem.sql"),
-                {
-                    "wave": wave.id,
-                    "rule": p.rule,
-                    "severity": p.severity,
-                    "column_name": p.column,
-                    "value": p.value,
-                    "count": p.count,
-                    "examples": list(p.examples),
-                    "message": p.message,
-                    "recorded_at": now,
-                },
-            )
+        rows = _replace_finish(con, study, wave, digest=digest, warnings=warnings)
         con.commit()
     except BaseException:
         con.rollback()
@@ -252,16 +307,78 @@ def _write(
     return rows, replaced, added
 
 
-def _insert_rows(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> None:
+def _replace_start(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave) -> tuple[int, list[str]]:
+    """Inside the staging transaction: the tables, the columns the spec gained, and the wave's old
+    rows deleted with their weights and weighting diagnostics; (rows replaced, columns added)."""
+    create_tables(con, study)
+    added = add_new_columns(con, study)
+    params = {"wave": wave.id}
+    replaced = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
+    con.execute(sql("stage_delete_wave.sql"), params)
+    for (table,) in con.execute(sql("stage_weighting_tables.sql")).fetchall():
+        con.execute(sql("weighting_delete_wave.sql", table=table), params)
+    return replaced, added
+
+
+def _replace_finish(
+    con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, digest: str, warnings: list[Problem]
+) -> int:
+    """Inside the staging transaction, once the rows are in: the wave's row in `waves` and its
+    warnings in `problems`; the number of rows staged."""
+    params = {"wave": wave.id}
+    rows = con.execute(sql("stage_count_wave.sql"), params).fetchall()[0][0]
+    now = dt.datetime.now(dt.UTC).replace(tzinfo=None)
+    con.execute(
+        sql("stage_upsert_wave.sql"),
+        {
+            "wave": wave.id,
+            "position": [w.id for w in study.waves].index(wave.id),
+            "label": wave.label,
+            "fieldwork_start": wave.fieldwork_start,
+            "fieldwork_end": wave.fieldwork_end,
+            "source_file": str(wave.file),
+            "sha256": digest,
+            "row_count": rows,
+            "staged_at": now,
+            "spec_signature": wave_signature(study, wave.id, column_types(study)),
+        },
+    )
+    con.execute(sql("stage_delete_problems.sql"), params)
+    for p in warnings:
+        con.execute(
+            sql("stage_insert_problem.sql"),
+            {
+                "wave": wave.id,
+                "rule": p.rule,
+                "severity": p.severity,
+                "column_name": p.column,
+                "value": p.value,
+                "count": p.count,
+                "examples": list(p.examples),
+                "message": p.message,
+                "recorded_at": now,
+            },
+        )
+    return rows
+
+
+def _insert_rows(con: duckdb.DuckDBPyConnection, study: Study, wave: Wave, *, strict: bool = False) -> None:
     """Insert the wave view's rows, typed per the codebook, as the wave's rows of `responses`.
 
-    Columns of variables the wave did not ask are left NULL (not in the file).
+    Columns of variables the wave did not ask are left NULL (not in the file). strict: fail on a
+    value that would not be stored as the checks read it (`sql/stage_insert_responses.sql`).
     """
     view, file_columns, _ = wave_view(con, study, wave.id, RAW_TABLE, list(con.table(RAW_TABLE).columns))
     derived = {v.name for v in study.variables.values() if v.derived}
     present = set(file_columns) & (set(study.design.columns) | set(wave_sources(study, wave.id)) | derived)
-    columns = [{"name": name, "type": dtype} for name, dtype in column_types(study).items() if name in present]
+    source = con.table(view)
+    typed = {name for name, dtype in zip(source.columns, source.types, strict=True) if str(dtype) == "DOUBLE"}
+    columns = [
+        {"name": name, "type": dtype, "typed": name in typed}
+        for name, dtype in column_types(study).items()
+        if name in present
+    ]
     con.execute(
-        sql("stage_insert_responses.sql", raw=view, id=study.respondent_id, columns=columns),
+        sql("stage_insert_responses.sql", raw=view, id=study.respondent_id, columns=columns, strict=strict),
         {"wave": wave.id},
     )

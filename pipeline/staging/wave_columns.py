@@ -40,6 +40,29 @@ def wave_sources(study: Study, wave_id: str) -> dict[str, str]:
     return {**out, **wave_replicates(study, wave_id)}
 
 
+def typed_file_columns(study: Study, wave_id: str) -> dict[str, str]:
+    """File column -> "code", "item" or "number" for the columns of a wave's file the spec reads as
+    numbers (integer-coded single/rating, multi items, numeric variables, base weight, selection
+    probability): pipeline.staging.readers reads them typed. Text codes, strata and PSU ids (unless
+    a codebook variable types them), the respondent id and supplied replicate weights (whose
+    checks report values and lines as written) stay text."""
+    out: dict[str, str] = {}
+    for variable in study.variables.values():
+        for column in variable.wave_columns(wave_id):
+            source = variable.column.get(wave_id, column) if variable.type != "multi" else column
+            if variable.type == "multi":
+                out[source] = "item"
+            elif variable.type == "numeric":
+                out[source] = "number"
+            elif variable.int_coded:
+                out[source] = "code"
+    design = study.design
+    for column in (design.base_weight, design.selection_probability):
+        if column is not None and column not in study.variables and column != study.respondent_id:
+            out.setdefault(column, "number")
+    return out
+
+
 def wave_recodes(study: Study, wave_id: str) -> dict[str, dict[str, str]]:
     """Spec column -> {code as text in the file: codebook code as text} for the wave."""
     return {
@@ -57,7 +80,8 @@ def wave_view(
     Returns (view name, its columns, file columns left out because a renamed column of this wave
     or a derived variable takes their name; they are reported as extra columns). The view keeps the raw table's
     `rowid` (row numbers in messages). A wave with nothing renamed or recoded reads `raw` itself. Recodes compare the code as the
-    integer-code macro reads it (`wb_code`: '6', '6.0' and '06' alike) or the trimmed text.
+    integer-code macro reads it (`wb_code`: '6', '6.0', '06' and a typed 6.0 alike) or the trimmed
+    text; a recoded column holds its codes as that text.
     """
     import duckdb
 
@@ -82,7 +106,7 @@ def wave_view(
             case = duckdb.CaseExpression(code == duckdb.ConstantExpression(pairs[0][0]), duckdb.ConstantExpression(pairs[0][1]))
             for old, new in pairs[1:]:
                 case = case.when(code == duckdb.ConstantExpression(old), duckdb.ConstantExpression(new))
-            value = case.otherwise(value)
+            value = case.otherwise(code)
         selected.append(value.alias(column))
         columns.append(column)
     relation = con.table(raw).select(*selected)

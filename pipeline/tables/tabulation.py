@@ -117,6 +117,10 @@ def _independence(wave: str, wp: WavePlan, state: FitState) -> list[dict]:
     return rows
 
 
+# (groups x quantities) float64 matrices the banner fit of a batch holds at its peak: the grouped
+# pass's totals, counts, squared sums and their staging copies, the final totals, the scaled squared
+# sums and the within-PSU term's copy. A planning figure checked with bench/bench_study_run.py --banner.
+FIT_COPIES = 8
 _TOTAL_ONLY = "__total"  # the stacked design's banner of the variables without a banner table: the Total alone
 _TOTAL_KEYS = ["wave", "table", "row"]
 
@@ -208,6 +212,25 @@ class Tabulation:
         """The columns of every banner's break variables (read with the weighting columns, held for the wave)."""
         breaks = [v for b in (self.spec.banners.values() if self.spec is not None else ()) for v in b.breaks]
         return list(dict.fromkeys(c for v in breaks for c in self.study.variables[v].columns))
+
+    def batch_bytes(self, held: pl.DataFrame, recipe: FittedRecipe, layout: pl.DataFrame) -> dict[str, int]:
+        """Bytes the banner fit of each stub of a wave needs (for `pipeline.memory.variable_batches`):
+        FIT_COPIES x groups x its quantities, plus three (PSUs x estimators) matrices (linearized PSU
+        totals, the within-PSU terms), in 8-byte values; groups are the wave's (stratum, PSU, class)
+        cells. `held`: the wave's design columns; {} without `[tables]`."""
+        if self.spec is None:
+            return {}
+        design = self.study.design
+        keys = [c for c in (design.strata, design.psu) if c is not None]
+        frame = wave_frame(held.select("respondent_id", *keys), recipe)
+        groups = frame.select(pl.struct(*keys, _CLASS).n_unique()).item()
+        psus = frame.select(pl.struct(*keys).n_unique()).item() if keys else 1
+        out = {}
+        for name in self.study.variables:
+            wp = plan_wave(self.study, self.spec, self.banners, layout.filter(pl.col("variable") == name),
+                           cross_cells=self.within_applies)
+            out[name] = 8 * (FIT_COPIES * groups * len(wp.plan.quantities) + 3 * psus * len(wp.plan.cells))
+        return out
 
     def stack_with(self, wave: str) -> list[str]:
         """The earlier waves whose rows `add_wave` needs for `wave` (shared PSUs: the previous wave and

@@ -25,7 +25,7 @@ exactly the core's `within_psu_variance` (`tests/test_tables_within.py`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -66,6 +66,7 @@ class WithinTerms:
     u: np.ndarray  # (P, m) PSU totals of the weighted residuals
     m: np.ndarray  # (P,) respondents with a non-zero weight per PSU
     one: int  # column of the quantity 1
+    by_psu: np.ndarray  # (P, K + 1) S(.) summed by PSU: the terms of the products that do not vary by group
 
     @staticmethod
     def build(final: GroupTotals, squared: np.ndarray, ratios: Ratios, calibration: Calibration | None,
@@ -77,12 +78,19 @@ class WithinTerms:
             be = np.where((den != 0) & ~ratios.is_total, -theta / den, 0.0)
         al, be = np.nan_to_num(al), np.nan_to_num(be)
         beta = None
-        if calibration is not None:
-            z = final.totals[:, ratios.num] * al + final.totals[:, np.maximum(ratios.den, 0)] * be
-            beta = _fitted(final, z, calibration)
+        if calibration is not None:  # in blocks of estimators: no (G, m) matrix of linearized values
+            den_idx = np.maximum(ratios.den, 0)
+            beta = np.empty((calibration.matrix.shape[0], len(ratios)))
+            step = max(1, CHUNK_VALUES // max(1, final.totals.shape[0]))
+            for lo in range(0, len(ratios), step):
+                sl = slice(lo, min(len(ratios), lo + step))
+                z = final.totals[:, ratios.num[sl]] * al[sl] + final.totals[:, den_idx[sl]] * be[sl]
+                beta[:, sl] = _fitted(final, z, calibration)
         m = final.psu_totals(final.counts[:, [weight_column]].astype(np.float64))[:, 0]
         sq = np.concatenate([squared, np.zeros((squared.shape[0], 1))], axis=1)
-        return WithinTerms(sq, ratios, al, be, beta, final.cls, final.psu, final.n_psus, u, m, weight_column)
+        terms = WithinTerms(sq, ratios, al, be, beta, final.cls, final.psu, final.n_psus, u, m, weight_column,
+                            np.zeros(0))
+        return replace(terms, by_psu=terms._psu_sums(sq))
 
     def covariance_terms(self, a: np.ndarray, b: np.ndarray, cross: Cross) -> np.ndarray:
         """(P, q) c2_j(a, b) of the module docstring for pairs a[k], b[k]."""
@@ -90,20 +98,20 @@ class WithinTerms:
         q = len(a)
         out = np.zeros((self.n_psus, q))
         step = max(1, CHUNK_VALUES // max(1, self.squared.shape[0]))
-        s = self.squared
+        s, sp = self.squared, self.by_psu
         num, den = self.ratios.num, np.where(self.ratios.is_total, -1, self.ratios.den)
         for lo in range(0, q, step):
             sl = slice(lo, min(q, lo + step))
             ia, ib = a[sl], b[sl]
             aa, ab, ba, bb = self.al[ia], self.al[ib], self.be[ia], self.be[ib]
-            x = (aa * ab * s[:, cross.nn[sl]] + aa * bb * s[:, cross.nd[sl]] + ba * ab * s[:, cross.dn[sl]]
-                 + ba * bb * s[:, cross.dd[sl]])
-            if self.beta is not None:
+            # the coefficients are constant over groups: sum by PSU first, then combine
+            xp = (aa * ab * sp[:, cross.nn[sl]] + aa * bb * sp[:, cross.nd[sl]] + ba * ab * sp[:, cross.dn[sl]]
+                  + ba * bb * sp[:, cross.dd[sl]])
+            if self.beta is not None:  # the fitted calibration values vary by class: per group
                 beta_a, beta_b = self.beta[:, ia][self.cls], self.beta[:, ib][self.cls]
                 sz_a = aa * s[:, num[ia]] + ba * s[:, den[ia]]
                 sz_b = ab * s[:, num[ib]] + bb * s[:, den[ib]]
-                x = x - beta_b * sz_a - beta_a * sz_b + beta_a * beta_b * s[:, [self.one]]
-            xp = self._psu_sums(x)
+                xp = xp + self._psu_sums(beta_a * beta_b * s[:, [self.one]] - beta_b * sz_a - beta_a * sz_b)
             with np.errstate(divide="ignore", invalid="ignore"):
                 c2 = self.m[:, None] / (self.m[:, None] - 1) * (xp - self.u[:, ia] * self.u[:, ib] / self.m[:, None])
             out[:, sl] = np.where(self.m[:, None] >= 2, c2, 0.0)
@@ -136,17 +144,14 @@ class WithinTerms:
         x = (np.einsum("pk,k->pk", rp, al)[:, :, None] * np.eye(len(idx))
              + rp[:, :, None] * be[None, None, :] + be[None, :, None] * rp[:, None, :]
              + jbp[:, None, None] * np.outer(be, be)[None])
-        if self.beta is not None:
+        if self.beta is not None:  # per PSU: sz' b + b' sz - b' diag(S(1)) b over its groups (sorted by PSU)
             b = self.beta[:, idx][self.cls]
+            one = s[:, self.one]
             cross = np.zeros_like(x)
-            step = max(1, CHUNK_VALUES // max(1, len(idx) ** 2))
-            for lo in range(0, len(self.psu), step):
-                sl = slice(lo, lo + step)
-                part = (np.einsum("gk,gl->gkl", sz[sl], b[sl]) + np.einsum("gk,gl->gkl", b[sl], sz[sl])
-                        - s[sl, self.one][:, None, None] * np.einsum("gk,gl->gkl", b[sl], b[sl]))
-                psu = self.psu[sl]
-                starts = np.flatnonzero(np.r_[True, psu[1:] != psu[:-1]])
-                cross[psu[starts]] += np.add.reduceat(part, starts, axis=0)
+            starts = np.flatnonzero(np.r_[True, self.psu[1:] != self.psu[:-1]]) if len(self.psu) else np.zeros(0, np.int64)
+            for lo, hi in zip(starts.tolist(), [*starts[1:].tolist(), len(self.psu)], strict=True):
+                product = sz[lo:hi].T @ b[lo:hi]
+                cross[self.psu[lo]] = product + product.T - (b[lo:hi] * one[lo:hi, None]).T @ b[lo:hi]
             x = x - cross
         u = self.u[:, idx]
         m = self.m[:, None, None]
