@@ -153,8 +153,9 @@ def _estimates_and_book(spec_path: str, memory_budget: str | None, results: mult
     figures = {"estimates": (timings["estimates"], _peak_mib())}
     start = time.perf_counter()
     out = runner.default_book_path(study)
-    write_cells(export_cells(cells, tables), out, study.path.stem)
-    render_book(study, cells, out_path=out, weighting=weighting_section(study, reports),
+    export = export_cells(cells, tables)
+    write_cells(export, out, study.path.stem)
+    render_book(study, export, tests=tables.tests, out_path=out, weighting=weighting_section(study, reports),
                 variance=variance_lines(options, study, calibrated=True), level=options.level)
     figures["book"] = (time.perf_counter() - start, _peak_mib())
     results.put(figures)

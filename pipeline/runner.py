@@ -336,13 +336,15 @@ def run_study(
                 write_workbook(export, tables, study, exports[2])
         variance = (*variance, tables.chance.sentence(), *tables.notes)
     manifest = run_manifest(study, options, started=started, finished=dt.datetime.now(dt.UTC))
-    save_results(study, cells, export=export, tests=tables.tests, weighting=weighting, variance=variance,
+    tests = tables.tests if spec is not None else None
+    save_results(study, cells, export=export, tests=tests, weighting=weighting, variance=variance,
                  level=options.level, manifest=manifest)
     with progress.step("writing the book", quiet=quiet):
         write_cells(export, out_path, study.path.stem)
         return render_book(
             study,
-            cells,
+            export,
+            tests=tests,
             out_path=out_path,
             weighting=weighting,
             variance=variance,
@@ -368,7 +370,8 @@ def rebuild_book(
     with progress.step("writing the book", quiet=quiet):
         return render_book(
             study,
-            stored.cells,
+            stored.export if stored.export is not None else export_cells(stored.cells),
+            tests=stored.tests,
             out_path=out_path,
             weighting=stored.weighting,
             variance=stored.variance,

@@ -24,6 +24,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.book.render import LOW_BASE, VERY_LOW_BASE, build_context, render_book
+from pipeline.tables import export_cells
 from pipeline import outputs as outputs_module
 from pipeline.errors import WavebookError
 from pipeline.staging.spec import Design, Study, Variable, Wave
@@ -335,7 +336,7 @@ def _figure(cell: Element) -> str:
 
 @pytest.fixture
 def book_path(tmp_path: Path, cells: pl.DataFrame) -> Path:
-    return render_book(_study(tmp_path), cells, out_path=tmp_path / "book" / "study.html")
+    return render_book(_study(tmp_path), export_cells(cells), out_path=tmp_path / "book" / "study.html")
 
 
 def test_one_result_table_per_variable_with_caption_and_header_cells(book_path: Path, tmp_path: Path) -> None:
@@ -397,8 +398,8 @@ def _caution_titles(path: Path) -> list[str]:
 
 
 def test_nonprobability_caution_only_for_nonprobability_designs(tmp_path: Path, cells: pl.DataFrame) -> None:
-    probability = render_book(_study(tmp_path), cells, out_path=tmp_path / "p.html")
-    nonprobability = render_book(_study(tmp_path, kind="nonprobability"), cells, out_path=tmp_path / "n.html")
+    probability = render_book(_study(tmp_path), export_cells(cells), out_path=tmp_path / "p.html")
+    nonprobability = render_book(_study(tmp_path, kind="nonprobability"), export_cells(cells), out_path=tmp_path / "n.html")
     assert "Non-probability sample" not in _caution_titles(probability)
     assert "Non-probability sample" in _caution_titles(nonprobability)
     assert "What a confidence interval says" in _caution_titles(probability)
@@ -428,14 +429,14 @@ def test_methodology_says_unweighted_and_lists_waves(book_path: Path) -> None:
 def test_a_declared_wave_not_yet_staged_shows_dashes(tmp_path: Path, cells: pl.DataFrame) -> None:
     study = _study(tmp_path)
     later = dataclasses.replace(study, waves=(*study.waves, Wave("W3", "Wave 3 (autumn)", tmp_path / "w3.csv")))
-    root = _parse(render_book(later, cells, out_path=tmp_path / "three.html"))
+    root = _parse(render_book(later, export_cells(cells), out_path=tmp_path / "three.html"))
     assert _text(_table_cell(_section(root, "Region"), "Northmoor", 2)) == "–"
     (method,) = [s for s in root.iter("section") if s.get("id") == "methodology"]
     assert "Not staged: no figures." in _text(method)
 
 
 def test_footer_gives_time_and_version(tmp_path: Path, cells: pl.DataFrame) -> None:
-    context = build_context(_study(tmp_path), cells, now=dt.datetime(2026, 6, 1, 9, 30, tzinfo=dt.UTC))
+    context = build_context(_study(tmp_path), export_cells(cells), now=dt.datetime(2026, 6, 1, 9, 30, tzinfo=dt.UTC))
     assert context.generated_at == "2026-06-01 09:30 UTC"
     from pipeline import __version__
 
@@ -448,8 +449,8 @@ def test_write_leaves_no_temporary_file(book_path: Path) -> None:
 
 def test_failed_render_leaves_previous_book_untouched(book_path: Path, tmp_path: Path, cells: pl.DataFrame) -> None:
     before = book_path.read_bytes()
-    with pytest.raises(WavebookError, match="percent"):
-        render_book(_study(tmp_path), cells.drop("percent"), out_path=book_path)
+    with pytest.raises(WavebookError, match="estimate"):
+        render_book(_study(tmp_path), export_cells(cells).drop("estimate"), out_path=book_path)
     assert book_path.read_bytes() == before
     assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
@@ -464,17 +465,17 @@ def test_failed_replace_leaves_previous_book_untouched(
 
     monkeypatch.setattr(outputs_module.os, "replace", failing_replace)
     with pytest.raises(WavebookError, match="simulated"):
-        render_book(_study(tmp_path), cells, out_path=book_path)
+        render_book(_study(tmp_path), export_cells(cells), out_path=book_path)
     assert book_path.read_bytes() == before
     assert sorted(p.name for p in book_path.parent.iterdir()) == [".wavebook-outputs", "study.html"]
 
 
 def test_folder_book_replaces_the_previous_folder_whole(tmp_path: Path, cells: pl.DataFrame) -> None:
     out = tmp_path / "book" / "study.html"
-    index = render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    index = render_book(_study(tmp_path), export_cells(cells), out_path=out, single_file=False)
     assert index == tmp_path / "book" / "study" / "index.html"
     (index.parent / "stale.html").write_text("old", encoding="utf-8")
-    render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    render_book(_study(tmp_path), export_cells(cells), out_path=out, single_file=False)
     names = sorted(p.name for p in index.parent.iterdir())
     assert "stale.html" not in names and "index.html" in names and "trends.html" in names
     assert sorted(p.name for p in (tmp_path / "book").iterdir()) == ["study"]  # no temporary folder left
@@ -499,7 +500,7 @@ def _with_estimates(cells: pl.DataFrame) -> pl.DataFrame:
 
 def test_weighted_cells_show_estimate_and_precision_rows(tmp_path: Path, cells: pl.DataFrame) -> None:
     weighted = _with_estimates(cells)
-    root = _parse(render_book(_study(tmp_path), weighted, out_path=tmp_path / "weighted.html"))
+    root = _parse(render_book(_study(tmp_path), export_cells(weighted), out_path=tmp_path / "weighted.html"))
     row = _cell(weighted, "W1", "region", "category", "Eastvale")
     section = _section(root, "Region")
     estimate = row["percent"] + 0.7
@@ -519,16 +520,16 @@ def test_weighted_cells_show_estimate_and_precision_rows(tmp_path: Path, cells: 
 
 
 def test_weighted_book_says_so_and_drops_the_unweighted_caution(tmp_path: Path, cells: pl.DataFrame) -> None:
-    path = render_book(_study(tmp_path), _with_estimates(cells), out_path=tmp_path / "weighted.html")
+    path = render_book(_study(tmp_path), export_cells(_with_estimates(cells)), out_path=tmp_path / "weighted.html")
     root = _parse(path)
     (method,) = [s for s in root.iter("section") if s.get("id") == "methodology"]
     assert "WEIGHTED estimates" in _text(method)
     assert "Unweighted figures" not in _caution_titles(path)
-    assert "Unweighted figures" in _caution_titles(render_book(_study(tmp_path), cells, out_path=tmp_path / "u.html"))
+    assert "Unweighted figures" in _caution_titles(render_book(_study(tmp_path), export_cells(cells), out_path=tmp_path / "u.html"))
 
 
 def test_zero_no_answer_rows_are_left_out_and_said_once(tmp_path: Path, cells: pl.DataFrame) -> None:
-    root = _parse(render_book(_study(tmp_path), cells, out_path=tmp_path / "b.html"))
+    root = _parse(render_book(_study(tmp_path), export_cells(cells), out_path=tmp_path / "b.html"))
     for variable in _study(tmp_path).variables.values():
         missing = cells.filter((pl.col("variable") == variable.name) & (pl.col("row_kind") == "missing"))
         if missing.is_empty():
@@ -551,7 +552,7 @@ def test_hostile_labels_render_as_text(tmp_path: Path, cells: pl.DataFrame) -> N
     relabelled = cells.with_columns(
         pl.when(pl.col("row_label") == "Eastvale").then(pl.lit(f"East {hostile}")).otherwise(pl.col("row_label")).alias("row_label")
     )
-    path = render_book(dataclasses.replace(study, variables=variables), relabelled, out_path=tmp_path / "h.html")
+    path = render_book(dataclasses.replace(study, variables=variables), export_cells(relabelled), out_path=tmp_path / "h.html")
     root = _parse(path)
     assert [e for e in root.iter("img")] == []
     assert _section(root, f"Region {hostile}") is not None
@@ -561,8 +562,8 @@ def test_hostile_labels_render_as_text(tmp_path: Path, cells: pl.DataFrame) -> N
 
 def test_every_internal_link_resolves_in_both_forms(tmp_path: Path, cells: pl.DataFrame) -> None:
     study = _study(tmp_path)
-    single = render_book(study, _with_estimates(cells), out_path=tmp_path / "one" / "study.html")
-    folder = render_book(study, _with_estimates(cells), out_path=tmp_path / "many" / "study.html", single_file=False)
+    single = render_book(study, export_cells(_with_estimates(cells)), out_path=tmp_path / "one" / "study.html")
+    folder = render_book(study, export_cells(_with_estimates(cells)), out_path=tmp_path / "many" / "study.html", single_file=False)
     for pages in ([single], sorted(folder.parent.glob("*.html"))):
         ids = {p.name: {e.get("id") for e in _parse(p).iter() if e.get("id")} for p in pages}
         for page in pages:
@@ -582,7 +583,7 @@ def test_every_internal_link_resolves_in_both_forms(tmp_path: Path, cells: pl.Da
 
 def test_table_has_a_chart_of_its_latest_column_with_a_text_alternative(tmp_path: Path, cells: pl.DataFrame) -> None:
     weighted = _with_estimates(cells)
-    root = _parse(render_book(_study(tmp_path), weighted, out_path=tmp_path / "c.html"))
+    root = _parse(render_book(_study(tmp_path), export_cells(weighted), out_path=tmp_path / "c.html"))
     section = _section(root, "Region")
     (svg,) = _svg(section, "svg")
     assert svg.get("role") == "img" and _svg(svg, "title") and _svg(svg, "desc")
@@ -595,7 +596,7 @@ def test_table_has_a_chart_of_its_latest_column_with_a_text_alternative(tmp_path
 
 
 def test_trend_panels_follow_each_measure_across_waves(tmp_path: Path, cells: pl.DataFrame) -> None:
-    root = _parse(render_book(_study(tmp_path), _with_estimates(cells), out_path=tmp_path / "t.html"))
+    root = _parse(render_book(_study(tmp_path), export_cells(_with_estimates(cells)), out_path=tmp_path / "t.html"))
     (trends,) = [s for s in root.iter("section") if s.get("id") == "trends"]
     panels = list(trends.iter("figure"))
     region_rows = cells.filter((pl.col("variable") == "region") & (pl.col("row_kind") == "category"))
@@ -610,7 +611,7 @@ def test_folder_book_that_cannot_be_written_keeps_the_previous_one(
     tmp_path: Path, cells: pl.DataFrame, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     out = tmp_path / "book" / "study.html"
-    index = render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+    index = render_book(_study(tmp_path), export_cells(cells), out_path=out, single_file=False)
     before = {p.name: p.read_bytes() for p in index.parent.iterdir()}
     real_write = Path.write_text
 
@@ -621,7 +622,7 @@ def test_folder_book_that_cannot_be_written_keeps_the_previous_one(
 
     monkeypatch.setattr(Path, "write_text", full_disk)
     with pytest.raises(WavebookError, match="cannot write"):
-        render_book(_study(tmp_path), cells, out_path=out, single_file=False)
+        render_book(_study(tmp_path), export_cells(cells), out_path=out, single_file=False)
     monkeypatch.undo()
     assert {p.name: p.read_bytes() for p in index.parent.iterdir()} == before
     assert sorted(p.name for p in (tmp_path / "book").iterdir()) == ["study"]  # no temporary folder left
@@ -632,5 +633,5 @@ def test_a_folder_not_written_by_wavebook_is_not_replaced(tmp_path: Path, cells:
     foreign.mkdir(parents=True)
     (foreign / "notes.txt").write_text("mine", encoding="utf-8")
     with pytest.raises(WavebookError, match="not writing"):
-        render_book(_study(tmp_path), cells, out_path=tmp_path / "book" / "study.html", single_file=False)
+        render_book(_study(tmp_path), export_cells(cells), out_path=tmp_path / "book" / "study.html", single_file=False)
     assert [p.name for p in foreign.iterdir()] == ["notes.txt"]

@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.book.numbers import half_up, percent_texts, statistic_interval, statistic_number
@@ -59,9 +59,28 @@ def test_integer_valued_statistics_print_without_decimals() -> None:
 def test_balance_scores_print_signed_whole_points_with_their_interval() -> None:
     from pipeline.book.tables import format_cell
 
-    row = {"row_kind": "balance", "base": 200, "count": None, "estimate": 12.4, "ci_low": -3.6, "ci_high": 20.5,
-           "se": 4.1, "deff": 1.3, "value": None}
-    cell = format_cell(row, weighted=True)
+    row = {"statistic": "balance", "base_unweighted": 200, "estimate": 0.124, "ci_low": -0.036, "ci_high": 0.205,
+           "se": 0.041, "deff": 1.3, "flags": ""}  # an export row: shares, printed as points
+    cell = format_cell(row, None, "balance", weighted=True)
     assert (cell.text, cell.interval, cell.se, cell.deff) == ("+12", "-4 to +21", "4.10", "1.30")
-    assert format_cell({**row, "estimate": 0.2, "value": None}, weighted=True).text == "0"
-    assert format_cell({**row, "value": -7.0}, weighted=False).text == "-7"
+    assert format_cell({**row, "estimate": 0.002}, None, "balance", weighted=True).text == "0"
+    assert format_cell({**row, "estimate": -0.07, "se": None}, None, "balance", weighted=False).text == "-7"
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.tuples(
+    st.one_of(st.floats(0, 100), st.sampled_from([0.0, 0.04, 0.05, 0.4999999999, 0.5, 12.5, 99.5, 99.95, 100.0])),
+    st.floats(0, 5), st.floats(0, 5), st.booleans()), min_size=1, max_size=40))
+def test_percent_texts_of_a_whole_column_equal_the_one_at_a_time_rule(rows) -> None:
+    """`percent_text_exprs` (polars, the book's fast path) prints exactly what `percent_texts` prints."""
+    import polars as pl
+
+    from pipeline.book.numbers import percent_text_exprs
+
+    triples = [(e, max(0.0, e - a), min(100.0, e + b)) if ends else (e, None, None) for e, a, b, ends in rows]
+    frame = pl.DataFrame(triples, schema={"e": pl.Float64, "l": pl.Float64, "h": pl.Float64}, orient="row")
+    alone, shared, interval = percent_text_exprs(pl.col("e"), pl.col("l"), pl.col("h"))
+    out = frame.select(alone.alias("a"), shared.alias("s"), interval.alias("i"))
+    for (e, low, high), (a, s, i) in zip(triples, out.iter_rows(), strict=True):
+        assert a == percent_texts(e)[0]
+        assert (s, i) == percent_texts(e, low, high)

@@ -219,7 +219,7 @@ class _Tables(HTMLParser):
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         classes = (dict(attrs).get("class") or "").split()
-        if tag == "table" and "result" in classes:
+        if tag == "table" and "result" in classes and "waves" in classes:  # the by-wave table of each variable
             self._in_table = True
             self.tables.append([])
         elif self._in_table and tag == "tbody":

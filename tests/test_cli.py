@@ -97,8 +97,10 @@ def test_demo_builds_a_book_with_one_table_per_variable(demo_run: tuple[Path, Pa
     parser = _Counter()
     parser.feed(book.read_text(encoding="utf-8"))
     study = load_spec(folder / "study.toml")
-    variable_tables = [c for c in parser.table_classes if "result" in c.split()]
+    variable_tables = [c for c in parser.table_classes if {"result", "waves"} <= set(c.split())]
     assert len(variable_tables) == len(study.variables)
+    banner_tables = [c for c in parser.table_classes if {"result", "banner"} <= set(c.split())]
+    assert len(banner_tables) == len(study.variables)  # the demo tabulates every variable
     weight_tables = [c for c in parser.table_classes if "weights" in c.split()]
     assert len(weight_tables) == (2 if study.weighting else 1)  # summary (+ margins when raked)
     assert parser.script_sources == [None]  # the one inline script (contents filter), nothing loaded
@@ -108,8 +110,8 @@ def test_demo_book_shows_not_asked_rows_and_a_balance_score(demo_run: tuple[Path
     """The demo routes its spend question (asked_if) and scores a recommendation balance."""
     _, book = demo_run
     html = book.read_text(encoding="utf-8")
-    assert html.count('<tr class="row-not-asked">') == 1  # spend
-    assert html.count('<tr class="row-balance">') == 1  # recommend
+    assert html.count('<tr class="row-not-asked">') == 2  # spend: its banner table and its by-wave table
+    assert html.count('<tr class="row-balance">') == 2  # recommend: the same two tables
     assert "Recommend balance (9-10 minus 0-6)" in html
 
 

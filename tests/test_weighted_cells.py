@@ -171,6 +171,7 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
 
     from pipeline.book import build_context, render_book
     from pipeline.book import variance_lines, weighting_section
+    from pipeline.tables import export_cells
     from pipeline.weighting.store import build_report
 
     study, responses, layout, _ = wave
@@ -178,11 +179,11 @@ def test_book_shows_weighting_summary_and_flags(wave, tmp_path):
     base, _ = design_base_weights(responses, study)
     recipe = fit_recipe(responses, steps, base_weights=base)
     report = build_report(recipe, wave="W1", n_input=responses.height)
-    cells = layout.join(
+    cells = export_cells(layout.join(
         wave_estimates(responses, study, recipe, layout, VarianceOptions(), wave="W1"),
         on=["wave", "variable", "row_order"],
         how="left",
-    )
+    ))
     section = weighting_section(study, {"W1": report})
     assert [m.category for m in section.margins] == ["Northmoor", "Eastvale"]  # codebook labels, not codes
     assert section.margins[0].target == "55.0%"

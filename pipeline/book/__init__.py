@@ -1,7 +1,8 @@
-"""The result book (`pipeline.book`): the HTML book a client opens, rendered from the tidy cells.
+"""The result book (`pipeline.book`): the HTML book a client opens, rendered from the cells export.
 
-Public entry: `render_book(study, cells, out_path=..., weighting=..., variance=...)` writes the
-book; `weighting_section` and `variance_lines` build the weighting summary and the
+Public entry: `render_book(study, cells, tests=..., out_path=..., weighting=..., variance=...)`
+writes the book from the one cells export (`pipeline.tables.export_cells`, read through
+`pipeline.book.source`) and the tests export; `weighting_section` and `variance_lines` build the weighting summary and the
 standard-error sentences the runner passes in. `render` builds the context and renders the
 templates; `weighting` holds the weighting summary.
 """

@@ -7,8 +7,9 @@ Two kinds, both readable in grey-scale (ink, a grey band, no meaning carried by 
   scale for percentages. Each row's label sits on its own line above its dot, so labels never
   collide with the marks at any width.
 * `trend_panel`: one tracked measure across waves as a line through the estimates inside a grey
-  band from the interval ends; a wave whose change from the wave before is significant gets a
-  text mark (▲ / ▼) above its point, so significance never rests on colour.
+  band from the interval ends (percentages on an axis from 0; means on a round range around
+  their intervals, so the band stays visible); a wave whose change from the wave before is
+  significant gets a text mark (▲ / ▼) above its point, so significance never rests on colour.
 
 Every chart's text alternative is its table (the chart repeats figures the table states) plus a
 one-sentence description in the SVG's `<desc>`.
@@ -115,6 +116,20 @@ def _nice_top(value: float) -> float:
     return 10 * power
 
 
+def _nice_range(low: float, high: float) -> tuple[float, float]:
+    """A round axis range around [low, high] whose span is at most about three times the data's
+    (so a mean's interval band stays visible): ends on multiples of a 1-2-5 step."""
+    span = high - low
+    if span <= 0:
+        span = abs(high) or 1.0
+    step = _nice_top(span / 2)
+    bottom = math.floor(low / step) * step
+    top = math.ceil(high / step) * step
+    if top <= bottom:
+        top = bottom + step
+    return bottom, top
+
+
 def dot_chart(
     rows: Sequence[tuple[str, float, float | None, float | None, str]], *, column: str, percent: bool
 ) -> DotChart | None:
@@ -175,7 +190,7 @@ def trend_panel(
         bottom, top = 0.0, max(10.0, _nice_top(max(highs)))
         top = min(top, 100.0)
     else:
-        bottom, top = min(0.0, min(lows)), _nice_top(max(highs))
+        bottom, top = _nice_range(min(lows), max(highs))
     left, right = PANEL_LEFT, PANEL_WIDTH - PANEL_RIGHT
     plot_top, plot_bottom = PANEL_TOP, PANEL_HEIGHT - PANEL_BOTTOM
     xs = [_scale(i, 0, len(points) - 1, left + 10, right - 10) for i in range(len(points))]

@@ -17,6 +17,8 @@ from __future__ import annotations
 
 import math
 
+import polars as pl
+
 INTEGER_STATISTICS = ("n",)
 ORDER_STATISTICS = ("median", "min", "max")
 
@@ -26,6 +28,8 @@ def half_up(number: float, decimals: int = 0) -> float:
 
     The scaled value is first rounded to 9 places so that binary noise (0.25 stored a hair under)
     does not flip a half down."""
+    if decimals == 0:
+        return float(math.floor(round(number, 9) + 0.5))
     scale = 10**decimals
     return math.floor(round(number * scale, 9) + 0.5) / scale
 
@@ -35,9 +39,10 @@ def percent_decimals(*values: float | None) -> int:
 
     One decimal when a value strictly between 0 and 100 would round to 0 or 100, or when the
     first two values given after the estimate (the interval's ends) differ but round equal."""
-    present = [v for v in values if v is not None and math.isfinite(v)]
-    if any(half_up(v) in (0.0, 100.0) and 0.0 < v < 100.0 for v in present):
-        return 1
+    for v in values:
+        # half_up(v) is 0 or 100 exactly when round(v, 9) < 0.5 or >= 99.5 (for 0 < v < 100)
+        if v is not None and 0.0 < v < 100.0 and not 0.5 <= round(v, 9) < 99.5:
+            return 1
     if len(values) == 3 and values[1] is not None and values[2] is not None:
         low, high = values[1], values[2]
         if low < high and half_up(low) == half_up(high):
@@ -89,3 +94,45 @@ def ratio_text(value: float | None, decimals: int = 2) -> str | None:
     if value is None or not math.isfinite(value):
         return None
     return f"{value:,.{decimals}f}"
+
+
+def _half_up_expr(value: pl.Expr, decimals: int) -> pl.Expr:
+    """`half_up` as a polars expression: the scaled whole number floor(round(v * 10^d, 9) + 0.5)."""
+    return ((value * 10**decimals).round(9) + 0.5).floor().cast(pl.Int64)
+
+
+def _percent_number_expr(value: pl.Expr, one_decimal: pl.Expr) -> pl.Expr:
+    """`percent_number` as a polars expression for 0 <= value <= 100 (null elsewhere)."""
+    whole = _half_up_expr(value, 0).cast(pl.String)
+    tenths = _half_up_expr(value, 1)
+    decimal = pl.concat_str([(tenths // 10).cast(pl.String), pl.lit("."), (tenths % 10).cast(pl.String)])
+    return (
+        pl.when((value < 0) | (value > 100)).then(None)
+        .when(one_decimal & (value > 0) & (value < 0.05)).then(pl.lit("<0.1"))
+        .when(one_decimal & (value >= 99.95) & (value < 100)).then(pl.lit(">99.9"))
+        .when(one_decimal).then(decimal)
+        .otherwise(whole)
+    )
+
+
+def _misleads_expr(value: pl.Expr) -> pl.Expr:
+    """Whether a whole number would print a value strictly between 0 and 100 as 0 or 100."""
+    rounded = value.round(9)
+    return ((value > 0) & (value < 100) & ~((rounded >= 0.5) & (rounded < 99.5))).fill_null(False)
+
+
+def percent_text_exprs(estimate: pl.Expr, low: pl.Expr, high: pl.Expr) -> tuple[pl.Expr, pl.Expr, pl.Expr]:
+    """`percent_texts` for a whole column at once, as polars expressions of percentages (0-100):
+    (the estimate alone as "12%", the estimate with decimals shared with its interval, the
+    interval "10–15"); null where a value is missing or outside 0-100 (the caller then formats
+    that cell with `percent_texts`). `tests/test_book_numbers.py` checks them against it."""
+    alone = _misleads_expr(estimate)
+    ends = (low.is_not_null() & high.is_not_null() & (low < high)
+            & (_half_up_expr(low, 0) == _half_up_expr(high, 0))).fill_null(False)
+    shared = alone | _misleads_expr(low) | _misleads_expr(high) | ends
+    interval = pl.concat_str([_percent_number_expr(low, shared), pl.lit("–"), _percent_number_expr(high, shared)])
+    return (
+        pl.concat_str([_percent_number_expr(estimate, alone), pl.lit("%")]),
+        pl.concat_str([_percent_number_expr(estimate, shared), pl.lit("%")]),
+        interval,
+    )

@@ -1,26 +1,32 @@
-"""The result book: self-contained HTML pages built from the tidy long cell frame.
+"""The result book: self-contained HTML pages built from the unified cells export.
 
-`render_book(study, cells, out_path=...)` turns the cells (see `pipeline.tables.topline` for their
-columns, `pipeline.book.tables` for how they become tables) into a `BookContext` (the documented
-object every template receives), renders the templates with autoescaping forced on and strict
-undefined variables, and writes the book atomically.
+`render_book(study, cells, tests=..., out_path=...)` turns the cells (the `<stem>_cells` frame
+the run writes beside the book, `pipeline.book.source`; `pipeline.book.tables` for how they
+become tables) and the tests export (the Rao-Scott lines under the banner tables) into a
+`BookContext` (the documented object every template receives), renders the templates with
+autoescaping forced on and strict undefined variables, and writes the book atomically.
 
-Output (`pipeline.book.pages`): one file (default for books under SINGLE_FILE_LIMIT tables) or
-a folder with `index.html` (cover and contents) and a page each for the methodology, every table,
-the trends and the appendix. `manifest.json` is written beside the book when a manifest is given.
+Output (`pipeline.book.pages`): one file, or a folder with `index.html` (cover and contents) and
+a page each for the methodology, every table, the trends and the appendix. By default
+(`single_file=None`) a book of fewer than SINGLE_FILE_LIMIT tables is one file unless that file
+would exceed PAGE_LIMIT bytes, when it becomes a folder (so no page a reader opens is larger
+than needed). `manifest.json` is written beside the book when a manifest is given.
 
-When the cells carry weighted estimates (the columns `estimate`, `ci_low`, `ci_high` added to
-the same rows by the estimation stage), percentages, means and medians show the weighted
-estimate, its interval, standard error and design effect; the counts stay unweighted; otherwise
-the book shows unweighted figures and says so.
+When the cells carry standard errors (a weighted run), percentages, means and medians show the
+weighted estimate, its interval, standard error and design effect; the counts stay unweighted;
+otherwise the book shows unweighted figures and says so.
 
-The book holds aggregates only: counts, percentages and statistics per wave. It never receives
-respondent-level rows, so it cannot show them.
+The book holds aggregates only: counts, percentages and statistics per wave and banner column.
+It never receives respondent-level rows, so it cannot show them.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
+import gc
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -30,30 +36,40 @@ import polars as pl
 
 from pipeline import __version__
 from pipeline.book.manifest import SHORT_HASH, manifest_hash, manifest_json
+from pipeline.book.numbers import percent_text_exprs
 from pipeline.book.pages import Page, plan_pages, write_book
+from pipeline.book.source import TOTAL, check_cells
 from pipeline.book.tables import (
     LOW_BASE,
     VERY_LOW_BASE,
     Column,
+    Marks,
+    TEXT_ALONE,
+    TEXT_INTERVAL,
+    TEXT_SHARED,
     Section,
     anchor_of,
-    build_table,
+    banner_table,
     chart_of,
+    table_cells,
     type_label,
+    wave_table,
 )
 from pipeline.book.trends import TrendGroup, trend_groups
 from pipeline.book.weighting import WeightingSection
-from pipeline.errors import WavebookError
 from pipeline.resources import resource_dir
 from pipeline.staging.spec import Design, Study, Wave
 
-__all__ = ["LOW_BASE", "VERY_LOW_BASE", "BookContext", "build_context", "render_book"]
+__all__ = ["LOW_BASE", "PAGE_LIMIT", "SINGLE_FILE_LIMIT", "VERY_LOW_BASE", "BookContext", "build_context",
+           "render_book"]
 
-REQUIRED_COLUMNS = (
-    "wave", "variable", "row_kind", "row_order", "row_label", "code", "count", "base", "percent", "value", "note",
-)
-ESTIMATE_COLUMNS = ("estimate", "ci_low", "ci_high")
 SINGLE_FILE_LIMIT = 100
+PAGE_LIMIT = 2_000_000  # bytes: a default one-file book larger than this becomes a folder
+# The columns of the cells export the book reads (the others stay in the export).
+READ_COLUMNS = ("wave", "table", "row", "row_label", "row_kind", "banner", "break_variable", "column",
+                "column_label", "letter", "statistic", "estimate", "se", "ci_low", "ci_high", "deff",
+                "base_unweighted", "base_weighted", "flags", "sig_higher_than", "sig_higher_than_lighter",
+                "change_mark", "note")
 
 
 @dataclass(frozen=True)
@@ -93,11 +109,12 @@ class BookContext:
     estimates with intervals. waves: every declared wave in spec order. completes: respondents
     of the latest staged wave (None when none is staged). design: one line per design fact.
     methodology: paragraphs on how the figures were produced. cautions: what the reader must keep
-    in mind. sections: one per codebook variable, in spec order (table, chart, link). trends: the
-    tracked measures per table (empty with fewer than two waves). codebook: the appendix's
-    codebook. low_base, very_low_base: the thresholds behind the cell flags. level_label: the
-    intervals' confidence level ("95%"). generated_at (UTC, text) and version: for the footer.
-    weighting: the weights in summary per wave and the margins they meet
+    in mind. sections: one per codebook variable, in spec order (by-wave table, banner tables,
+    chart, link). trends: the tracked measures per table (empty with fewer than two waves).
+    codebook: the appendix's codebook. low_base, very_low_base: the thresholds behind the Total's
+    cell flags. marks: how the banner tables were tested (None without banner tables).
+    level_label: the intervals' confidence level ("95%"). generated_at (UTC, text) and version:
+    for the footer. weighting: the weights in summary per wave and the margins they meet
     (`pipeline.book.weighting`), None for an unweighted book. manifest: the run manifest (None
     when the book was rendered without one) and manifest_hash its short SHA-256. pages: the files
     of the book; links: href of each page kind ("cover", "contents", "methodology", "trends",
@@ -129,6 +146,7 @@ class BookContext:
     manifest: dict | None = None
     manifest_hash: str | None = None
     status: str = "Unweighted counts and percentages"
+    marks: Marks | None = None
 
 
 def render_book(
@@ -136,36 +154,115 @@ def render_book(
     cells: pl.DataFrame,
     *,
     out_path: Path,
+    tests: pl.DataFrame | None = None,
     weighting: WeightingSection | None = None,
     variance: tuple[str, ...] = (),
     level: float = 0.95,
     single_file: bool | None = None,
     manifest: dict | None = None,
 ) -> Path:
-    """Render the result book of `study` from `cells` (tidy long frame) and write it.
+    """Render the result book of `study` from `cells` (the unified cells export) and `tests` (the
+    tests export, for the independence tests) and write it.
 
     `out_path` names the one-file book (e.g. book/study.html); a folder book goes to the folder
     of that name without the suffix (book/study/index.html). `single_file` None: one file below
-    SINGLE_FILE_LIMIT tables. Every page is rendered in memory first and written atomically, so a
-    failure never leaves a half-written or missing book. Returns the path of the page to open.
+    SINGLE_FILE_LIMIT tables and PAGE_LIMIT bytes. Every page is rendered in memory first and
+    written atomically, so a failure never leaves a half-written or missing book. Returns the
+    path of the page to open.
     """
     out_path = Path(out_path)
-    if single_file is None:
-        single_file = len(study.variables) < SINGLE_FILE_LIMIT
     context = build_context(
-        study, cells, weighting=weighting, variance=variance, level=level, single_file=single_file, manifest=manifest
+        study, cells, tests=tests, weighting=weighting, variance=variance, level=level,
+        single_file=single_file is not False and len(study.variables) < SINGLE_FILE_LIMIT, manifest=manifest,
     )
     env = _environment()
-    files = {page.file: env.get_template("page.html.j2").render(book=context, page=page) for page in context.pages}
+    with _collector_paused():
+        files = _render(env, context)
+    if single_file is None and len(context.pages) == 1 and len(files[""].encode("utf-8")) > PAGE_LIMIT:
+        context = paged(context, single_file=False)
+        with _collector_paused():
+            files = _render(env, context)
     if manifest is not None:
         files["manifest.json"] = manifest_json(manifest)
-    return write_book(out_path, files, single_file=single_file)
+    return write_book(out_path, files, single_file=len(context.pages) == 1)
+
+
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause Python's cycle collector while the book builds its many small objects, none of them
+    cyclic (the collector would only rescan them); restored afterwards."""
+    collecting = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if collecting:
+            gc.enable()
+
+
+def _render(env: jinja2.Environment, context: BookContext) -> dict[str, str]:
+    template = env.get_template("page.html.j2")
+    return {page.file: template.render(book=context, page=page) for page in context.pages}
+
+
+def paged(context: BookContext, *, single_file: bool) -> BookContext:
+    """`context` laid out as one file or as a folder of pages (pages, links and every href)."""
+    plan = plan_pages([s.anchor for s in context.sections], single_file=single_file)
+    sections = tuple(
+        dataclasses.replace(s, page=plan.section_pages[s.anchor], href=plan.href(plan.section_pages[s.anchor], s.anchor))
+        for s in context.sections
+    )
+    hrefs = {s.name: s.href for s in sections}
+    by_anchor = {s.anchor: s.href for s in sections}
+    return dataclasses.replace(
+        context,
+        sections=sections,
+        trends=tuple(dataclasses.replace(g, href=by_anchor[g.anchor]) for g in context.trends),
+        codebook=tuple(dataclasses.replace(e, href=hrefs[e.name]) for e in context.codebook),
+        pages=plan.pages,
+        links=plan.links,
+        trend_pages=plan.trend_pages,
+    )
+
+
+def _independence_lines(tests: pl.DataFrame | None, labels: Mapping[str, str], marks: Marks | None) -> dict[
+        tuple[str, str, str], tuple[str, ...]]:
+    """(wave, table, banner) -> one sentence per break on the Rao-Scott test of independence."""
+    if tests is None or tests.height == 0 or "comparison" not in tests.columns:
+        return {}
+    level = marks.level_text() if marks is not None else "5%"
+    lines: dict[tuple[str, str, str], list[str]] = {}
+    for r in tests.filter(pl.col("comparison") == "independence").iter_rows(named=True):
+        label = labels.get(r["column_a"], r["column_a"])
+        if r["statistic"] is None or r["p_value"] is None:
+            text = f"Test of independence from {label}: not computed (too few respondents)."
+        else:
+            p = "p < 0.001" if r["p_value"] < 0.001 else f"p = {r['p_value']:.3f}"
+            verdict = "significant" if r["significant"] else "not significant"
+            text = (
+                f"Test of independence from {label} (Rao-Scott second-order corrected F): F = {r['statistic']:.2f} "
+                f"on {r['df_num']:.1f} and {r['df_den']:.1f} degrees of freedom, {p}: {verdict} at the {level} level."
+            )
+        lines.setdefault((r["wave"], r["table"], r["banner"]), []).append(text)
+    return {k: tuple(v) for k, v in lines.items()}
+
+
+def _marks(study: Study) -> Marks | None:
+    """The banner tables' test settings from the spec's [tables] (None without it)."""
+    from pipeline.tables import tables_spec
+
+    spec = tables_spec(study)
+    if spec is None:
+        return None
+    return Marks(levels=tuple(spec.levels), adjust=spec.adjust, low_base=spec.low_base,
+                 suppress_below=spec.suppress_below)
 
 
 def build_context(
     study: Study,
     cells: pl.DataFrame,
     *,
+    tests: pl.DataFrame | None = None,
     weighting: WeightingSection | None = None,
     variance: tuple[str, ...] = (),
     level: float = 0.95,
@@ -173,44 +270,34 @@ def build_context(
     single_file: bool = True,
     manifest: dict | None = None,
 ) -> BookContext:
-    """The `BookContext` of `study` from `cells` (columns as produced by `pipeline.tables.topline`, plus
-    the estimate columns of `pipeline.tables.weighted_cells` in a weighted book); `weighting` and
-    `variance` (sentences on how standard errors were computed) feed the methodology; `level` is
-    the confidence level of the intervals; `single_file` decides the pages and links."""
-    missing = [c for c in REQUIRED_COLUMNS if c not in cells.columns]
-    if missing:
-        raise WavebookError(f"the result cells lack the column(s) {', '.join(missing)}; cannot build the book")
-    weighted = all(c in cells.columns for c in ESTIMATE_COLUMNS) and cells["estimate"].is_not_null().any()
+    """The `BookContext` of `study` from `cells` (the unified cells export, `pipeline.book.source`)
+    and `tests` (the tests export); `weighting` and `variance` (sentences on how standard errors
+    were computed) feed the methodology; `level` is the confidence level of the intervals;
+    `single_file` decides the pages and links."""
+    cells = check_cells(cells)
+    weighted = bool(cells["se"].is_not_null().any())
     respondents = dict(
-        cells.filter(pl.col("row_kind").is_in(["missing", "not-asked"])).group_by("wave").agg(pl.col("base").max()).iter_rows()
+        cells.filter((pl.col("banner") == TOTAL) & pl.col("row_kind").is_in(["missing", "not-asked"]))
+        .group_by("wave").agg(pl.col("base_unweighted").max()).iter_rows()
     )
     waves = tuple(_wave_column(w, respondents.get(w.id)) for w in study.waves)
     columns = tuple(Column(key=w.id, label=w.label, sublabel=w.fieldwork) for w in waves)
+    wave_labels = {w.id: w.label for w in waves}
+    wave_order = [w.id for w in waves]
     level_label = f"{100 * level:g}%"
-    anchors = [anchor_of(i, name) for i, name in enumerate(study.variables)]
-    plan = plan_pages(anchors, single_file=single_file)
-    sections = []
-    for anchor, (name, variable) in zip(anchors, study.variables.items(), strict=True):
-        table = build_table(
-            variable, columns, cells.filter(pl.col("variable") == name), weighted=weighted, level_label=level_label
-        )
-        sections.append(
-            Section(
-                anchor=anchor,
-                page=plan.section_pages[anchor],
-                href=plan.href(plan.section_pages[anchor], anchor),
-                name=name,
-                label=variable.label,
-                type_label=type_label(variable),
-                table=table,
-                chart=chart_of(table),
-                has_low_base=any(c.base_flag for r in table.rows for c in r.cells),
-            )
-        )
+    marks = _marks(study) if (cells["banner"] != TOTAL).any() else None
+    labels = {name: v.label for name, v in study.variables.items()}
+    independence = _independence_lines(tests, labels, marks)
+    shown = _shown(cells, wave_order).select(*READ_COLUMNS, TEXT_ALONE, TEXT_SHARED, TEXT_INTERVAL)
+    by_table = {key[0]: frame.to_dicts() for key, frame in shown.partition_by("table", as_dict=True).items()}
+    with _collector_paused():
+        sections = _sections(study, by_table, columns, wave_order=wave_order, wave_labels=wave_labels,
+                             labels=labels, weighted=weighted, level_label=level_label, marks=marks,
+                             independence=independence)
     sections_t = tuple(sections)
     staged = [w.respondents for w in waves if w.respondents is not None]
     generated = (now or dt.datetime.now(dt.UTC)).astimezone(dt.UTC)
-    return BookContext(
+    context = BookContext(
         title=study.title,
         notes=tuple(study.notes),
         weighted=weighted,
@@ -225,22 +312,92 @@ def build_context(
         codebook=tuple(
             CodebookEntry(
                 name=name, label=v.label, type_label=type_label(v),
-                codes=tuple((str(code), label) for code, label in v.values.items()), href=s.href,
+                codes=tuple((str(code), label) for code, label in v.values.items()), href="",
             )
-            for (name, v), s in zip(study.variables.items(), sections_t, strict=True)
+            for name, v in study.variables.items()
         ),
         low_base=LOW_BASE,
         very_low_base=VERY_LOW_BASE,
         level_label=level_label,
         generated_at=generated.strftime("%Y-%m-%d %H:%M UTC"),
         version=__version__,
-        pages=plan.pages,
-        links=plan.links,
-        trend_pages=plan.trend_pages,
+        pages=(),
+        links={},
+        trend_pages=(),
         weighting=weighting if weighted else None,
         manifest=manifest,
         manifest_hash=manifest_hash(manifest)[:SHORT_HASH] if manifest is not None else None,
+        marks=marks,
     )
+    return paged(context, single_file=single_file)
+
+
+def _sections(study: Study, by_table: Mapping[str, list[dict]], columns: tuple[Column, ...], *,
+              wave_order: Sequence[str], wave_labels: Mapping[str, str], labels: Mapping[str, str], weighted: bool,
+              level_label: str, marks: Marks | None,
+              independence: Mapping[tuple[str, str, str], tuple[str, ...]]) -> list[Section]:
+    """One section per codebook variable: its by-wave table, banner tables and chart (page and
+    href are filled in by `paged`)."""
+    sections = []
+    for index, (name, variable) in enumerate(study.variables.items()):
+        frame_rows = by_table.get(name, [])
+        indexed = table_cells(variable, frame_rows)
+        table, omitted = wave_table(
+            variable, columns, indexed, weighted=weighted, level_label=level_label, marks=marks or Marks()
+        )
+        banners = _banner_tables(
+            variable, indexed, frame_rows, wave_order=wave_order, wave_labels=wave_labels, labels=labels,
+            omitted=omitted, weighted=weighted, level_label=level_label, marks=marks or Marks(),
+            independence=independence,
+        )
+        sections.append(
+            Section(
+                anchor=anchor_of(index, name), page="", href="", name=name, label=variable.label,
+                type_label=type_label(variable), table=table, banners=banners, chart=chart_of(table),
+                has_low_base=any(c.base_flag for t in (table, *banners) for r in t.rows for c in r.cells),
+            )
+        )
+    return sections
+
+
+def _shown(cells: pl.DataFrame, wave_order: Sequence[str]) -> pl.DataFrame:
+    """The rows the book shows: the Total of every wave, and each table's banner columns in the
+    latest wave that has them (earlier waves' banner columns are in the export, not the book),
+    with the percentages' texts (`numbers.percent_text_exprs`)."""
+    position = pl.col("wave").replace_strict({w: i for i, w in enumerate(wave_order)}, default=-1,
+                                             return_dtype=pl.Int64)
+    banner = pl.col("banner") != TOTAL
+    latest = pl.when(banner).then(position).max().over("table", "banner")
+    shown = cells.filter(~banner | (position == latest))
+    percent = pl.col("statistic") == "percent"
+    alone, shared, interval = percent_text_exprs(100 * pl.col("estimate"), 100 * pl.col("ci_low"),
+                                                 100 * pl.col("ci_high"))
+    return shown.with_columns(  # the percentages' texts for the whole frame at once (`tables.format_cell`)
+        pl.when(percent).then(alone).alias(TEXT_ALONE), pl.when(percent).then(shared).alias(TEXT_SHARED),
+        pl.when(percent).then(interval).alias(TEXT_INTERVAL),
+    )
+
+
+def _banner_tables(
+    variable, indexed, frame_rows: Sequence[dict], *, wave_order: Sequence[str], wave_labels: Mapping[str, str],
+    labels: Mapping[str, str], omitted: Sequence[int], weighted: bool, level_label: str, marks: Marks,
+    independence: Mapping[tuple[str, str, str], tuple[str, ...]],
+) -> tuple:
+    """The banner tables of one variable: one per banner, in the latest wave that has it."""
+    banner_rows = [r for r in frame_rows if r["banner"] != TOTAL]
+    tables = []
+    for banner in dict.fromkeys(r["banner"] for r in banner_rows):
+        waves = {r["wave"] for r in banner_rows if r["banner"] == banner}
+        latest = max(waves, key=lambda w: wave_order.index(w) if w in wave_order else -1)
+        position = wave_order.index(latest) if latest in wave_order else 0
+        previous = wave_labels.get(wave_order[position - 1]) if position > 0 else None
+        rows = [r for r in banner_rows if r["banner"] == banner and r["wave"] == latest]
+        tables.append(banner_table(
+            variable, indexed, rows, wave=latest, wave_label=wave_labels.get(latest, latest), previous_label=previous,
+            banner=banner, labels=labels, omitted_rows=omitted, weighted=weighted, level_label=level_label,
+            marks=marks, tests=independence.get((latest, variable.name, banner), ()),
+        ))
+    return tuple(tables)
 
 
 @cache

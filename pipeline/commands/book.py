@@ -9,11 +9,12 @@ EXAMPLE = "wavebook book tracker/study.toml --out tracker/book/latest.html"
 
 
 def add_single_file(parser: argparse.ArgumentParser) -> None:
-    """--single-file / --folder: the book's output form (default: one file under 100 tables)."""
+    """--single-file / --folder: the book's output form (default: one file under 100 tables and 2 MB)."""
     form = parser.add_mutually_exclusive_group()
     form.add_argument(
         "--single-file", dest="single_file", action="store_true", default=None,
-        help="write the book as one HTML file (default when the study has fewer than 100 tables)",
+        help="write the book as one HTML file (default when the study has fewer than 100 tables and the "
+        "page stays under 2 MB)",
     )
     form.add_argument(
         "--folder", dest="single_file", action="store_false",
