@@ -1,7 +1,7 @@
 """Benchmark: the whole study run (stage, weigh, estimates, book) against DuckDB's typed load of the same file.
 
 Usage: python bench/bench_study_run.py [--rows 1000000] [--waves 1] [--variance taylor]
-                                       [--memory-budget 2GB] [--folder DIR] [--banner]
+                                       [--memory-budget 2GB] [--folder DIR] [--banner [--versus-plain]]
 
 Generates a seeded invented study (the staging benchmark's 60 columns and 56 codebook variables,
 `bench_staging.write_study`, one file per wave with its own seed), a 3-margin rake step (region,
@@ -17,6 +17,10 @@ fresh child process so its peak resident memory (ru_maxrss, DuckDB included) is 
                 tables included with --banner; the process also weighs, so its peak RSS covers both)
   book          the cells export and the book, in the same process (peak RSS up to its end)
   run           `wavebook run --restage --quiet` as a command (everything, from the raw files)
+
+With --banner --versus-plain, the same study without its `[tables]` section (a second spec beside
+it, reading the same wave files) is also run as a command, and the banner run is divided by it:
+issue 12's measure (at most 3x, peak RSS at most 4 GB).
 
 Prints figures and ratios only; nothing is asserted (the targets of issue 10 are printed beside
 them). Timings depend on the machine's load: say so when quoting them.
@@ -46,6 +50,8 @@ TARGETS = {  # issue 10
     "run": "<= 6x the DuckDB load, peak RSS <= 3 GB (1M x 60, Taylor); a 400-replicate stratified jackknife "
     "<= 1.5x the Taylor run; 3 waves <= 3.2x one wave; 5M rows in one wave: peak RSS <= 6 GB",
 }
+BANNER_TARGET = "banner run <= 3x the same study's run without banner, peak RSS <= 4 GB (issue 12; 1M rows, " \
+    "Taylor and the 400-replicate stratified jackknife)"
 
 
 BANNER = ("q02", "q03", "q04", "q05", "aware")  # 4 single-choice breaks of 5 codes and 5 items: 25 columns
@@ -220,7 +226,11 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--run-only", action="store_true", help="time the DuckDB load and the whole run only")
     parser.add_argument("--banner", action="store_true",
                         help=f"add a [tables] banner of {', '.join(BANNER)} (25 columns, every test) to the study")
+    parser.add_argument("--versus-plain", action="store_true",
+                        help="with --banner: also run the same study without [tables] and print the ratio")
     args = parser.parse_args(argv)
+    if args.versus_plain and not args.banner:
+        parser.error("--versus-plain needs --banner")
     with tempfile.TemporaryDirectory(prefix="wavebook-run-bench-") as tmp:
         folder = args.folder or Path(tmp)
         start = time.perf_counter()
@@ -228,8 +238,24 @@ def main(argv: list[str] | None = None) -> int:
         print(f"generated {args.waves} wave(s) of {args.rows:,} rows x 60 columns in {time.perf_counter() - start:.1f} s;"
               f" variance {args.variance}"
               + (f"; banner {', '.join(BANNER)}" if args.banner else ""))
-        print(report(measure(spec_path, memory_budget=args.memory_budget, run_only=args.run_only)))
+        figures = measure(spec_path, memory_budget=args.memory_budget, run_only=args.run_only)
+        if args.versus_plain:
+            figures["run plain"] = _run_command(plain_spec(spec_path), args.memory_budget)
+        print(report(figures))
+        if args.versus_plain:
+            (banner_s, banner_rss), (plain_s, _) = figures["run"], figures["run plain"]
+            print(f"banner run / run without banner: {banner_s / plain_s:.2f}x; banner run peak RSS "
+                  f"{banner_rss / 1024:.2f} GB\ntarget: {BANNER_TARGET}")
     return 0
+
+
+def plain_spec(spec_path: Path) -> Path:
+    """A copy of the study spec without its `[tables]` section (the last section `write_run_study`
+    writes), beside it: same waves and design, its own database and results."""
+    text = spec_path.read_text(encoding="utf-8")
+    plain = spec_path.with_name(f"{spec_path.stem}_plain.toml")
+    plain.write_text(text[: text.index("[tables]")], encoding="utf-8")
+    return plain
 
 
 if __name__ == "__main__":
